@@ -1,0 +1,39 @@
+# Two entry points: `make demo` (install, then run the offline demo sweep) and
+# `make test` (install with the dev extras, then run the tests). Both build .venv
+# from scratch when it is missing.
+
+PYTHON ?= python3.11
+VENV ?= .venv
+PY := $(VENV)/bin/python
+PIP := $(PY) -m pip --disable-pip-version-check
+
+.PHONY: demo test test-fast test-slow bench plan clean
+
+$(VENV)/.installed: pyproject.toml
+	test -x $(PY) || $(PYTHON) -m venv $(VENV)
+	# torch first, pinned: the CPU build on this machine (an unpinned torch pulls a CUDA build of several GB).
+	$(PIP) install torch==2.13.0
+	$(PIP) install -e .
+	touch $@
+
+$(VENV)/.dev-installed: $(VENV)/.installed
+	$(PIP) install -e ".[dev]"
+	touch $@
+
+demo: $(VENV)/.installed
+	$(VENV)/bin/harness run experiments/demo.yaml
+
+plan: $(VENV)/.installed
+	$(VENV)/bin/harness plan experiments/demo.yaml
+
+test: $(VENV)/.dev-installed
+	HF_HUB_OFFLINE=1 $(PY) -m pytest
+
+test-fast: $(VENV)/.dev-installed
+	HF_HUB_OFFLINE=1 $(PY) -m pytest -m "not slow"
+
+test-slow: $(VENV)/.dev-installed
+	HF_HUB_OFFLINE=1 $(PY) -m pytest -m slow
+
+clean:
+	rm -rf $(VENV) results/mlflow.db results/artifacts results/cache

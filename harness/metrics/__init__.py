@@ -1,0 +1,29 @@
+"""Scores of a clustering: pure functions of arrays, each returning a float or a dict of floats."""
+
+from harness.metrics._external import (
+    NOISE,
+    adjusted_mutual_info,
+    adjusted_rand,
+    cluster_shape,
+    external_scores,
+    homogeneity_completeness_v,
+    noise_aware_scores,
+    normalized_mutual_info,
+)
+from harness.metrics._length import length_confound_index, length_eta_squared, length_scores
+
+__all__ = sorted(
+    [
+        "NOISE",
+        "adjusted_mutual_info",
+        "adjusted_rand",
+        "cluster_shape",
+        "external_scores",
+        "homogeneity_completeness_v",
+        "length_confound_index",
+        "length_eta_squared",
+        "length_scores",
+        "noise_aware_scores",
+        "normalized_mutual_info",
+    ]
+)

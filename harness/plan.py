@@ -1,0 +1,171 @@
+"""From a sweep to trials and stage keys, without running anything.
+
+A trial is one point of the grid. Each trial is a chain of stages
+(encode -> pool -> transform -> reduce -> cluster); a stage's key hashes its own
+settings, the key of the stage before it and the versions of the libraries that
+compute it, so trials sharing a prefix share those stages' outputs.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import itertools
+from dataclasses import dataclass, field, replace
+from functools import lru_cache
+from importlib import metadata
+from pathlib import Path
+from typing import Any
+
+from harness._settings import Settings
+from harness.cluster import SEEDED_CLUSTERERS
+from harness.datasets import dataset_name
+from harness.keys import chained_key, settings_key
+from harness.layers import LayerChoice
+from harness.models import ResolvedModel
+from harness.reduce import SEEDED_REDUCERS
+from harness.sweep import ModelSettings, Sweep
+
+STAGE_KINDS = ("encode", "pool", "transform", "reduce", "cluster")
+
+# The libraries whose versions enter each stage's key.
+STAGE_LIBRARIES: dict[str, tuple[str, ...]] = {
+    "encode": ("torch", "transformers", "sentence-transformers"),
+    "pool": ("torch",),
+    "transform": ("numpy",),
+    "reduce": ("umap-learn", "scikit-learn", "numba"),
+    "cluster": ("hdbscan", "scikit-learn"),
+}
+
+
+@lru_cache(maxsize=None)
+def library_versions(kind: str) -> dict[str, str]:
+    versions = {}
+    for name in STAGE_LIBRARIES[kind]:
+        try:
+            versions[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            versions[name] = "absent"
+    return versions
+
+
+@dataclass(frozen=True)
+class Stage:
+    kind: str
+    key: str
+    parent: str | None
+    settings: dict[str, Any]
+
+
+@dataclass(frozen=True)
+class Trial:
+    """One point of the grid, with the keys of its stages."""
+
+    dataset: str
+    model: ModelSettings
+    resolved_model: ResolvedModel
+    layers: LayerChoice
+    pooling: str
+    normalize: str
+    reducer: Settings
+    clusterer: Settings
+    seed: int
+    stages: dict[str, Stage] = field(compare=False)
+    key: str = ""
+
+    @property
+    def params(self) -> dict[str, Any]:
+        """Flat, consistently named settings: the MLflow params of the trial's run."""
+        flat = {
+            "dataset": self.dataset,
+            "model": self.model.name,
+            "max_length": self.model.max_length if self.model.max_length is not None else "model_default",
+            "layers": self.layers,
+            "pooling": self.pooling,
+            "normalize": self.normalize,
+            "seed": self.seed,
+        }
+        flat.update({f"reduce.{k}": v for k, v in self.reducer.as_params().items()})
+        flat.update({f"cluster.{k}": v for k, v in self.clusterer.as_params().items()})
+        return flat
+
+    @property
+    def name(self) -> str:
+        reducer = self.reducer.as_params()
+        clusterer = self.clusterer.as_params()
+        return (
+            f"{self.dataset}/{self.model.name.rsplit('/', 1)[-1]}/{self.layers}/{self.pooling}/{self.normalize}/"
+            f"{reducer['method']}/{clusterer['method']}/s{self.seed}"
+        )
+
+
+def dataset_key(spec: Settings) -> str:
+    """Key of a dataset entry: its settings, plus the bytes of a file it reads."""
+    settings = spec.as_params()
+    path = getattr(spec, "path", None)
+    if isinstance(path, Path):
+        settings["file_sha256"] = _file_digest(path, path.stat().st_size, path.stat().st_mtime_ns)
+    return settings_key(settings)
+
+
+@lru_cache(maxsize=64)
+def _file_digest(path: Path, size: int, mtime_ns: int) -> str:
+    digest = hashlib.sha256()
+    with path.open("rb") as handle:
+        for block in iter(lambda: handle.read(1 << 22), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def make_stage(kind: str, parent: str | None, settings: dict[str, Any]) -> Stage:
+    full = {**settings, "versions": library_versions(kind)}
+    return Stage(kind=kind, key=chained_key(kind, parent, full), parent=parent, settings=settings)
+
+
+def pool_stage(encode_key: str, layers: LayerChoice, pooling: str) -> Stage:
+    """The pool stage of one variant: every variant of an encode key comes from its one forward pass."""
+    return make_stage("pool", encode_key, {"layers": layers, "pooling": pooling})
+
+
+def trial_stages(
+    dataset_key_: str, model: ModelSettings, resolved: ResolvedModel, layers: LayerChoice, pooling: str,
+    normalize: str, reducer: Settings, clusterer: Settings, seed: int,
+) -> dict[str, Stage]:
+    encode = make_stage("encode", dataset_key_, {
+        "model": resolved.name, "weights": resolved.weights_digest, "max_length": model.max_length,
+    })
+    pool = pool_stage(encode.key, layers, pooling)
+    transform = make_stage("transform", pool.key, {"normalize": normalize})
+    reduce_settings = reducer.as_params()
+    if reduce_settings["method"] in SEEDED_REDUCERS:
+        reduce_settings["seed"] = seed
+    reduce = make_stage("reduce", transform.key, reduce_settings)
+    cluster_settings = clusterer.as_params()
+    if cluster_settings["method"] in SEEDED_CLUSTERERS:
+        cluster_settings["seed"] = seed
+    cluster = make_stage("cluster", reduce.key, cluster_settings)
+    return {"encode": encode, "pool": pool, "transform": transform, "reduce": reduce, "cluster": cluster}
+
+
+def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str, ResolvedModel]) -> list[Trial]:
+    """The cartesian product datasets x models x grid axes, in a stable order."""
+    grid = sweep.grid
+    trials = []
+    for spec, model in itertools.product(sweep.datasets, sweep.models):
+        name = dataset_name(spec)
+        resolved = models[model.name]
+        for layers, pooling, normalize, reducer, clusterer, seed in itertools.product(
+            grid.layers, grid.pooling, grid.normalize, grid.reduce, grid.cluster, grid.seeds
+        ):
+            stages = trial_stages(dataset_keys[name], model, resolved, layers, pooling, normalize, reducer, clusterer, seed)
+            trial = Trial(
+                dataset=name, model=model, resolved_model=resolved, layers=layers, pooling=pooling,
+                normalize=normalize, reducer=reducer, clusterer=clusterer, seed=seed, stages=stages,
+            )
+            key = settings_key({"dataset": dataset_keys[name], "weights": resolved.weights_digest, **trial.params})
+            trials.append(replace(trial, key=key))
+    return trials
+
+
+def stage_counts(trials: list[Trial]) -> dict[str, int]:
+    """Distinct stages of each kind the trials need (encode = forward passes)."""
+    return {kind: len({t.stages[kind].key for t in trials}) for kind in STAGE_KINDS}

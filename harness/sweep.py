@@ -1,0 +1,197 @@
+"""The sweep file: parsed once, at the door, into frozen typed settings.
+
+Every error names the file, the line, the key and what was expected, as one line.
+"""
+
+from __future__ import annotations
+
+import difflib
+from pathlib import Path
+from typing import Annotated, Any, Optional, Union
+
+import yaml
+from pydantic import AfterValidator, Field, PositiveInt, ValidationError, ValidationInfo, field_validator, model_validator
+
+from harness import _yaml_lines
+from harness._settings import Settings
+from harness.cluster import ClustererSettings
+from harness.datasets import DatasetSettings, dataset_name
+from harness.errors import SweepError
+from harness.layers import LAYER_SELECTIONS
+from harness.pooling import POOLINGS
+from harness.reduce import ReducerSettings, UmapSettings
+from harness.transforms import NORMALIZATIONS
+
+RANKING_METRICS = ("ari", "ami", "nmi", "v_measure", "ari_clustered", "ami_clustered", "nmi_clustered", "v_measure_clustered")
+
+
+def _one_of(value: Any, choices: Any, what: str) -> str:
+    names = sorted(choices)
+    hint = difflib.get_close_matches(str(value), names, n=1)
+    did_you_mean = f" (did you mean '{hint[0]}'?)" if hint else ""
+    return f"{value!r} is not {what}; expected one of {', '.join(names)}{did_you_mean}"
+
+
+def _unique(values: list, what: str) -> list:
+    seen = []
+    for value in values:
+        if value in seen:
+            shown = value.as_params() if isinstance(value, Settings) else value
+            raise ValueError(f"{what}: {shown!r} is listed twice")
+        seen.append(value)
+    return values
+
+
+class ModelSettings(Settings):
+    name: str = Field(min_length=1)
+    max_length: Optional[PositiveInt] = None
+    batch_size: PositiveInt = 64
+    revision: Optional[str] = None
+    trust_remote_code: bool = False
+
+
+def _registered(registry: dict, what: str) -> AfterValidator:
+    def check(value: Any) -> Any:
+        if isinstance(value, str) and value not in registry:
+            raise ValueError(_one_of(value, registry, what))
+        return value
+
+    return AfterValidator(check)
+
+
+PoolingName = Annotated[str, _registered(POOLINGS, "a pooling")]
+LayerName = Annotated[Union[int, str], _registered(LAYER_SELECTIONS, "a layer selection (or an integer index)")]
+NormalizationName = Annotated[str, _registered(NORMALIZATIONS, "a normalisation")]
+
+
+class GridSettings(Settings):
+    pooling: list[PoolingName] = Field(min_length=1)
+    layers: list[LayerName] = Field(default_factory=lambda: ["last"], min_length=1)
+    normalize: list[NormalizationName] = Field(default_factory=lambda: ["none"], min_length=1)
+    reduce: list[ReducerSettings] = Field(default_factory=lambda: [UmapSettings(method="umap")], min_length=1)
+    cluster: list[ClustererSettings] = Field(min_length=1)
+    seeds: list[int] = Field(default_factory=lambda: [0], min_length=1)
+
+    @field_validator("pooling", "layers", "normalize", "seeds", "reduce", "cluster")
+    @classmethod
+    def _no_repeats(cls, values: list, info: ValidationInfo) -> list:
+        return _unique(values, info.field_name)
+
+
+class Sweep(Settings):
+    name: str = Field(min_length=1, pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")
+    question: str = ""
+    datasets: list[DatasetSettings] = Field(min_length=1)
+    models: list[ModelSettings] = Field(min_length=1)
+    grid: GridSettings
+    rank_by: str = "ari"
+
+    @field_validator("models", mode="before")
+    @classmethod
+    def _model_shorthand(cls, values: Any) -> Any:
+        if isinstance(values, list):
+            return [{"name": v} if isinstance(v, str) else v for v in values]
+        return values
+
+    @field_validator("rank_by")
+    @classmethod
+    def _known_metric(cls, value: str) -> str:
+        if value not in RANKING_METRICS:
+            raise ValueError(_one_of(value, RANKING_METRICS, "a ranking metric"))
+        return value
+
+    @model_validator(mode="after")
+    def _distinct_names(self) -> "Sweep":
+        _unique([dataset_name(d) for d in self.datasets], "dataset name")
+        _unique([m.name for m in self.models], "model")
+        return self
+
+
+def _key_path(loc: tuple, data: Any) -> tuple[list[Any], str]:
+    """The YAML path an error location points at, and its dotted form.
+
+    Pydantic inserts union tags ('umap', 'function-after[...]') into locations; they
+    match no key in the data and are skipped, except a final step, which names a
+    missing key.
+    """
+    path, node = [], data
+    for position, step in enumerate(loc):
+        if isinstance(node, dict) and step in node:
+            node = node[step]
+        elif isinstance(node, list) and isinstance(step, int) and 0 <= step < len(node):
+            node = node[step]
+        elif position == len(loc) - 1 and isinstance(node, dict):
+            node = None
+        else:
+            continue
+        path.append(step)
+    dotted = ""
+    for step in path:
+        dotted += f"[{step}]" if isinstance(step, int) else (f".{step}" if dotted else str(step))
+    return path, dotted
+
+
+def _message(error: dict) -> str:
+    kind, message = error["type"], error["msg"]
+    if kind == "value_error":
+        return message.removeprefix("Value error, ")
+    if kind == "extra_forbidden":
+        return "unknown key"
+    if kind == "missing":
+        return "required key is missing"
+    if kind == "union_tag_invalid":
+        expected = error.get("ctx", {}).get("expected_tags", "")
+        return f"{error['input'] if not isinstance(error['input'], dict) else error.get('ctx', {}).get('tag')!r} is not a known method/source; expected one of {expected}"
+    if kind == "union_tag_not_found":
+        return f"missing '{error.get('ctx', {}).get('discriminator', '').strip(chr(39))}' key"
+    got = error.get("input")
+    shown = f" (got {got!r})" if not isinstance(got, (dict, list)) else ""
+    return f"{message[0].lower()}{message[1:]}{shown}"
+
+
+def sweep_from_text(text: str, source: str, base_dir: Path) -> Sweep:
+    """Parse and validate sweep text; ``source`` names it in errors."""
+    try:
+        data = yaml.safe_load(text)
+    except yaml.MarkedYAMLError as err:
+        mark = err.problem_mark or err.context_mark
+        where = f"{source}:{mark.line + 1}" if mark else source
+        raise SweepError(f"{where}: not valid YAML: {err.problem or err.context}") from None
+    except yaml.YAMLError as err:
+        raise SweepError(f"{source}: not valid YAML: {str(err).splitlines()[0]}") from None
+    if not isinstance(data, dict):
+        raise SweepError(f"{source}:1: the sweep must be a mapping with keys name, datasets, models, grid; got {type(data).__name__}")
+    try:
+        return Sweep.model_validate(data, context={"base_dir": base_dir})
+    except ValidationError as err:
+        first = err.errors()[0]
+        path, dotted = _key_path(first["loc"], data)
+        line = _yaml_lines.line_of(_yaml_lines.node_lines(text), path)
+        where = f"{source}:{line}" if line else source
+        raise SweepError(f"{where}: {dotted or '(top level)'}: {_message(first)}") from None
+
+
+def load_sweep(path: str | Path) -> Sweep:
+    """Read and validate a sweep file. Raises SweepError with one line on any problem."""
+    path = Path(path)
+    try:
+        raw = path.read_bytes()
+    except OSError as err:
+        raise SweepError(f"{path}: cannot read the sweep file: {err.strerror}") from None
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as err:
+        raise SweepError(f"{path}: the sweep file is not valid UTF-8 (byte {err.start})") from None
+    return sweep_from_text(text, str(path), path.parent)
+
+
+def sweep_error_at(source: str | Path, key_path: list[Any], message: str) -> SweepError:
+    """A SweepError for a key found wrong after parsing (against the data or the model), with its line."""
+    try:
+        line = _yaml_lines.line_of(_yaml_lines.node_lines(Path(source).read_text()), key_path)
+    except (OSError, yaml.YAMLError):
+        line = None
+    dotted = ""
+    for step in key_path:
+        dotted += f"[{step}]" if isinstance(step, int) else (f".{step}" if dotted else str(step))
+    return SweepError(f"{source}:{line}: {dotted}: {message}" if line else f"{source}: {dotted}: {message}")
