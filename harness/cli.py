@@ -20,6 +20,7 @@ DEFAULT_RESULTS = Path("results")
 def _quiet_libraries() -> None:
     os.environ.setdefault("HF_HUB_DISABLE_PROGRESS_BARS", "1")
     os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
+    os.environ.setdefault("MLFLOW_LOGGING_LEVEL", "WARNING")
     import logging
     import warnings
 

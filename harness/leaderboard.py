@@ -18,9 +18,14 @@ def ranked(rows: list[dict[str, Any]], metric: str) -> list[dict[str, Any]]:
     return [{**row, "rank": i + 1} for i, row in enumerate(sorted(rows, key=sort_key))]
 
 
-def _cell(value: Any) -> str:
+COUNT_COLUMNS = frozenset({"n_clusters"})
+
+
+def _cell(value: Any, column: str) -> str:
     if isinstance(value, float):
-        return "-" if math.isnan(value) else f"{value:.3f}"
+        if math.isnan(value):
+            return "-"
+        return f"{value:.0f}" if column in COUNT_COLUMNS else f"{value:.3f}"
     return "-" if value is None else str(value)
 
 
@@ -29,7 +34,7 @@ def table(rows: list[dict[str, Any]], metric: str, limit: int | None = None) -> 
     columns = [c.format(metric=metric) for c in COLUMNS]
     columns = list(dict.fromkeys(columns))
     shown = rows[:limit] if limit else rows
-    cells = [[_cell(row.get(c)) for c in columns] for row in shown]
+    cells = [[_cell(row.get(c), c) for c in columns] for row in shown]
     widths = [max(len(c), *(len(r[i]) for r in cells)) if cells else len(c) for i, c in enumerate(columns)]
     lines = ["  ".join(c.ljust(w) for c, w in zip(columns, widths))]
     lines.append("  ".join("-" * w for w in widths))

@@ -166,6 +166,18 @@ def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str,
     return trials
 
 
+NOT_APPLICABLE = "n/a"
+
+
+def aligned_params(trials: list[Trial]) -> dict[str, dict[str, Any]]:
+    """Each trial's params under the union of all names (``n/a`` where a setting does not apply), by trial key.
+
+    The same names on every run of a sweep keep MLflow's compare and parallel-coordinates views aligned.
+    """
+    names = sorted({name for trial in trials for name in trial.params})
+    return {t.key: {name: t.params.get(name, NOT_APPLICABLE) for name in names} for t in trials}
+
+
 def stage_counts(trials: list[Trial]) -> dict[str, int]:
     """Distinct stages of each kind the trials need (encode = forward passes)."""
     return {kind: len({t.stages[kind].key for t in trials}) for kind in STAGE_KINDS}

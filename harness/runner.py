@@ -22,7 +22,7 @@ from harness.datasets import Corpus, dataset_name, loaded_corpus
 from harness.errors import HarnessError
 from harness.layers import layer_choice_fits, output_width
 from harness.models import ResolvedModel, resolve_model
-from harness.plan import Trial, dataset_key, planned_trials
+from harness.plan import Trial, aligned_params, dataset_key, planned_trials
 from harness.reduce import reduction_limits
 from harness.sweep import Sweep, load_sweep, sweep_error_at
 
@@ -86,7 +86,14 @@ def prepared_sweep(path: str | Path) -> PreparedSweep:
 
 
 def loaded_corpora(prepared: PreparedSweep) -> dict[str, Corpus]:
-    return {dataset_name(spec): loaded_corpus(spec) for spec in prepared.sweep.datasets}
+    """Load every dataset; a data problem is reported at the sweep entry that names the data."""
+    corpora = {}
+    for index, spec in enumerate(prepared.sweep.datasets):
+        try:
+            corpora[dataset_name(spec)] = loaded_corpus(spec)
+        except HarnessError as err:
+            raise sweep_error_at(prepared.path, ["datasets", index], str(err)) from None
+    return corpora
 
 
 def check_against_data(prepared: PreparedSweep, corpora: dict[str, Corpus]) -> None:
@@ -163,6 +170,7 @@ def execute_sweep(
               "harness.question": sweep.question},
     )
     executor = StageExecutor(corpora, prepared.trials)
+    params = aligned_params(prepared.trials)
     results: list[TrialResult] = []
     trials = progress(prepared.trials, desc="trials", unit="trial") if progress else prepared.trials
     current: Optional[str] = None
@@ -170,7 +178,7 @@ def execute_sweep(
         tracker.log_text(parent, prepared.path.read_text(), "sweep.yaml")
         for trial in trials:
             corpus = corpora[trial.dataset]
-            current = tracker.start_trial(trial.name, trial.key, trial.params, tags={
+            current = tracker.start_trial(trial.name, trial.key, params[trial.key], tags={
                 "harness.dataset_fingerprint": corpus.fingerprint,
                 "harness.model_source": trial.resolved_model.source,
                 "harness.model_weights_sha256": trial.resolved_model.weights_digest,

@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import Annotated, Any, Optional, Union
 
 import yaml
-from pydantic import AfterValidator, Field, PositiveInt, ValidationError, ValidationInfo, field_validator, model_validator
+from pydantic import AfterValidator, Field, PositiveInt, ValidationError, ValidationInfo, field_validator
 
 from harness import _yaml_lines
 from harness._settings import Settings
@@ -100,19 +100,25 @@ class Sweep(Settings):
             raise ValueError(_one_of(value, RANKING_METRICS, "a ranking metric"))
         return value
 
-    @model_validator(mode="after")
-    def _distinct_names(self) -> "Sweep":
-        _unique([dataset_name(d) for d in self.datasets], "dataset name")
-        _unique([m.name for m in self.models], "model")
-        return self
+    @field_validator("datasets")
+    @classmethod
+    def _distinct_dataset_names(cls, values: list) -> list:
+        _unique([dataset_name(d) for d in values], "dataset name")
+        return values
+
+    @field_validator("models")
+    @classmethod
+    def _distinct_models(cls, values: list[ModelSettings]) -> list[ModelSettings]:
+        _unique([m.name for m in values], "model")
+        return values
 
 
-def _key_path(loc: tuple, data: Any) -> tuple[list[Any], str]:
+def _key_path(loc: tuple, data: Any, missing_key: bool) -> tuple[list[Any], str]:
     """The YAML path an error location points at, and its dotted form.
 
     Pydantic inserts union tags ('umap', 'function-after[...]') into locations; they
-    match no key in the data and are skipped, except a final step, which names a
-    missing key.
+    match no key in the data and are skipped, except the last step of a
+    missing-key error, which names that key.
     """
     path, node = [], data
     for position, step in enumerate(loc):
@@ -120,7 +126,7 @@ def _key_path(loc: tuple, data: Any) -> tuple[list[Any], str]:
             node = node[step]
         elif isinstance(node, list) and isinstance(step, int) and 0 <= step < len(node):
             node = node[step]
-        elif position == len(loc) - 1 and isinstance(node, dict):
+        elif missing_key and position == len(loc) - 1 and isinstance(node, dict):
             node = None
         else:
             continue
@@ -140,8 +146,8 @@ def _message(error: dict) -> str:
     if kind == "missing":
         return "required key is missing"
     if kind == "union_tag_invalid":
-        expected = error.get("ctx", {}).get("expected_tags", "")
-        return f"{error['input'] if not isinstance(error['input'], dict) else error.get('ctx', {}).get('tag')!r} is not a known method/source; expected one of {expected}"
+        ctx = error.get("ctx", {})
+        return f"{ctx.get('tag')!r} is not a known {ctx.get('discriminator', '').strip(chr(39))}; expected one of {ctx.get('expected_tags', '')}"
     if kind == "union_tag_not_found":
         return f"missing '{error.get('ctx', {}).get('discriminator', '').strip(chr(39))}' key"
     got = error.get("input")
@@ -165,7 +171,7 @@ def sweep_from_text(text: str, source: str, base_dir: Path) -> Sweep:
         return Sweep.model_validate(data, context={"base_dir": base_dir})
     except ValidationError as err:
         first = err.errors()[0]
-        path, dotted = _key_path(first["loc"], data)
+        path, dotted = _key_path(first["loc"], data, first["type"] == "missing")
         line = _yaml_lines.line_of(_yaml_lines.node_lines(text), path)
         where = f"{source}:{line}" if line else source
         raise SweepError(f"{where}: {dotted or '(top level)'}: {_message(first)}") from None

@@ -6,7 +6,6 @@ Runs are created and ended explicitly through MlflowClient, so no global
 
 from __future__ import annotations
 
-import math
 import tempfile
 import time
 from pathlib import Path
@@ -67,7 +66,7 @@ class SweepTracker:
         now = int(time.time() * 1000)
         self.client.log_batch(
             run_id,
-            metrics=[Metric(k, float(v), now, 0) for k, v in (metrics or {}).items() if v is not None and not math.isnan(float(v))],
+            metrics=[Metric(k, float(v), now, 0) for k, v in (metrics or {}).items() if v is not None],
             params=[Param(k, str(v)) for k, v in (params or {}).items()],
             tags=[RunTag(k, str(v)[:MAX_TAG_LENGTH]) for k, v in (tags or {}).items()],
         )

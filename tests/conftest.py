@@ -1,0 +1,71 @@
+"""Shared fixtures. Tests never touch the network: HF_HUB_OFFLINE is forced here."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import pytest
+
+os.environ["HF_HUB_OFFLINE"] = "1"
+os.environ.setdefault("HF_HUB_DISABLE_PROGRESS_BARS", "1")
+os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
+os.environ.setdefault("MLFLOW_LOGGING_LEVEL", "WARNING")
+
+REPO = Path(__file__).resolve().parents[1]
+SHARED_DATASETS = REPO.parent / "shared" / "datasets"
+MINILM = "sentence-transformers/all-MiniLM-L6-v2"
+
+
+@pytest.fixture(scope="session")
+def tiny_model_dir(tmp_path_factory) -> Path:
+    """A randomly initialised 2-layer BERT (hidden 32) with the MiniLM tokenizer, saved as a model folder."""
+    import torch
+    from transformers import AutoTokenizer, BertConfig, BertModel
+
+    from harness.models import resolve_model
+
+    folder = tmp_path_factory.mktemp("tiny_bert")
+    tokenizer = AutoTokenizer.from_pretrained(str(resolve_model(MINILM).folder))
+    torch.manual_seed(0)
+    config = BertConfig(
+        vocab_size=tokenizer.vocab_size, hidden_size=32, num_hidden_layers=2, num_attention_heads=2,
+        intermediate_size=64, max_position_embeddings=128,
+    )
+    BertModel(config).eval().save_pretrained(folder)
+    tokenizer.save_pretrained(folder)
+    return folder
+
+
+def write_sweep(folder: Path, text: str, name: str = "sweep.yaml") -> Path:
+    path = folder / name
+    path.write_text(text)
+    return path
+
+
+_MEASUREMENTS: list[str] = []
+
+
+@pytest.fixture
+def record_measurement():
+    """Tests that measure something (without asserting a direction) report it in the session summary."""
+    return _MEASUREMENTS.append
+
+
+def pytest_terminal_summary(terminalreporter):
+    if _MEASUREMENTS:
+        terminalreporter.section("measurements")
+        for line in _MEASUREMENTS:
+            terminalreporter.write_line(line)
+
+
+def finished_runs(tracking_uri: str, experiment: str):
+    """(parent runs, child runs) of an experiment, read back through MLflow's client."""
+    from mlflow.tracking import MlflowClient
+
+    client = MlflowClient(tracking_uri=tracking_uri)
+    experiment_id = client.get_experiment_by_name(experiment).experiment_id
+    runs = client.search_runs([experiment_id], max_results=5000)
+    parents = [r for r in runs if "mlflow.parentRunId" not in r.data.tags]
+    children = [r for r in runs if "mlflow.parentRunId" in r.data.tags]
+    return client, parents, children

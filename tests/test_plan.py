@@ -1,0 +1,74 @@
+"""Planning: trial keys, stage sharing, and the plan command."""
+
+from __future__ import annotations
+
+from harness.cli import main
+from harness.runner import prepared_sweep
+
+from conftest import write_sweep
+
+SWEEP = """
+name: keys
+datasets:
+  - {source: synthetic, n_texts: 200, seed: 1}
+models: [sentence-transformers/all-MiniLM-L6-v2]
+grid:
+  pooling: [cls, mean, max]
+  layers: [last, mean_last_4]
+  reduce:
+    - {method: umap, n_components: 5, n_neighbors: 10}
+    - {method: pca, n_components: 8}
+  cluster:
+    - {method: hdbscan, min_cluster_size: 10}
+    - {method: kmeans, k: labels}
+  seeds: [0, 1]
+"""
+
+REORDERED = """
+grid:
+  seeds: [0, 1]
+  cluster:
+    - {k: labels, method: kmeans}
+    - {min_cluster_size: 10, method: hdbscan}
+  reduce:
+    - {n_components: 8, method: pca}
+    - {n_neighbors: 10, method: umap, n_components: 5}
+  layers: [mean_last_4, last]
+  pooling: [max, cls, mean]
+models: [sentence-transformers/all-MiniLM-L6-v2]
+datasets:
+  - {seed: 1, n_texts: 200, source: synthetic}
+name: keys
+"""
+
+
+def test_trial_keys_do_not_depend_on_key_or_list_order(tmp_path):
+    first = prepared_sweep(write_sweep(tmp_path, SWEEP, "a.yaml"))
+    second = prepared_sweep(write_sweep(tmp_path, REORDERED, "b.yaml"))
+    assert len(first.trials) == 3 * 2 * 2 * 2 * 2 == 48
+    assert {t.key for t in first.trials} == {t.key for t in second.trials}
+    assert len({t.key for t in first.trials}) == 48
+
+
+def test_stages_are_shared_along_common_prefixes(tmp_path):
+    trials = prepared_sweep(write_sweep(tmp_path, SWEEP)).trials
+    distinct = {kind: len({t.stages[kind].key for t in trials}) for kind in ("encode", "pool", "reduce", "cluster")}
+    # One forward pass; 6 pooled variants; PCA is seed-free (6 fits) while UMAP is fitted per seed (12).
+    # HDBSCAN is seed-free: one per reduction (18). k-means is seeded: on a seed-free PCA output it runs once per
+    # seed (6 x 2), on a seeded UMAP output only with that UMAP's own seed (12): 24.
+    assert distinct == {"encode": 1, "pool": 6, "reduce": 6 + 12, "cluster": 18 + 24}
+
+
+def test_a_changed_setting_changes_only_downstream_keys(tmp_path):
+    base = prepared_sweep(write_sweep(tmp_path, SWEEP, "a.yaml")).trials[0]
+    changed = prepared_sweep(write_sweep(tmp_path, SWEEP.replace("min_cluster_size: 10", "min_cluster_size: 12"), "b.yaml")).trials[0]
+    for kind in ("encode", "pool", "transform", "reduce"):
+        assert base.stages[kind].key == changed.stages[kind].key
+    assert base.stages["cluster"].key != changed.stages["cluster"].key
+
+
+def test_plan_command_counts_work_without_running(tmp_path, capsys):
+    assert main(["plan", str(write_sweep(tmp_path, SWEEP))]) == 0
+    out = capsys.readouterr().out
+    assert "trials:          48" in out and "forward passes:  1" in out and "pca 6, umap 12" in out
+    assert not (tmp_path / "results").exists()
