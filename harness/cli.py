@@ -30,24 +30,38 @@ def _quiet_libraries() -> None:
     warnings.filterwarnings("ignore", category=DeprecationWarning)
 
 
+STAGE_LABELS = {
+    "encode": "forward passes",
+    "pool": "pooled variants",
+    "transform": "transforms",
+    "reduce": "reductions",
+    "cluster": "clusterings",
+}
+
+
 def command_plan(args: argparse.Namespace) -> int:
-    from harness.plan import stage_counts
+    from harness.cache import StageCache
+    from harness.plan import stage_work
     from harness.runner import prepared_sweep
 
     prepared = prepared_sweep(args.sweep)
+    cache = StageCache(Path(args.cache_dir) if args.cache_dir else Path(args.results_dir) / "cache")
     for trial in prepared.trials:
-        print(f"{trial.key}  {trial.name}")
-    counts = stage_counts(prepared.trials)
-    methods: dict[str, int] = {}
-    for key, trial in {t.stages["reduce"].key: t for t in prepared.trials}.items():
-        methods[trial.reducer.method] = methods.get(trial.reducer.method, 0) + 1
+        same = f"  (same stages as {trial.equivalent_to})" if trial.equivalent_to else ""
+        print(f"{trial.key}  {trial.name}{same}")
+    equivalent = [t for t in prepared.trials if t.equivalent_to]
+    reducers = {t.stages["reduce"].key: t.reducer.method for t in prepared.trials}
+    by_method = {m: list(reducers.values()).count(m) for m in sorted(set(reducers.values()))}
     print()
-    print(f"trials:          {len(prepared.trials)}")
-    print(f"forward passes:  {counts['encode']}  (one per model x dataset x max length)")
-    print(f"pooled variants: {counts['pool']}  (all from those forward passes)")
-    print(f"transforms:      {counts['transform']}")
-    print(f"reductions:      {counts['reduce']}  ({', '.join(f'{m} {n}' for m, n in sorted(methods.items()))})")
-    print(f"clusterings:     {counts['cluster']}")
+    print(f"{'trials':<16} {len(prepared.trials)}  ({len(prepared.trials) - len(equivalent)} computed, "
+          f"{len(equivalent)} equivalent to another trial: same stages, computed once)")
+    print(f"{'stage':<16} {'needed':>6} {'cached':>6} {'to run':>6}")
+    for work in stage_work(prepared.trials, cache.has):
+        extra = f"  ({', '.join(f'{m} {n}' for m, n in by_method.items())})" if work.kind == "reduce" else ""
+        print(f"{STAGE_LABELS[work.kind]:<16} {work.needed:>6} {work.cached:>6} {work.to_run:>6}{extra}")
+    if equivalent:
+        print("\nmean and mean_sqrt_len differ by a positive factor per text: after l2 normalisation or a cosine UMAP")
+        print("they give the same clusters, and seed-free stages give the same result for every seed.")
     return 0
 
 
@@ -56,14 +70,26 @@ def command_run(args: argparse.Namespace) -> int:
     from harness.runner import run_sweep_file
 
     _quiet_libraries()
-    progress = None
+    progress = encode_progress = None
     if not args.no_progress:
         from tqdm import tqdm
 
         progress = lambda items, **kw: tqdm(items, file=sys.stderr, dynamic_ncols=True, **kw)  # noqa: E731
-    result = run_sweep_file(args.sweep, Path(args.results_dir), args.tracking_uri, progress=progress)
+
+        def encode_progress(total: int, description: str):
+            bar = tqdm(total=total, desc=description, unit="text", file=sys.stderr, dynamic_ncols=True, leave=False)
+            return bar.update, bar.close
+
+    result = run_sweep_file(
+        args.sweep, Path(args.results_dir), args.tracking_uri,
+        cache_dir=Path(args.cache_dir) if args.cache_dir else None, use_cache=not args.no_cache,
+        resume=not args.rerun_finished, progress=progress, encode_progress=encode_progress,
+    )
     print(table(result.leaderboard(), result.rank_by))
-    print(f"\nMLflow: {result.tracking_uri}  (sweep run {result.parent_run_id})")
+    reused = sum(r.status == "REUSED" for r in result.results)
+    work = ", ".join(f"{k} {v}" for k, v in sorted(result.work.items())) or "none"
+    print(f"\n{len(result.results) - reused} trials run, {reused} reused from earlier runs; work done: {work}")
+    print(f"MLflow: {result.tracking_uri}  (sweep run {result.parent_run_id})")
     if result.failed:
         print(f"{len(result.failed)} of {len(result.results)} trials failed:", file=sys.stderr)
         for failed in result.failed:
@@ -72,20 +98,68 @@ def command_run(args: argparse.Namespace) -> int:
     return 0
 
 
+def command_cache_info(args: argparse.Namespace) -> int:
+    from harness.cache import StageCache
+
+    root = Path(args.cache_dir) if args.cache_dir else Path(args.results_dir) / "cache"
+    entries = StageCache(root).entries()
+    print(f"cache: {root.resolve()}")
+    if not entries:
+        print("empty")
+        return 0
+    print(f"{'stage':<10} {'entries':>8} {'MB':>10}")
+    for kind in sorted({e.kind for e in entries}):
+        mine = [e for e in entries if e.kind == kind]
+        print(f"{kind:<10} {len(mine):>8} {sum(e.bytes for e in mine) / 1e6:>10.1f}")
+    print(f"{'total':<10} {len(entries):>8} {sum(e.bytes for e in entries) / 1e6:>10.1f}")
+    return 0
+
+
+def command_cache_prune(args: argparse.Namespace) -> int:
+    from harness.cache import StageCache
+
+    if args.older_than < 0:
+        raise HarnessError(f"--older-than: expected a number of days >= 0, got {args.older_than}")
+    root = Path(args.cache_dir) if args.cache_dir else Path(args.results_dir) / "cache"
+    removed = StageCache(root).prune(args.older_than)
+    print(f"removed {len(removed)} entries ({sum(e.bytes for e in removed) / 1e6:.1f} MB) unused for {args.older_than:g} days")
+    return 0
+
+
+def _add_store_options(command: argparse.ArgumentParser) -> None:
+    command.add_argument("--results-dir", default=str(DEFAULT_RESULTS),
+                         help="where the MLflow store, artifacts and cache live (default: results)")
+    command.add_argument("--cache-dir", default=None, help="stage cache folder (default: RESULTS_DIR/cache)")
+
+
 def parser() -> argparse.ArgumentParser:
     top = argparse.ArgumentParser(prog="harness", description="Score sentence-embedding setups for topic discovery.")
     commands = top.add_subparsers(dest="command", required=True)
 
     run = commands.add_parser("run", help="run every trial of a sweep and log it to MLflow")
     run.add_argument("sweep", help="the sweep file (YAML)")
-    run.add_argument("--results-dir", default=str(DEFAULT_RESULTS), help="where the MLflow store, artifacts and cache live (default: results)")
+    _add_store_options(run)
     run.add_argument("--tracking-uri", default=None, help="MLflow tracking URI (default: sqlite:///RESULTS_DIR/mlflow.db)")
-    run.add_argument("--no-progress", action="store_true", help="no progress bar")
+    run.add_argument("--no-cache", action="store_true", help="neither read nor write the stage cache")
+    run.add_argument("--rerun-finished", action="store_true",
+                     help="run trials again even where the experiment has a FINISHED run with the same key")
+    run.add_argument("--no-progress", action="store_true", help="no progress bars")
     run.set_defaults(handler=command_run)
 
     plan = commands.add_parser("plan", help="list a sweep's trials and the work they need, without running anything")
     plan.add_argument("sweep", help="the sweep file (YAML)")
+    _add_store_options(plan)
     plan.set_defaults(handler=command_plan)
+
+    cache = commands.add_parser("cache", help="inspect or prune the stage cache")
+    cache_commands = cache.add_subparsers(dest="cache_command", required=True)
+    info = cache_commands.add_parser("info", help="entries and size per stage kind")
+    _add_store_options(info)
+    info.set_defaults(handler=command_cache_info)
+    prune = cache_commands.add_parser("prune", help="remove entries not used for some days")
+    prune.add_argument("--older-than", type=float, required=True, metavar="DAYS")
+    _add_store_options(prune)
+    prune.set_defaults(handler=command_cache_prune)
     return top
 
 

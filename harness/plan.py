@@ -22,8 +22,10 @@ from harness.datasets import dataset_name
 from harness.keys import chained_key, settings_key
 from harness.layers import LayerChoice
 from harness.models import ResolvedModel
-from harness.reduce import SEEDED_REDUCERS
+from harness.pooling import MEAN_SCALED
+from harness.reduce import SCALE_INVARIANT_REDUCERS, SEEDED_REDUCERS
 from harness.sweep import ModelSettings, Sweep
+from harness.transforms import SCALE_REMOVING
 
 STAGE_KINDS = ("encode", "pool", "transform", "reduce", "cluster")
 
@@ -71,6 +73,7 @@ class Trial:
     seed: int
     stages: dict[str, Stage] = field(compare=False)
     key: str = ""
+    equivalent_to: str | None = None  # key of an earlier trial that shares every stage
 
     @property
     def params(self) -> dict[str, Any]:
@@ -121,19 +124,38 @@ def make_stage(kind: str, parent: str | None, settings: dict[str, Any]) -> Stage
     return Stage(kind=kind, key=chained_key(kind, parent, full), parent=parent, settings=settings)
 
 
-def pool_stage(encode_key: str, layers: LayerChoice, pooling: str) -> Stage:
+def pool_stage(encode_key: str, layers: LayerChoice, pooling: str, dtype: str) -> Stage:
     """The pool stage of one variant: every variant of an encode key comes from its one forward pass."""
-    return make_stage("pool", encode_key, {"layers": layers, "pooling": pooling})
+    return make_stage("pool", encode_key, {"layers": layers, "pooling": pooling, "dtype": dtype})
+
+
+def scale_invariant_path(normalize: str, reducer: Settings) -> bool:
+    """Whether multiplying each pooled row by a positive factor leaves the clustering unchanged."""
+    if normalize in SCALE_REMOVING:
+        return True
+    invariant = SCALE_INVARIANT_REDUCERS.get(reducer.method)
+    return normalize == "none" and invariant is not None and invariant(reducer)
+
+
+def computed_pooling(pooling: str, normalize: str, reducer: Settings) -> str:
+    """The pooling whose output a trial's downstream stages are computed from.
+
+    mean and mean_sqrt_len differ by a positive factor per row; on a scale-invariant
+    path they give the same clusters, so both are computed from mean.
+    """
+    if pooling in MEAN_SCALED and scale_invariant_path(normalize, reducer):
+        return "mean"
+    return pooling
 
 
 def trial_stages(
     dataset_key_: str, model: ModelSettings, resolved: ResolvedModel, layers: LayerChoice, pooling: str,
-    normalize: str, reducer: Settings, clusterer: Settings, seed: int,
+    normalize: str, reducer: Settings, clusterer: Settings, seed: int, dtype: str = "float32",
 ) -> dict[str, Stage]:
     encode = make_stage("encode", dataset_key_, {
         "model": resolved.name, "weights": resolved.weights_digest, "max_length": model.max_length,
     })
-    pool = pool_stage(encode.key, layers, pooling)
+    pool = pool_stage(encode.key, layers, computed_pooling(pooling, normalize, reducer), dtype)
     transform = make_stage("transform", pool.key, {"normalize": normalize})
     reduce_settings = reducer.as_params()
     if reduce_settings["method"] in SEEDED_REDUCERS:
@@ -156,14 +178,25 @@ def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str,
         for layers, pooling, normalize, reducer, clusterer, seed in itertools.product(
             grid.layers, grid.pooling, grid.normalize, grid.reduce, grid.cluster, grid.seeds
         ):
-            stages = trial_stages(dataset_keys[name], model, resolved, layers, pooling, normalize, reducer, clusterer, seed)
+            stages = trial_stages(dataset_keys[name], model, resolved, layers, pooling, normalize, reducer, clusterer,
+                                  seed, sweep.storage_dtype)
             trial = Trial(
                 dataset=name, model=model, resolved_model=resolved, layers=layers, pooling=pooling,
                 normalize=normalize, reducer=reducer, clusterer=clusterer, seed=seed, stages=stages,
             )
             key = settings_key({"dataset": dataset_keys[name], "weights": resolved.weights_digest, **trial.params})
             trials.append(replace(trial, key=key))
-    return trials
+    return _marked_equivalents(trials)
+
+
+def _marked_equivalents(trials: list[Trial]) -> list[Trial]:
+    """Point each trial whose whole stage chain an earlier trial already has at that trial."""
+    first: dict[str, str] = {}
+    marked = []
+    for trial in trials:
+        representative = first.setdefault(trial.stages["cluster"].key, trial.key)
+        marked.append(trial if representative == trial.key else replace(trial, equivalent_to=representative))
+    return marked
 
 
 NOT_APPLICABLE = "n/a"
@@ -181,3 +214,34 @@ def aligned_params(trials: list[Trial]) -> dict[str, dict[str, Any]]:
 def stage_counts(trials: list[Trial]) -> dict[str, int]:
     """Distinct stages of each kind the trials need (encode = forward passes)."""
     return {kind: len({t.stages[kind].key for t in trials}) for kind in STAGE_KINDS}
+
+
+@dataclass(frozen=True)
+class StageWork:
+    kind: str
+    needed: int
+    cached: int
+
+    @property
+    def to_run(self) -> int:
+        return self.needed - self.cached
+
+
+def stage_work(trials: list[Trial], is_cached) -> list[StageWork]:
+    """Per stage kind: distinct stages needed and how many ``is_cached(kind, key)`` already holds.
+
+    A forward pass is needed for an encode key when any of its pooled variants is missing.
+    """
+    work = []
+    for kind in STAGE_KINDS:
+        stages = {t.stages[kind].key: t for t in trials}
+        if kind == "encode":
+            cached = sum(
+                all(is_cached("pool", t.stages["pool"].key) for t in trials if t.stages["encode"].key == key)
+                and is_cached("encode", key)
+                for key in stages
+            )
+        else:
+            cached = sum(is_cached(kind, key) for key in stages)
+        work.append(StageWork(kind, len(stages), cached))
+    return work

@@ -68,7 +68,7 @@ class SweepResult:
 def _leaderboard(results: list[TrialResult], rank_by: str) -> list[dict[str, Any]]:
     from harness.leaderboard import ranked
 
-    return ranked([{"trial": r.trial.name, **r.scores} for r in results if r.status == "FINISHED"], rank_by)
+    return ranked([{"trial": r.trial.name, **r.scores} for r in results if r.status in ("FINISHED", "REUSED")], rank_by)
 
 
 def prepared_sweep(path: str | Path) -> PreparedSweep:
@@ -147,87 +147,114 @@ def run_trial(executor, trial: Trial, corpus: Corpus) -> tuple[dict[str, float],
     return scores, clusters, counts
 
 
+def _log_trial(tracker, run_id: str, trial: Trial, corpus: Corpus, scores: dict[str, float],
+               clusters: np.ndarray, counts: np.ndarray) -> None:
+    import matplotlib.pyplot as plt
+
+    from harness.plots import token_counts_by_cluster_figure
+
+    with tempfile.TemporaryDirectory() as folder:
+        table = Path(folder) / "assignments.parquet"
+        _assignments_table(corpus, clusters, counts).to_parquet(table, index=False)
+        figure = token_counts_by_cluster_figure(counts, clusters, trial.name)
+        plot = Path(folder) / "token_counts_by_cluster.png"
+        figure.savefig(plot)
+        plt.close(figure)
+        tracker.log_files(run_id, [table, plot])
+    tracker.log_results(run_id, scores)
+
+
 def execute_sweep(
     prepared: PreparedSweep,
     corpora: dict[str, Corpus],
     *,
     results_dir: Path,
     tracking_uri: str,
+    cache_dir: Optional[Path] = None,
+    resume: bool = True,
     progress: Optional[ProgressFactory] = None,
+    encode_progress=None,
 ) -> SweepResult:
-    """Run every trial, logging each as a nested MLflow run under one sweep run."""
-    from harness.plots import token_counts_by_cluster_figure
+    """Run every trial not already FINISHED in the experiment, logging each as a nested run under one sweep run."""
+    from harness.cache import StageCache
     from harness.stages import StageExecutor
     from harness.tracking import SweepTracker
 
     sweep = prepared.sweep
     tracker = SweepTracker(tracking_uri, results_dir / "artifacts", sweep.name)
+    killed = tracker.mark_orphans_killed()
+    done = tracker.finished_trials() if resume else {}
+    results: list[TrialResult] = [
+        TrialResult(t, "REUSED", {k: v for k, v in done[t.key].data.metrics.items()}, run_id=done[t.key].info.run_id)
+        for t in prepared.trials if t.key in done
+    ]
+    pending = [t for t in prepared.trials if t.key not in done]
     grid = sweep.grid.as_params()
     parent = tracker.start_sweep(
         sweep.name,
         params={"n_trials": len(prepared.trials), "rank_by": sweep.rank_by, **{f"grid.{k}": v for k, v in grid.items()}},
         tags={"harness.version": __version__, "harness.sweep_sha256": _file_sha256(prepared.path),
-              "harness.question": sweep.question},
+              "harness.question": sweep.question, "harness.reused_trials": str(len(results)),
+              "harness.orphans_marked_killed": str(killed)},
     )
-    executor = StageExecutor(corpora, prepared.trials)
+    executor = StageExecutor(corpora, pending, StageCache(cache_dir) if cache_dir else None, encode_progress)
     params = aligned_params(prepared.trials)
-    results: list[TrialResult] = []
-    trials = progress(prepared.trials, desc="trials", unit="trial") if progress else prepared.trials
+    trials = progress(pending, desc="trials", unit="trial") if progress else pending
     current: Optional[str] = None
     try:
         tracker.log_text(parent, prepared.path.read_text(), "sweep.yaml")
         for trial in trials:
             corpus = corpora[trial.dataset]
-            current = tracker.start_trial(trial.name, trial.key, params[trial.key], tags={
+            tags = {
                 "harness.dataset_fingerprint": corpus.fingerprint,
                 "harness.model_source": trial.resolved_model.source,
                 "harness.model_weights_sha256": trial.resolved_model.weights_digest,
-            })
+            }
+            if trial.equivalent_to:
+                tags["harness.equivalent_to"] = trial.equivalent_to
+            current = tracker.start_trial(trial.name, trial.key, params[trial.key], tags=tags)
             try:
                 scores, clusters, counts = run_trial(executor, trial, corpus)
-                with tempfile.TemporaryDirectory() as folder:
-                    table = Path(folder) / "assignments.parquet"
-                    _assignments_table(corpus, clusters, counts).to_parquet(table, index=False)
-                    figure = token_counts_by_cluster_figure(counts, clusters, trial.name)
-                    plot = Path(folder) / "token_counts_by_cluster.png"
-                    figure.savefig(plot)
-                    import matplotlib.pyplot as plt
-
-                    plt.close(figure)
-                    tracker.log_files(current, [table, plot])
-                tracker.log_results(current, scores)
+                _log_trial(tracker, current, trial, corpus, scores, clusters, counts)
                 tracker.end(current, "FINISHED")
                 results.append(TrialResult(trial, "FINISHED", scores, run_id=current))
             except (KeyboardInterrupt, SystemExit):
                 raise
             except Exception as err:
                 message = f"{type(err).__name__}: {err}".splitlines()[0]
-                tracker.end(current, "FAILED", error=message)
                 tracker.log_results(current, {}, tags={"harness.traceback": traceback.format_exc()[-4000:]})
+                tracker.end(current, "FAILED", error=message)
                 results.append(TrialResult(trial, "FAILED", error=message, run_id=current))
             current = None
         from harness.leaderboard import table as leaderboard_table
 
         tracker.log_text(parent, leaderboard_table(_leaderboard(results, sweep.rank_by), sweep.rank_by), "leaderboard.txt")
         tracker.log_results(parent, {"n_finished": sum(r.status == "FINISHED" for r in results),
-                                     "n_failed": sum(r.status == "FAILED" for r in results)})
-        tracker.end(parent, "FINISHED" if all(r.status == "FINISHED" for r in results) else "FAILED")
+                                     "n_reused": sum(r.status == "REUSED" for r in results),
+                                     "n_failed": sum(r.status == "FAILED" for r in results),
+                                     **{f"work.{k}": v for k, v in executor.work.items()}})
+        tracker.end(parent, "FAILED" if any(r.status == "FAILED" for r in results) else "FINISHED")
     except BaseException:
         if current is not None:
             tracker.end(current, "KILLED")
         tracker.end(parent, "KILLED")
         raise
-    return SweepResult(parent_run_id=parent, tracking_uri=tracking_uri, results=results, work=dict(executor.work), rank_by=sweep.rank_by)
+    return SweepResult(parent_run_id=parent, tracking_uri=tracking_uri, results=results, work=dict(executor.work),
+                       rank_by=sweep.rank_by)
 
 
-def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None = None,
-                   progress: Optional[ProgressFactory] = None) -> SweepResult:
-    """Everything ``harness run`` does, minus printing."""
+def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None = None, *,
+                   cache_dir: Optional[Path] = None, use_cache: bool = True, resume: bool = True,
+                   progress: Optional[ProgressFactory] = None, encode_progress=None) -> SweepResult:
+    """Everything ``harness run`` does, minus printing. The cache defaults to RESULTS_DIR/cache."""
     from harness.tracking import default_tracking_uri
 
     prepared = prepared_sweep(path)
     corpora = loaded_corpora(prepared)
     check_against_data(prepared, corpora)
     results_dir.mkdir(parents=True, exist_ok=True)
-    return execute_sweep(prepared, corpora, results_dir=results_dir,
-                         tracking_uri=tracking_uri or default_tracking_uri(results_dir), progress=progress)
+    return execute_sweep(
+        prepared, corpora, results_dir=results_dir, tracking_uri=tracking_uri or default_tracking_uri(results_dir),
+        cache_dir=(cache_dir or results_dir / "cache") if use_cache else None, resume=resume,
+        progress=progress, encode_progress=encode_progress,
+    )

@@ -1,19 +1,21 @@
 """Computing a trial's stages, each once per key.
 
-The executor holds the outputs of the stages it has computed in this process,
-loads each model once, and runs one forward pass per encode key that yields every
-pooling x layer variant any trial asks of it. Counters record the work done, so
-tests can check what was (not) recomputed without timing anything.
+Outputs are looked up in memory, then in the on-disk cache, and only then
+computed. One forward pass per encode key yields every pooling x layer variant
+that any trial asks of it and that is not stored yet; when all are stored, the
+model is not even loaded. Counters record the work done, so tests can check what
+was (not) recomputed without timing anything.
 """
 
 from __future__ import annotations
 
 import time
 from collections import Counter, defaultdict
-from typing import Callable, Optional
+from typing import Any, Callable, Optional
 
 import numpy as np
 
+from harness.cache import StageCache
 from harness.cluster import cluster_labels
 from harness.datasets import Corpus
 from harness.encode import pooled_variants, token_counts, truncated_fraction
@@ -22,96 +24,130 @@ from harness.plan import Trial, pool_stage
 from harness.reduce import reduced
 from harness.transforms import NORMALIZATIONS
 
+BatchCallback = Callable[[int], None]
+
 
 class StageExecutor:
-    def __init__(self, corpora: dict[str, Corpus], trials: list[Trial], on_encode_batch: Optional[Callable[[int], None]] = None):
+    def __init__(
+        self,
+        corpora: dict[str, Corpus],
+        trials: list[Trial],
+        cache: Optional[StageCache] = None,
+        encode_progress: Optional[Callable[[int, str], tuple[BatchCallback, Callable[[], None]]]] = None,
+    ):
         self.corpora = corpora
-        self.outputs: dict[str, np.ndarray] = {}
-        self.seconds: dict[str, float] = {}
-        self.work = Counter()
+        self.cache = cache
+        self.work: Counter = Counter()
+        self._outputs: dict[str, np.ndarray] = {}
+        self._info: dict[str, dict[str, Any]] = {}
         self._encoders: dict[tuple, LoadedEncoder] = {}
         self._variants: dict[str, set] = defaultdict(set)
-        self._truncated: dict[str, float] = {}
-        self._on_encode_batch = on_encode_batch
+        self._encode_progress = encode_progress
         for trial in trials:
-            self._variants[trial.stages["encode"].key].add((trial.layers, trial.pooling))
+            self._variants[trial.stages["encode"].key].add((trial.layers, trial.stages["pool"].settings["pooling"]))
 
+    # -- storage -------------------------------------------------------------------------------------------
+    def _held(self, kind: str, key: str) -> bool:
+        if key in self._outputs:
+            return True
+        if self.cache is not None:
+            found = self.cache.get(kind, key)
+            if found is not None:
+                self._outputs[key], self._info[key] = found
+                self.work[f"{kind}_cache_hits"] += 1
+                return True
+        return False
+
+    def _keep(self, kind: str, key: str, array: np.ndarray, info: dict[str, Any]) -> None:
+        self._outputs[key], self._info[key] = array, info
+        if self.cache is not None:
+            self.cache.put(kind, key, array, info)
+
+    # -- encode and pool -------------------------------------------------------------------------------------
     def _encoder(self, trial: Trial) -> LoadedEncoder:
         spec = trial.model
         cache_key = (trial.resolved_model.folder, spec.max_length, spec.trust_remote_code)
         if cache_key not in self._encoders:
             self._encoders[cache_key] = loaded_encoder(trial.resolved_model, spec.max_length, spec.trust_remote_code)
+            self.work["model_loads"] += 1
         return self._encoders[cache_key]
 
     def _encode(self, trial: Trial) -> None:
-        """One forward pass producing every variant of this encode key that is not already held."""
+        """Token counts, then one forward pass for every variant of this encode key not yet stored."""
         encode = trial.stages["encode"]
         corpus = self.corpora[trial.dataset]
+        dtype = trial.stages["pool"].settings["dtype"]
+        wanted = {variant: pool_stage(encode.key, *variant, dtype).key for variant in self._variants[encode.key]}
+        missing = [variant for variant, key in wanted.items() if not self._held("pool", key)]
+        if not missing and self._held("encode", encode.key):
+            return
         encoder = self._encoder(trial)
         started = time.perf_counter()
         counts = token_counts(encoder, corpus.texts)
-        pool_keys = {
-            (t_layers, t_pooling): pool_stage(encode.key, t_layers, t_pooling).key
-            for t_layers, t_pooling in self._variants[encode.key]
-        }
-        missing = [variant for variant, key in pool_keys.items() if key not in self.outputs]
-        variants = pooled_variants(encoder, corpus.texts, missing, batch_size=trial.model.batch_size, counts=counts, on_batch=self._on_encode_batch)
+        if not self._held("encode", encode.key):
+            self._keep("encode", encode.key, counts, {
+                "settings": encode.settings, "truncated_fraction": truncated_fraction(counts, encoder),
+                "seconds": time.perf_counter() - started,
+            })
+        if not missing:
+            return
+        on_batch, done = (None, lambda: None)
+        if self._encode_progress is not None:
+            on_batch, done = self._encode_progress(corpus.n_texts, f"encode {trial.dataset} / {trial.model.name}")
+        try:
+            variants = pooled_variants(encoder, corpus.texts, missing, batch_size=trial.model.batch_size,
+                                       counts=counts, on_batch=on_batch)
+        finally:
+            done()
         self.work["forward_passes"] += 1
-        elapsed = time.perf_counter() - started
+        seconds = time.perf_counter() - started
         for variant, array in variants.items():
-            self.outputs[pool_keys[variant]] = array
-            self.seconds[pool_keys[variant]] = elapsed
-        self.outputs[encode.key] = counts
-        self.seconds[encode.key] = elapsed
-        self._truncated[encode.key] = truncated_fraction(counts, encoder)
+            self._keep("pool", wanted[variant], array.astype(dtype, copy=False),
+                       {"settings": {"layers": variant[0], "pooling": variant[1], "dtype": dtype}, "seconds": seconds})
 
     def token_counts(self, trial: Trial) -> np.ndarray:
         key = trial.stages["encode"].key
-        if key not in self.outputs:
+        if not self._held("encode", key):
             self._encode(trial)
-        return self.outputs[key]
+        return self._outputs[key]
 
     def truncated_fraction(self, trial: Trial) -> float:
         self.token_counts(trial)
-        return self._truncated[trial.stages["encode"].key]
+        return float(self._info[trial.stages["encode"].key]["truncated_fraction"])
 
     def pooled(self, trial: Trial) -> np.ndarray:
         key = trial.stages["pool"].key
-        if key not in self.outputs:
+        if not self._held("pool", key):
             self._encode(trial)
-        return self.outputs[key]
+        return np.asarray(self._outputs[key], dtype=np.float32)
 
-    def _computed(self, key: str, kind: str, compute: Callable[[], np.ndarray]) -> np.ndarray:
-        if key not in self.outputs:
+    # -- downstream stages -------------------------------------------------------------------------------
+    def _computed(self, trial: Trial, kind: str, counter: str, compute: Callable[[], np.ndarray]) -> np.ndarray:
+        stage = trial.stages[kind]
+        if not self._held(kind, stage.key):
             started = time.perf_counter()
-            self.outputs[key] = compute()
-            self.seconds[key] = time.perf_counter() - started
-            self.work[kind] += 1
-        return self.outputs[key]
+            array = compute()
+            self.work[counter] += 1
+            self._keep(kind, stage.key, array, {"settings": stage.settings, "seconds": time.perf_counter() - started})
+        return self._outputs[stage.key]
 
     def transformed(self, trial: Trial) -> np.ndarray:
-        return self._computed(
-            trial.stages["transform"].key, "transforms",
-            lambda: NORMALIZATIONS[trial.normalize](self.pooled(trial)),
-        )
+        return self._computed(trial, "transform", "transforms", lambda: NORMALIZATIONS[trial.normalize](self.pooled(trial)))
 
     def reduced(self, trial: Trial) -> np.ndarray:
-        return self._computed(
-            trial.stages["reduce"].key, f"{trial.reducer.method}_fits",
-            lambda: reduced(self.transformed(trial), trial.reducer, trial.seed),
-        )
+        return self._computed(trial, "reduce", f"{trial.reducer.method}_fits",
+                              lambda: reduced(self.transformed(trial), trial.reducer, trial.seed))
 
     def clustered(self, trial: Trial) -> np.ndarray:
-        corpus = self.corpora[trial.dataset]
-        return self._computed(
-            trial.stages["cluster"].key, "clusterings",
-            lambda: cluster_labels(self.reduced(trial), trial.clusterer, trial.seed, corpus.n_classes),
-        )
+        n_classes = self.corpora[trial.dataset].n_classes
+        return self._computed(trial, "cluster", "clusterings",
+                              lambda: cluster_labels(self.reduced(trial), trial.clusterer, trial.seed, n_classes))
 
     def stage_seconds(self, trial: Trial) -> dict[str, float]:
-        """Seconds each of the trial's stages took when computed (shared stages count in full)."""
+        """Seconds each of the trial's stages took when it was computed (shared or cached stages count in full)."""
+        seconds = lambda kind: float(self._info.get(trial.stages[kind].key, {}).get("seconds", 0.0))  # noqa: E731
         return {
-            "encode_seconds": self.seconds.get(trial.stages["pool"].key, 0.0),
-            "reduce_seconds": self.seconds.get(trial.stages["reduce"].key, 0.0),
-            "cluster_seconds": self.seconds.get(trial.stages["cluster"].key, 0.0),
+            "encode_seconds": seconds("pool"),
+            "reduce_seconds": seconds("transform") + seconds("reduce"),
+            "cluster_seconds": seconds("cluster"),
         }

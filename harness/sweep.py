@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import difflib
 from pathlib import Path
-from typing import Annotated, Any, Optional, Union
+from typing import Annotated, Any, Literal, Optional, Union
 
 import yaml
 from pydantic import AfterValidator, Field, PositiveInt, ValidationError, ValidationInfo, field_validator
@@ -85,6 +85,7 @@ class Sweep(Settings):
     models: list[ModelSettings] = Field(min_length=1)
     grid: GridSettings
     rank_by: str = "ari"
+    storage_dtype: Literal["float32", "float16"] = "float32"  # how pooled vectors are kept in the cache
 
     @field_validator("models", mode="before")
     @classmethod

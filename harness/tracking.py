@@ -6,6 +6,8 @@ Runs are created and ended explicitly through MlflowClient, so no global
 
 from __future__ import annotations
 
+import os
+import socket
 import tempfile
 import time
 from pathlib import Path
@@ -17,7 +19,25 @@ PARENT_TAG = "mlflow.parentRunId"
 RUN_NAME_TAG = "mlflow.runName"
 KIND_TAG = "harness.kind"
 TRIAL_KEY_TAG = "harness.trial_key"
+HOST_TAG = "harness.host"
+PID_TAG = "harness.pid"
 MAX_TAG_LENGTH = 5000
+
+
+def _owner_gone(tags: dict[str, str]) -> bool:
+    """Whether the process that started a sweep run is known to be dead (same host, PID gone)."""
+    if tags.get(HOST_TAG) != socket.gethostname() or not tags.get(PID_TAG, "").isdigit():
+        return False
+    pid = int(tags[PID_TAG])
+    if pid == os.getpid():
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return True
+    except PermissionError:
+        return False
+    return False
 
 
 def default_tracking_uri(results_dir: Path) -> str:
@@ -45,8 +65,42 @@ class SweepTracker:
             raise HarnessError(f"tracking store {tracking_uri}: cannot open it: {str(err).splitlines()[0]}") from None
         self.parent_id: str | None = None
 
+    def _runs(self, filter_string: str) -> list:
+        runs, token = [], None
+        while True:
+            page = self.client.search_runs([self.experiment_id], filter_string=filter_string, max_results=1000, page_token=token)
+            runs.extend(page)
+            token = page.token
+            if not token:
+                return runs
+
+    def finished_trials(self) -> dict[str, Any]:
+        """FINISHED trial runs of this experiment, by trial key (the newest where there are several)."""
+        runs = self._runs(f"attributes.status = 'FINISHED' and tags.`{KIND_TAG}` = 'trial'")
+        by_key: dict[str, Any] = {}
+        for run in sorted(runs, key=lambda r: r.info.start_time):
+            by_key[run.data.tags[TRIAL_KEY_TAG]] = run
+        return by_key
+
+    def mark_orphans_killed(self) -> int:
+        """Mark KILLED the runs left RUNNING by a process of this host that no longer exists."""
+        running = self._runs("attributes.status = 'RUNNING'")
+        owners = {r.info.run_id: r for r in running if r.data.tags.get(KIND_TAG) == "sweep"}
+        for run in running:
+            parent_id = run.data.tags.get(PARENT_TAG)
+            if parent_id and parent_id not in owners:
+                owners[parent_id] = self.client.get_run(parent_id)
+        marked = 0
+        for run in running:
+            owner = owners.get(run.data.tags.get(PARENT_TAG, run.info.run_id))
+            if owner is not None and _owner_gone(owner.data.tags):
+                self.client.set_terminated(run.info.run_id, status="KILLED")
+                marked += 1
+        return marked
+
     def start_sweep(self, name: str, params: dict[str, Any], tags: dict[str, str]) -> str:
-        run = self.client.create_run(self.experiment_id, run_name=name, tags={KIND_TAG: "sweep", **tags})
+        tags = {KIND_TAG: "sweep", HOST_TAG: socket.gethostname(), PID_TAG: str(os.getpid()), **tags}
+        run = self.client.create_run(self.experiment_id, run_name=name, tags=tags)
         self.parent_id = run.info.run_id
         self._log(self.parent_id, params=params)
         return self.parent_id

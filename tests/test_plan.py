@@ -68,7 +68,9 @@ def test_a_changed_setting_changes_only_downstream_keys(tmp_path):
 
 
 def test_plan_command_counts_work_without_running(tmp_path, capsys):
-    assert main(["plan", str(write_sweep(tmp_path, SWEEP))]) == 0
+    assert main(["plan", str(write_sweep(tmp_path, SWEEP)), "--results-dir", str(tmp_path / "results")]) == 0
     out = capsys.readouterr().out
-    assert "trials:          48" in out and "forward passes:  1" in out and "pca 6, umap 12" in out
+    assert "48  (42 computed, 6 equivalent to another trial" in out  # PCA + HDBSCAN is seed-free: 6 pairs
+    assert "forward passes        1      0      1" in out
+    assert "reductions           18      0     18  (pca 6, umap 12)" in out
     assert not (tmp_path / "results").exists()

@@ -1,0 +1,203 @@
+"""The stage cache, resume, and computing equivalent trials once."""
+
+from __future__ import annotations
+
+import multiprocessing
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from harness.cache import CacheWarning, StageCache
+from harness.cli import main
+from harness.runner import loaded_corpora, prepared_sweep, run_sweep_file
+from harness.stages import StageExecutor
+from harness.transforms import l2_normalized
+
+from conftest import finished_runs, write_sweep
+
+SWEEP = """
+name: cached
+datasets:
+  - {{source: synthetic, n_texts: 240, topic_share: 0.4, seed: 5}}
+models: [{model}]
+grid:
+  pooling: [cls, mean, mean_sqrt_len, max]
+  layers: [last, second_last]
+  normalize: [l2]
+  reduce:
+    - {{method: umap, n_components: 4, n_neighbors: 10}}
+  cluster:
+{cluster}
+"""
+CLUSTER_A = "    - {method: hdbscan, min_cluster_size: 8}\n    - {method: kmeans, k: labels}"
+CLUSTER_B = "    - {method: hdbscan, min_cluster_size: 12}\n    - {method: kmeans, k: 4}"
+
+
+def test_hit_returns_the_bytes_of_the_miss(tmp_path):
+    cache = StageCache(tmp_path)
+    array = np.random.default_rng(0).normal(size=(50, 7)).astype(np.float32)
+    assert cache.get("pool", "k1") is None
+    cache.put("pool", "k1", array, {"seconds": 0.1})
+    hit, meta = cache.get("pool", "k1")
+    assert hit.tobytes() == array.tobytes() and hit.dtype == array.dtype and hit.shape == array.shape
+    assert meta["shape"] == [50, 7] and meta["dtype"] == "float32" and meta["kind"] == "pool"
+
+
+def test_a_corrupted_array_is_detected_and_rebuilt(tmp_path, tiny_model_dir):
+    sweep = write_sweep(tmp_path, SWEEP.format(model=tiny_model_dir, cluster=CLUSTER_A))
+    prepared = prepared_sweep(sweep)
+    corpora = loaded_corpora(prepared)
+    cache = StageCache(tmp_path / "cache")
+    trial = prepared.trials[0]
+    first = StageExecutor(corpora, prepared.trials, cache).pooled(trial).copy()
+
+    data = next((tmp_path / "cache" / "pool").glob(f"*/{trial.stages['pool'].key}/data.npy"))
+    raw = bytearray(data.read_bytes())
+    raw[-5] ^= 0xFF  # flip bits in the last value
+    data.write_bytes(bytes(raw))
+
+    again = StageExecutor(corpora, prepared.trials, cache)
+    with pytest.warns(CacheWarning, match="checksum mismatch"):
+        rebuilt = again.pooled(trial)
+    assert again.work["forward_passes"] == 1
+    assert np.array_equal(rebuilt, first)
+    assert cache.get("pool", trial.stages["pool"].key) is not None  # the entry is valid again
+
+
+def test_changing_only_clustering_runs_no_forward_pass_and_no_umap_fit(tmp_path, tiny_model_dir):
+    results = tmp_path / "results"
+    first = run_sweep_file(write_sweep(tmp_path, SWEEP.format(model=tiny_model_dir, cluster=CLUSTER_A), "a.yaml"), results)
+    assert first.work["forward_passes"] == 1 and first.work["umap_fits"] == 6  # mean_sqrt_len shares mean's
+    second = run_sweep_file(write_sweep(tmp_path, SWEEP.format(model=tiny_model_dir, cluster=CLUSTER_B), "b.yaml"), results)
+    assert second.work.get("forward_passes", 0) == 0 and second.work.get("model_loads", 0) == 0
+    assert second.work.get("umap_fits", 0) == 0
+    assert second.work["clusterings"] == 12 and second.work["reduce_cache_hits"] == 6
+
+
+def test_equivalent_trials_are_computed_once_and_tagged(tmp_path, tiny_model_dir):
+    sweep = write_sweep(tmp_path, SWEEP.format(model=tiny_model_dir, cluster=CLUSTER_A))
+    prepared = prepared_sweep(sweep)
+    by_name = {t.name: t for t in prepared.trials}
+    twin = by_name[f"town_requests/{tiny_model_dir.name}/last/mean_sqrt_len/l2/umap/hdbscan/s0"]
+    original = by_name[f"town_requests/{tiny_model_dir.name}/last/mean/l2/umap/hdbscan/s0"]
+    assert twin.equivalent_to == original.key and twin.stages == original.stages
+
+    # The equivalence itself: after L2 normalisation mean and mean_sqrt_len pooled vectors agree to 1e-6.
+    import torch
+
+    from harness.pooling import POOLINGS
+
+    hidden, mask = torch.randn(6, 11, 16), (torch.rand(6, 11) > 0.3).long()
+    mask[:, 0] = 1
+    mean = l2_normalized(POOLINGS["mean"](hidden, mask).numpy())
+    scaled = l2_normalized(POOLINGS["mean_sqrt_len"](hidden, mask).numpy())
+    assert np.abs(mean - scaled).max() <= 1e-6
+
+    results = tmp_path / "results"
+    result = run_sweep_file(sweep, results)
+    assert result.work["umap_fits"] == 6  # 8 pooled variants, but mean_sqrt_len reuses mean's reduction twice
+    _, _, children = finished_runs(result.tracking_uri, "cached")
+    runs = {c.data.tags["harness.trial_key"]: c for c in children}
+    assert runs[twin.key].data.tags["harness.equivalent_to"] == original.key
+    assert runs[twin.key].data.metrics["ari"] == runs[original.key].data.metrics["ari"]
+
+
+def _put_same_key(root: str, start, seed: int) -> None:
+    array = np.full((400, 300), float(seed), dtype=np.float32)  # different bytes from each writer
+    start.wait()
+    StageCache(Path(root)).put("pool", "shared", array, {"writer": seed})
+
+
+def test_two_processes_writing_one_key_leave_one_valid_entry(tmp_path):
+    context = multiprocessing.get_context("spawn")
+    start = context.Barrier(2)
+    writers = [context.Process(target=_put_same_key, args=(str(tmp_path), start, seed)) for seed in (1, 2)]
+    for writer in writers:
+        writer.start()
+    for writer in writers:
+        writer.join(60)
+        assert writer.exitcode == 0
+    array, meta = StageCache(tmp_path).get("pool", "shared")
+    assert np.all(array == float(meta["writer"]))  # the data is the one its metadata describes
+    folder = next((tmp_path / "pool").glob("*/shared"))
+    assert sorted(p.name for p in folder.iterdir()) == ["data.npy", "meta.json"]  # no temporary files left
+
+
+def _finished_children(db: Path) -> int:
+    if not db.exists():
+        return 0
+    try:
+        with sqlite3.connect(db, timeout=1) as connection:
+            return connection.execute(
+                "select count(*) from runs r join tags t on r.run_uuid = t.run_uuid "
+                "where t.key = 'harness.kind' and t.value = 'trial' and r.status = 'FINISHED'"
+            ).fetchone()[0]
+    except sqlite3.Error:
+        return 0
+
+
+def test_a_killed_sweep_resumes_without_rerunning_finished_trials(tmp_path, tiny_model_dir):
+    sweep = write_sweep(tmp_path, f"""
+name: resumable
+datasets:
+  - {{source: synthetic, n_texts: 200, seed: 3}}
+models: [{tiny_model_dir}]
+grid:
+  pooling: [cls, mean, max, weighted_mean]
+  layers: [last, 1, 2]
+  reduce:
+    - {{method: pca, n_components: 5}}
+  cluster:
+    - {{method: kmeans, k: labels}}
+    - {{method: kmeans, k: 3}}
+""")
+    results = tmp_path / "results"
+    process = subprocess.Popen([sys.executable, "-m", "harness.cli", "run", str(sweep), "--results-dir", str(results),
+                                "--no-progress"], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    deadline = time.monotonic() + 240
+    while _finished_children(results / "mlflow.db") < 3 and process.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.05)
+    process.send_signal(signal.SIGKILL)
+    process.wait()
+    finished_before = _finished_children(results / "mlflow.db")
+    assert 3 <= finished_before < 24, "the sweep must be killed part-way"
+
+    result = run_sweep_file(sweep, results)
+    statuses = [r.status for r in result.results]
+    assert statuses.count("REUSED") == finished_before
+    assert statuses.count("FINISHED") == 24 - finished_before
+    _, parents, children = finished_runs(result.tracking_uri, "resumable")
+    finished_keys = [c.data.tags["harness.trial_key"] for c in children if c.info.status == "FINISHED"]
+    assert sorted(finished_keys) == sorted({t.trial.key for t in result.results})  # each trial FINISHED once
+    assert {p.info.status for p in parents} == {"KILLED", "FINISHED"}  # the killed run is no longer RUNNING
+    assert all(c.info.status in ("FINISHED", "KILLED") for c in children)
+
+
+def test_cache_info_and_prune(tmp_path, capsys):
+    cache = StageCache(tmp_path / "cache")
+    cache.put("reduce", "aa11", np.zeros((10, 2), np.float32), {})
+    cache.put("cluster", "bb22", np.zeros(10, np.int64), {})
+    assert main(["cache", "info", "--cache-dir", str(tmp_path / "cache")]) == 0
+    assert "total" in capsys.readouterr().out
+    assert main(["cache", "prune", "--older-than", "1", "--cache-dir", str(tmp_path / "cache")]) == 0
+    assert len(cache.entries()) == 2  # used just now
+    assert main(["cache", "prune", "--older-than", "0", "--cache-dir", str(tmp_path / "cache")]) == 0
+    assert cache.entries() == []
+
+
+def test_float16_storage_is_a_separate_key_and_close_to_float32(tmp_path, tiny_model_dir):
+    text = SWEEP.format(model=tiny_model_dir, cluster=CLUSTER_A)
+    full = prepared_sweep(write_sweep(tmp_path, text, "a.yaml"))
+    half = prepared_sweep(write_sweep(tmp_path, text + "storage_dtype: float16\n", "b.yaml"))
+    assert full.trials[0].stages["pool"].key != half.trials[0].stages["pool"].key
+    cache = StageCache(tmp_path / "cache")
+    pooled_full = StageExecutor(loaded_corpora(full), full.trials, cache).pooled(full.trials[0])
+    pooled_half = StageExecutor(loaded_corpora(half), half.trials, cache).pooled(half.trials[0])
+    assert cache.get("pool", half.trials[0].stages["pool"].key)[0].dtype == np.float16
+    assert np.allclose(pooled_half, pooled_full, rtol=1e-3, atol=1e-3)
