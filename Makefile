@@ -37,3 +37,6 @@ test-slow: $(VENV)/.dev-installed
 
 clean:
 	rm -rf $(VENV) results/mlflow.db results/artifacts results/cache
+
+bench: $(VENV)/.installed
+	HF_HUB_OFFLINE=1 $(PY) benchmarks/run.py

@@ -126,6 +126,37 @@ def command_cache_prune(args: argparse.Namespace) -> int:
     return 0
 
 
+def command_datasets(args: argparse.Namespace) -> int:
+    import json
+
+    from harness.datasets.card import reachable_cards, tokenizer_counter
+    from harness.models import resolve_model
+
+    _quiet_libraries()
+    data_dir = Path(args.data_dir).resolve() if args.data_dir else None
+    if data_dir is not None and not data_dir.is_dir():
+        raise HarnessError(f"--data-dir: no such folder: {data_dir}")
+    cards = reachable_cards(data_dir, tokenizer_counter(resolve_model(args.model).folder))
+    if args.json:
+        print(json.dumps({"model_for_lengths": args.model, "datasets": cards}, indent=2))
+        return 0
+    print(f"token lengths by the tokenizer of {args.model}\n")
+    for card in cards:
+        if not card["reachable"]:
+            print(f"{card['name']}: not reachable: {card['reason']}\n")
+            continue
+        print(f"{card['name']}  ({card['n_classes']} classes; {card['route']})")
+        print(f"  {'split':<6} {'rows':>7} {'tokens q05':>10} {'q50':>6} {'q95':>6} {'eta2(log len|label)':>20}")
+        for split, info in card["splits"].items():
+            q = info["token_length_quantiles"]
+            print(f"  {split:<6} {info['rows']:>7} {q['q05']:>10.0f} {q['q50']:>6.0f} {q['q95']:>6.0f} {info['length_eta2_labels']:>20.4f}")
+        for split in card["missing_splits"]:
+            print(f"  {split:<6} not held by this source")
+        print()
+    print("synthetic  (built-in town requests; generated from its settings, always available)")
+    return 0
+
+
 def _add_store_options(command: argparse.ArgumentParser) -> None:
     command.add_argument("--results-dir", default=str(DEFAULT_RESULTS),
                          help="where the MLflow store, artifacts and cache live (default: results)")
@@ -150,6 +181,12 @@ def parser() -> argparse.ArgumentParser:
     plan.add_argument("sweep", help="the sweep file (YAML)")
     _add_store_options(plan)
     plan.set_defaults(handler=command_plan)
+
+    datasets = commands.add_parser("datasets", help="cards of the built-in datasets that can be reached now")
+    datasets.add_argument("--data-dir", default=None, help="a mirror folder of Parquet files (default: $HARNESS_DATA_DIR)")
+    datasets.add_argument("--model", default="sentence-transformers/all-MiniLM-L6-v2", help="whose tokenizer measures lengths")
+    datasets.add_argument("--json", action="store_true", help="print the cards as JSON")
+    datasets.set_defaults(handler=command_datasets)
 
     cache = commands.add_parser("cache", help="inspect or prune the stage cache")
     cache_commands = cache.add_subparsers(dest="cache_command", required=True)

@@ -25,6 +25,41 @@ def length_sorted_batches(counts: np.ndarray, batch_size: int) -> list[np.ndarra
     return [order[start : start + batch_size] for start in range(0, order.size, batch_size)]
 
 
+def _windows(encoder: LoadedEncoder, texts: list[str]) -> tuple[list[list[int]], np.ndarray]:
+    """Token ids of every window of every text (windows fit the model with its special tokens), and each window's text."""
+    room = encoder.max_length - encoder.tokenizer.num_special_tokens_to_add(pair=False)
+    ids = encoder.tokenizer(texts, add_special_tokens=False, truncation=False, verbose=False)["input_ids"]
+    pieces, owners = [], []
+    for index, text_ids in enumerate(ids):
+        for start in range(0, max(len(text_ids), 1), room):
+            pieces.append(text_ids[start : start + room])
+            owners.append(index)
+    return pieces, np.array(owners)
+
+
+def special_wrapping(tokenizer) -> tuple[list[int], list[int]]:
+    """The special token ids a tokenizer puts before and after a single text's tokens ([CLS] ... [SEP], <s> ... </s>)."""
+    bare = tokenizer("word", add_special_tokens=False)["input_ids"]
+    wrapped = tokenizer("word")["input_ids"]
+    for start in range(len(wrapped) - len(bare) + 1):
+        if wrapped[start : start + len(bare)] == bare:
+            return wrapped[:start], wrapped[start + len(bare) :]
+    raise ValueError("cannot tell where this tokenizer puts its special tokens")
+
+
+def _batch_inputs(encoder: LoadedEncoder, texts: list[str], pieces: Optional[list[list[int]]], batch: np.ndarray):
+    tokenizer = encoder.tokenizer
+    if pieces is None:
+        return tokenizer([texts[i] for i in batch], padding=True, truncation=True,
+                         max_length=encoder.max_length, return_tensors="pt")
+    before, after = special_wrapping(tokenizer)
+    features = {"input_ids": [before + pieces[i] + after for i in batch]}
+    features["attention_mask"] = [[1] * len(ids) for ids in features["input_ids"]]
+    if "token_type_ids" in tokenizer.model_input_names:
+        features["token_type_ids"] = [[0] * len(ids) for ids in features["input_ids"]]
+    return tokenizer.pad(features, return_tensors="pt")
+
+
 def pooled_variants(
     encoder: LoadedEncoder,
     texts: list[str],
@@ -33,29 +68,45 @@ def pooled_variants(
     batch_size: int,
     counts: Optional[np.ndarray] = None,
     on_batch: Optional[Callable[[int], None]] = None,
+    long_texts: str = "truncate",
 ) -> dict[Variant, np.ndarray]:
-    """Run the transformer once over ``texts`` and pool every requested variant, in the texts' order."""
+    """Run the transformer once over ``texts`` and pool every requested variant, in the texts' order.
+
+    ``long_texts="truncate"`` keeps the first tokens that fit the model; ``"chunk_mean"``
+    splits longer texts into windows that fit, pools each window, and averages the
+    window vectors of each text.
+    """
     import torch
 
     variants = list(dict.fromkeys(variants))
-    counts = token_counts(encoder, texts) if counts is None else counts
+    if long_texts == "chunk_mean":
+        pieces, owners = _windows(encoder, texts)
+        piece_lengths = np.array([len(p) for p in pieces])
+    else:
+        pieces, owners = None, np.arange(len(texts))
+        piece_lengths = token_counts(encoder, texts) if counts is None else counts
     outputs: dict[Variant, np.ndarray] = {}
     with torch.inference_mode():
-        for batch in length_sorted_batches(counts, batch_size):
-            inputs = encoder.tokenizer(
-                [texts[i] for i in batch], padding=True, truncation=True,
-                max_length=encoder.max_length, return_tensors="pt",
-            )
+        for batch in length_sorted_batches(piece_lengths, batch_size):
+            inputs = _batch_inputs(encoder, texts, pieces, batch)
             hidden_states = encoder.transformer(**inputs, output_hidden_states=True).hidden_states
             mask = inputs["attention_mask"]
             for layer_choice, pooling in variants:
                 pooled = POOLINGS[pooling](selected_hidden(hidden_states, layer_choice), mask).float().numpy()
                 if (layer_choice, pooling) not in outputs:
-                    outputs[(layer_choice, pooling)] = np.empty((len(texts), pooled.shape[1]), dtype=np.float32)
+                    outputs[(layer_choice, pooling)] = np.empty((owners.size, pooled.shape[1]), dtype=np.float32)
                 outputs[(layer_choice, pooling)][batch] = pooled
             if on_batch is not None:
-                on_batch(len(batch))
-    return outputs
+                on_batch(int(np.unique(owners[batch]).size) if pieces is not None else len(batch))
+    if pieces is None:
+        return outputs
+    windows_per_text = np.bincount(owners, minlength=len(texts)).astype(np.float32)[:, None]
+    averaged = {}
+    for variant, per_piece in outputs.items():
+        summed = np.zeros((len(texts), per_piece.shape[1]), dtype=np.float64)
+        np.add.at(summed, owners, per_piece)
+        averaged[variant] = (summed / windows_per_text).astype(np.float32)
+    return averaged
 
 
 def truncated_fraction(counts: np.ndarray, encoder: LoadedEncoder) -> float:

@@ -82,6 +82,7 @@ class Trial:
             "dataset": self.dataset,
             "model": self.model.name,
             "max_length": self.model.max_length if self.model.max_length is not None else "model_default",
+            "long_texts": self.model.long_texts,
             "layers": self.layers,
             "pooling": self.pooling,
             "normalize": self.normalize,
@@ -101,9 +102,11 @@ class Trial:
         )
 
 
-def dataset_key(spec: Settings) -> str:
-    """Key of a dataset entry: its settings, plus the bytes of a file it reads."""
+def dataset_key(spec: Settings, tokenizer_weights: str | None = None) -> str:
+    """Key of a dataset entry: its settings, the bytes of a file it reads, and the tokenizer it balances lengths with."""
     settings = spec.as_params()
+    if tokenizer_weights is not None:
+        settings["length_tokenizer"] = tokenizer_weights
     path = getattr(spec, "path", None)
     if isinstance(path, Path):
         settings["file_sha256"] = _file_digest(path, path.stat().st_size, path.stat().st_mtime_ns)
@@ -154,6 +157,7 @@ def trial_stages(
 ) -> dict[str, Stage]:
     encode = make_stage("encode", dataset_key_, {
         "model": resolved.name, "weights": resolved.weights_digest, "max_length": model.max_length,
+        "long_texts": model.long_texts,
     })
     pool = pool_stage(encode.key, layers, computed_pooling(pooling, normalize, reducer), dtype)
     transform = make_stage("transform", pool.key, {"normalize": normalize})

@@ -8,6 +8,7 @@ sweep goes on.
 from __future__ import annotations
 
 import hashlib
+import json
 import tempfile
 import traceback
 from dataclasses import dataclass, field
@@ -18,7 +19,7 @@ import numpy as np
 
 from harness import __version__
 from harness.cluster import clustering_limits
-from harness.datasets import Corpus, dataset_name, loaded_corpus
+from harness.datasets import Corpus, dataset_name, loaded_corpus, needs_tokenizer
 from harness.errors import HarnessError
 from harness.layers import layer_choice_fits, output_width
 from harness.models import ResolvedModel, resolve_model
@@ -81,16 +82,28 @@ def prepared_sweep(path: str | Path) -> PreparedSweep:
             models[spec.name] = resolve_model(spec.name, spec.revision)
         except HarnessError as err:
             raise sweep_error_at(path, ["models", index, "name"], str(err)) from None
-    keys = {dataset_name(spec): dataset_key(spec) for spec in sweep.datasets}
+    first_model = models[sweep.models[0].name]
+    keys = {
+        dataset_name(spec): dataset_key(spec, first_model.weights_digest if needs_tokenizer(spec) else None)
+        for spec in sweep.datasets
+    }
     return PreparedSweep(path=path, sweep=sweep, models=models, dataset_keys=keys, trials=planned_trials(sweep, keys, models))
 
 
 def loaded_corpora(prepared: PreparedSweep) -> dict[str, Corpus]:
-    """Load every dataset; a data problem is reported at the sweep entry that names the data."""
+    """Load every dataset; a data problem is reported at the sweep entry that names the data.
+
+    Sources that balance lengths measure them with the tokenizer of the sweep's first model.
+    """
+    from harness.datasets.card import tokenizer_counter
+
     corpora = {}
+    count_tokens = None
     for index, spec in enumerate(prepared.sweep.datasets):
+        if needs_tokenizer(spec) and count_tokens is None:
+            count_tokens = tokenizer_counter(prepared.models[prepared.sweep.models[0].name].folder)
         try:
-            corpora[dataset_name(spec)] = loaded_corpus(spec)
+            corpora[dataset_name(spec)] = loaded_corpus(spec, count_tokens)
         except HarnessError as err:
             raise sweep_error_at(prepared.path, ["datasets", index], str(err)) from None
     return corpora
@@ -129,6 +142,18 @@ def _assignments_table(corpus: Corpus, clusters: np.ndarray, counts: np.ndarray)
         "cluster": clusters,
         "token_count": counts,
     })
+
+
+def _source_type(corpus: Corpus) -> str:
+    return corpus.source.split(":", 1)[0] if ":" in corpus.source else ("synthetic" if corpus.source == "synthetic" else "local")
+
+
+def dataset_cards(corpora: dict[str, Corpus], model: ResolvedModel) -> dict[str, dict]:
+    """The card of each loaded corpus, lengths measured with the tokenizer of the sweep's first model."""
+    from harness.datasets.card import corpus_card, tokenizer_counter
+
+    count = tokenizer_counter(model.folder)
+    return {name: {**corpus_card(corpus, count), "length_tokenizer": model.name} for name, corpus in corpora.items()}
 
 
 def _file_sha256(path: Path) -> str:
@@ -198,11 +223,13 @@ def execute_sweep(
               "harness.orphans_marked_killed": str(killed)},
     )
     executor = StageExecutor(corpora, pending, StageCache(cache_dir) if cache_dir else None, encode_progress)
+    cards = dataset_cards(corpora, next(iter(prepared.models.values())))
     params = aligned_params(prepared.trials)
     trials = progress(pending, desc="trials", unit="trial") if progress else pending
     current: Optional[str] = None
     try:
         tracker.log_text(parent, prepared.path.read_text(), "sweep.yaml")
+        tracker.log_text(parent, json.dumps(cards, indent=2), "dataset_cards.json")
         for trial in trials:
             corpus = corpora[trial.dataset]
             tags = {
@@ -213,6 +240,8 @@ def execute_sweep(
             if trial.equivalent_to:
                 tags["harness.equivalent_to"] = trial.equivalent_to
             current = tracker.start_trial(trial.name, trial.key, params[trial.key], tags=tags)
+            tracker.log_dataset(current, corpus.name, corpus.fingerprint, _source_type(corpus), corpus.source,
+                                {"rows": corpus.n_texts, "classes": corpus.n_classes})
             try:
                 scores, clusters, counts = run_trial(executor, trial, corpus)
                 _log_trial(tracker, current, trial, corpus, scores, clusters, counts)

@@ -96,7 +96,7 @@ class StageExecutor:
             on_batch, done = self._encode_progress(corpus.n_texts, f"encode {trial.dataset} / {trial.model.name}")
         try:
             variants = pooled_variants(encoder, corpus.texts, missing, batch_size=trial.model.batch_size,
-                                       counts=counts, on_batch=on_batch)
+                                       counts=counts, on_batch=on_batch, long_texts=trial.model.long_texts)
         finally:
             done()
         self.work["forward_passes"] += 1

@@ -48,6 +48,7 @@ class ModelSettings(Settings):
     batch_size: PositiveInt = 64
     revision: Optional[str] = None
     trust_remote_code: bool = False
+    long_texts: Literal["truncate", "chunk_mean"] = "truncate"
 
 
 def _registered(registry: dict, what: str) -> AfterValidator:

@@ -6,6 +6,7 @@ Runs are created and ended explicitly through MlflowClient, so no global
 
 from __future__ import annotations
 
+import json
 import os
 import socket
 import tempfile
@@ -137,6 +138,14 @@ class SweepTracker:
             path = Path(folder) / file_name
             path.write_text(text)
             self.client.log_artifact(run_id, str(path))
+
+    def log_dataset(self, run_id: str, name: str, digest: str, source_type: str, source: str, profile: dict) -> None:
+        """Record the data a run saw through MLflow's dataset tracking (name, digest, source)."""
+        from mlflow.entities import Dataset, DatasetInput, InputTag
+
+        dataset = Dataset(name=name, digest=digest, source_type=source_type, source=json.dumps({"uri": source}),
+                          schema=None, profile=json.dumps(profile))
+        self.client.log_inputs(run_id, [DatasetInput(dataset, tags=[InputTag("mlflow.data.context", "clustering")])])
 
     def end(self, run_id: str, status: str, error: str | None = None) -> None:
         if error is not None:

@@ -1,0 +1,209 @@
+"""Benchmarks of the encode and cache paths, as side-by-side ratios. Run with ``make bench``."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import statistics
+import sys
+import tempfile
+import time
+from importlib import metadata
+from pathlib import Path
+
+os.environ.setdefault("HF_HUB_DISABLE_PROGRESS_BARS", "1")
+os.environ.setdefault("MLFLOW_LOGGING_LEVEL", "WARNING")
+os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
+
+REPO = Path(__file__).resolve().parents[1]
+RESULTS = REPO / "results" / "benchmarks.json"
+MINILM = "sentence-transformers/all-MiniLM-L6-v2"
+POOLINGS = ("cls", "mean", "max", "mean_sqrt_len")
+LAYERS = ("last", "second_last", "mean_last_4")
+ST_MODES = {"cls": "cls", "mean": "mean", "max": "max", "mean_sqrt_len": "mean_sqrt_len_tokens"}
+LIBRARIES = ("torch", "transformers", "sentence-transformers", "umap-learn", "hdbscan", "scikit-learn", "mlflow", "numpy")
+
+
+def median_seconds(action, repeats: int) -> float:
+    times = []
+    for _ in range(repeats):
+        started = time.perf_counter()
+        action()
+        times.append(time.perf_counter() - started)
+    return statistics.median(times)
+
+
+def corpus_texts(n_texts: int) -> list[str]:
+    from harness.datasets import SyntheticSource, loaded_corpus
+
+    return loaded_corpus(SyntheticSource(source="synthetic", n_texts=n_texts, min_words=5, max_words=60)).texts
+
+
+def encode_figures(n_texts: int, repeats: int) -> dict:
+    """variants_over_single_encode, loop_over_variants and forward_efficiency, measured in one go."""
+    import torch
+    from sentence_transformers import SentenceTransformer
+    from sentence_transformers.sentence_transformer.modules import Pooling
+
+    from harness.encode import length_sorted_batches, pooled_variants, token_counts
+    from harness.layers import selected_hidden
+    from harness.models import loaded_encoder, resolve_model
+    from harness.pooling import POOLINGS as POOL_FNS
+
+    torch.set_num_threads(os.cpu_count() or 1)
+    texts = corpus_texts(n_texts)
+    model = resolve_model(MINILM)
+    encoder = loaded_encoder(model, 256, False)
+    plain = SentenceTransformer(str(model.folder), device="cpu")
+    variants = [(layers, pooling) for layers in LAYERS for pooling in POOLINGS]
+
+    def tool() -> None:
+        pooled_variants(encoder, texts, variants, batch_size=64)
+
+    def single_encode() -> None:
+        plain.encode(texts, batch_size=64)
+
+    def user_loop() -> None:
+        # What a user writes without the tool: one encode per pooling for the last layer (a Pooling module each),
+        # and for other layers a forward pass with hidden states per (layer, pooling).
+        transformer = plain[0]
+        for pooling in POOLINGS:
+            SentenceTransformer(modules=[transformer, Pooling(transformer.get_embedding_dimension(), pooling_mode=ST_MODES[pooling])],
+                                device="cpu").encode(texts, batch_size=64)
+        for layers in LAYERS[1:]:
+            for pooling in POOLINGS:
+                with torch.inference_mode():
+                    for start in range(0, len(texts), 64):
+                        inputs = encoder.tokenizer(texts[start:start + 64], padding=True, truncation=True,
+                                                   max_length=256, return_tensors="pt")
+                        states = encoder.transformer(**inputs, output_hidden_states=True).hidden_states
+                        POOL_FNS[pooling](selected_hidden(states, layers), inputs["attention_mask"])
+
+    counts = token_counts(encoder, texts)
+    batches = [encoder.tokenizer([texts[i] for i in batch], padding=True, truncation=True, max_length=256, return_tensors="pt")
+               for batch in length_sorted_batches(counts, 64)]
+
+    def bare_forward() -> None:
+        with torch.inference_mode():
+            for inputs in batches:
+                encoder.transformer(**inputs)
+
+    single_encode()  # warm-up: first-call allocations
+    t_tool = median_seconds(tool, repeats)
+    t_encode = median_seconds(single_encode, repeats)
+    t_bare = median_seconds(bare_forward, repeats)
+    t_loop = median_seconds(user_loop, repeats)
+    return {
+        "variants_over_single_encode": {"value": t_tool / t_encode, "target": "<= 1.15", "met": t_tool / t_encode <= 1.15,
+                                        "seconds": {"tool_12_variants": t_tool, "single_encode": t_encode}},
+        "loop_over_variants": {"value": t_loop / t_tool, "target": ">= 8", "met": t_loop / t_tool >= 8,
+                               "seconds": {"user_loop_12_variants": t_loop, "tool_12_variants": t_tool}},
+        "forward_efficiency": {"value": t_bare / t_tool, "target": ">= 0.90", "met": t_bare / t_tool >= 0.90,
+                               "seconds": {"bare_forward": t_bare, "tool_12_variants": t_tool},
+                               "note": "throughput ratio = bare seconds / tool seconds; the tool's time includes tokenising, "
+                                       "counting tokens, hidden states and pooling 12 variants"},
+        "texts": n_texts,
+    }
+
+
+RERUN_SWEEP = """
+name: bench_rerun
+datasets:
+  - {{source: synthetic, n_texts: {n_texts}, min_words: 5, max_words: 60, seed: 0}}
+models:
+  - {{name: {model}, max_length: 256}}
+grid:
+  pooling: [cls, mean, max, weighted_mean]
+  layers: [last, mean_last_4]
+  reduce:
+    - {{method: umap, n_components: 5, n_neighbors: 15, metric: cosine}}
+  cluster:
+{cluster}
+"""
+CLUSTER_FIRST = "    - {method: hdbscan, min_cluster_size: 15}\n    - {method: hdbscan, min_cluster_size: 30, cluster_selection_method: leaf}\n    - {method: kmeans, k: labels}"
+CLUSTER_SECOND = "    - {method: hdbscan, min_cluster_size: 20}\n    - {method: hdbscan, min_cluster_size: 40, cluster_selection_method: leaf}\n    - {method: kmeans, k: 8}"
+
+
+def rerun_figures(n_texts: int, repeats: int) -> dict:
+    """rerun_fraction: a 24-trial sweep, then the same sweep with only clustering settings changed."""
+    import numpy as np
+
+    from harness.reduce import UmapSettings, umap_reduced
+    from harness.runner import run_sweep_file
+
+    # UMAP compiles once per process (numba); pay it before timing, as any later run in the process would.
+    umap_reduced(np.random.default_rng(0).normal(size=(300, 20)).astype(np.float32), UmapSettings(method="umap"), 0)
+    ratios, firsts, seconds, work = [], [], [], {}
+    for _ in range(repeats):
+        with tempfile.TemporaryDirectory(dir=REPO / "results") as folder:
+            folder = Path(folder)
+            first_sweep = folder / "first.yaml"
+            second_sweep = folder / "second.yaml"
+            first_sweep.write_text(RERUN_SWEEP.format(n_texts=n_texts, model=MINILM, cluster=CLUSTER_FIRST))
+            second_sweep.write_text(RERUN_SWEEP.format(n_texts=n_texts, model=MINILM, cluster=CLUSTER_SECOND))
+            run_sweep_file(first_sweep, folder, None)  # creates the MLflow store, not timed
+            (folder / "cache").exists() and __import__("shutil").rmtree(folder / "cache")
+            started = time.perf_counter()
+            first = run_sweep_file(first_sweep, folder, None, resume=False)
+            first_seconds = time.perf_counter() - started
+            started = time.perf_counter()
+            second = run_sweep_file(second_sweep, folder, None)
+            second_seconds = time.perf_counter() - started
+            assert len(first.results) == len(second.results) == 24
+            firsts.append(first_seconds)
+            seconds.append(second_seconds)
+            ratios.append(second_seconds / first_seconds)
+            work = {"first": first.work, "second": second.work}
+    value = statistics.median(ratios)
+    no_recompute = work["second"].get("forward_passes", 0) == 0 and work["second"].get("umap_fits", 0) == 0
+    return {"rerun_fraction": {
+        "value": value, "target": "<= 0.10 with 0 forward passes and 0 UMAP fits",
+        "met": value <= 0.10 and no_recompute,
+        "seconds": {"first_run": statistics.median(firsts), "second_run": statistics.median(seconds)},
+        "forward_passes_second_run": work["second"].get("forward_passes", 0),
+        "umap_fits_second_run": work["second"].get("umap_fits", 0),
+        "work": work, "texts": n_texts,
+    }}
+
+
+GROUPS = {"encode": encode_figures, "rerun_fraction": rerun_figures}
+
+
+def environment() -> dict:
+    versions = {}
+    for name in LIBRARIES:
+        try:
+            versions[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            versions[name] = "absent"
+    return {"cores": os.cpu_count(), "python": platform.python_version(), "machine": platform.machine(),
+            "versions": versions, "date": time.strftime("%Y-%m-%d %H:%M:%S")}
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__)
+    parser.add_argument("--texts", type=int, default=2000)
+    parser.add_argument("--repeats", type=int, default=3)
+    parser.add_argument("--only", choices=sorted(GROUPS), action="append")
+    args = parser.parse_args()
+    (REPO / "results").mkdir(exist_ok=True)
+    report = json.loads(RESULTS.read_text()) if RESULTS.exists() else {}
+    report.setdefault("figures", {})
+    for name in args.only or sorted(GROUPS):
+        print(f"running {name} ...", file=sys.stderr, flush=True)
+        figures = GROUPS[name](args.texts, args.repeats)
+        figures.pop("texts", None)
+        for figure, data in figures.items():
+            report["figures"][figure] = {**data, "texts": args.texts, "repeats": args.repeats, **environment()}
+    RESULTS.write_text(json.dumps(report, indent=2, default=str))
+    print(f"\n{'figure':<30} {'value':>8}  {'target':<48} met")
+    for figure, data in sorted(report["figures"].items()):
+        print(f"{figure:<30} {data['value']:>8.3f}  {data['target']:<48} {'yes' if data['met'] else 'NO'}")
+    print(f"\n{os.cpu_count()} cores; written to {RESULTS.relative_to(REPO)}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,194 @@
+"""20 Newsgroups and AG News: the usual public route where a network exists, a local Parquet mirror where not.
+
+Mirror files (``twenty_newsgroups.parquet``, ``ag_news.parquet``) hold the columns
+text, label, label_name and split. The mirror folder is the sweep's ``data_dir``
+or the ``HARNESS_DATA_DIR`` environment variable.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Callable, Literal, Optional
+
+import numpy as np
+import pandas as pd
+from pydantic import Field, PositiveInt, ValidationInfo, field_validator
+
+from harness._settings import Settings
+from harness.datasets.corpus import Corpus, balanced_length_indices, per_class_indices, stratified_indices
+from harness.datasets.newsgroups_text import PARTS, stripped_message
+from harness.errors import DataError
+
+DATA_DIR_VARIABLE = "HARNESS_DATA_DIR"
+MIRROR_FILES = {"twenty_newsgroups": "twenty_newsgroups.parquet", "ag_news": "ag_news.parquet"}
+SPLITS = ("train", "test")
+
+
+class PublicSource(Settings):
+    split: Literal["train", "test", "all"] = "test"
+    data_dir: Optional[Path] = None
+    per_class: Optional[PositiveInt] = None
+    balance_length: bool = False
+    sample: Optional[PositiveInt] = None
+    seed: int = 0
+
+    @field_validator("data_dir")
+    @classmethod
+    def _resolved(cls, path: Optional[Path], info: ValidationInfo) -> Optional[Path]:
+        if path is None:
+            return None
+        base = Path((info.context or {}).get("base_dir", "."))
+        resolved = (path if path.is_absolute() else base / path).resolve()
+        if not resolved.is_dir():
+            raise ValueError(f"no such folder: {resolved}")
+        return resolved
+
+    @property
+    def dataset_name(self) -> str:
+        return self.name
+
+    def mirror_dir(self) -> Optional[Path]:
+        if self.data_dir is not None:
+            return self.data_dir
+        from_environment = os.environ.get(DATA_DIR_VARIABLE)
+        return Path(from_environment).expanduser().resolve() if from_environment else None
+
+
+class TwentyNewsgroupsSource(PublicSource):
+    source: Literal["twenty_newsgroups"]
+    name: str = "twenty_newsgroups"
+    remove: list[Literal["headers", "footers", "quotes"]] = Field(default_factory=list)
+
+
+class AgNewsSource(PublicSource):
+    source: Literal["ag_news"]
+    name: str = "ag_news"
+
+
+def _offline() -> bool:
+    return any(os.environ.get(v, "").lower() in ("1", "true", "yes") for v in ("HF_HUB_OFFLINE", "HF_DATASETS_OFFLINE"))
+
+
+def mirror_table(source: str, folder: Path) -> Optional[pd.DataFrame]:
+    path = folder / MIRROR_FILES[source]
+    if not path.is_file():
+        return None
+    try:
+        table = pd.read_parquet(path, columns=["text", "label", "label_name", "split"])
+    except Exception as err:  # pyarrow raises several types; the user needs the file and the reason
+        raise DataError(f"{path}: cannot read the mirror: {str(err).splitlines()[0]}") from None
+    table.attrs["route"] = f"mirror:{path}"
+    return table
+
+
+def _public_twenty_newsgroups() -> Optional[pd.DataFrame]:
+    from sklearn.datasets import fetch_20newsgroups
+
+    parts = []
+    for split in SPLITS:
+        try:
+            bunch = fetch_20newsgroups(subset=split, remove=(), download_if_missing=not _offline())
+        except Exception:  # not cached and not downloadable: this route is unavailable
+            return None
+        parts.append(pd.DataFrame({"text": bunch.data, "label": bunch.target,
+                                   "label_name": [bunch.target_names[i] for i in bunch.target], "split": split}))
+    table = pd.concat(parts, ignore_index=True)
+    table.attrs["route"] = "scikit-learn:fetch_20newsgroups"
+    return table
+
+
+def _public_ag_news() -> Optional[pd.DataFrame]:
+    if _offline():
+        return None
+    try:
+        from datasets import load_dataset
+
+        loaded = load_dataset("ag_news")
+    except Exception:  # no network or no datasets library: this route is unavailable
+        return None
+    names = loaded["train"].features["label"].names
+    parts = [pd.DataFrame({"text": loaded[s]["text"], "label": loaded[s]["label"], "split": s}) for s in SPLITS]
+    table = pd.concat(parts, ignore_index=True)
+    table["label_name"] = [names[i] for i in table.label]
+    table.attrs["route"] = "huggingface:ag_news"
+    return table
+
+
+PUBLIC_ROUTES = {"twenty_newsgroups": _public_twenty_newsgroups, "ag_news": _public_ag_news}
+
+
+def source_table(spec: PublicSource) -> pd.DataFrame:
+    """The whole dataset from the mirror when one is set and holds it, else from the public route."""
+    folder = spec.mirror_dir()
+    table = mirror_table(spec.source, folder) if folder is not None else None
+    if table is None:
+        table = PUBLIC_ROUTES[spec.source]()
+    if table is None:
+        where = f"{folder / MIRROR_FILES[spec.source]} does not exist" if folder else "no mirror folder is set"
+        raise DataError(
+            f"dataset '{spec.source}': the public route is unreachable (offline) and {where}; either run where the "
+            f"network is reachable, or set data_dir: (or {DATA_DIR_VARIABLE}) to a folder holding {MIRROR_FILES[spec.source]}"
+        )
+    return table
+
+
+def _split_rows(table: pd.DataFrame, spec: PublicSource) -> pd.DataFrame:
+    present = set(table.split.unique())
+    wanted = set(SPLITS) if spec.split == "all" else {spec.split}
+    if not wanted <= present:
+        missing = ", ".join(sorted(wanted - present))
+        raise DataError(
+            f"dataset '{spec.source}': split '{spec.split}' needs the {missing} rows, which {table.attrs['route']} does not hold "
+            f"(it has: {', '.join(sorted(present))}); use split: {' or '.join(sorted(present))}, or load it where the network is reachable"
+        )
+    return table[table.split.isin(wanted)].reset_index(drop=True)
+
+
+def word_counts(texts: list[str]) -> np.ndarray:
+    """Words per text (runs of word characters), at least 1: the length measure used to balance classes."""
+    import re
+
+    pattern = re.compile(r"\w+")
+    return np.array([max(1, len(pattern.findall(t))) for t in texts])
+
+
+def public_corpus(spec: PublicSource, count_tokens: Optional[Callable[[list[str]], np.ndarray]] = None) -> Corpus:
+    """Load, split, strip, cap, balance and sample a public dataset, in that order.
+
+    ``balance_length`` balances the lengths that ``count_tokens`` measures (the model's
+    tokenizer, so that the balance holds for the length the scores use); without it,
+    word counts.
+    """
+    full = source_table(spec)
+    table = _split_rows(full, spec)
+    texts = table.text.tolist()
+    removed = tuple(p for p in PARTS if p in getattr(spec, "remove", ()))
+    dropped = 0
+    if removed:
+        texts = [stripped_message(t, removed) for t in texts]
+        keep = np.array([bool(t.strip()) for t in texts])
+        dropped = int((~keep).sum())
+        texts = [t for t, k in zip(texts, keep) if k]
+        table = table[keep].reset_index(drop=True)
+    labels = table.label.to_numpy(np.int64)
+    order = np.arange(len(texts))
+    if spec.per_class is not None:
+        order = order[per_class_indices(labels[order], spec.per_class, spec.seed)]
+    notes: dict = {"dropped_empty_after_remove": dropped} if removed else {}
+    if spec.balance_length:
+        measure = count_tokens or word_counts
+        notes["balanced_by"] = "tokens" if count_tokens else "words"
+        order = order[balanced_length_indices(measure([texts[i] for i in order]), labels[order], spec.seed)]
+    if spec.sample is not None:
+        order = order[stratified_indices(labels[order], spec.sample, spec.seed)]
+    names = full.drop_duplicates("label").sort_values("label").label_name.tolist()
+    return Corpus(
+        name=spec.dataset_name,
+        texts=[texts[i] for i in order],
+        ids=np.array([f"{table.split[i]}-{i}" for i in order]),
+        labels=labels[order],
+        label_names=tuple(names),
+        source=table.attrs.get("route", full.attrs.get("route", "")),
+        notes=notes,
+    )
