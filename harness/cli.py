@@ -66,7 +66,7 @@ def command_plan(args: argparse.Namespace) -> int:
 
 
 def command_run(args: argparse.Namespace) -> int:
-    from harness.leaderboard import table
+    from harness.leaderboard import descriptions_table, table
     from harness.runner import run_sweep_file
 
     _quiet_libraries()
@@ -74,7 +74,7 @@ def command_run(args: argparse.Namespace) -> int:
     if not args.no_progress:
         from tqdm import tqdm
 
-        progress = lambda items, **kw: tqdm(items, file=sys.stderr, dynamic_ncols=True, **kw)  # noqa: E731
+        progress = lambda **kw: tqdm(file=sys.stderr, dynamic_ncols=True, **kw)  # noqa: E731
 
         def encode_progress(total: int, description: str):
             bar = tqdm(total=total, desc=description, unit="text", file=sys.stderr, dynamic_ncols=True, leave=False)
@@ -85,10 +85,17 @@ def command_run(args: argparse.Namespace) -> int:
         cache_dir=Path(args.cache_dir) if args.cache_dir else None, use_cache=not args.no_cache,
         resume=not args.rerun_finished, progress=progress, encode_progress=encode_progress,
     )
-    print(table(result.leaderboard(), result.rank_by))
+    for ranking in result.rankings.values():
+        print(table(ranking))
+        winner = ranking.winner
+        if winner is not None and winner.configuration.descriptions:
+            print(f"\nwinner's clusters (seed {winner.configuration.trials[0].seed}):")
+            print(descriptions_table(winner.configuration.descriptions))
+        print()
+    print("tie: the paired bootstrap interval of the difference to the leader contains 0 (see README: how to read it)")
     reused = sum(r.status == "REUSED" for r in result.results)
     work = ", ".join(f"{k} {v}" for k, v in sorted(result.work.items())) or "none"
-    print(f"\n{len(result.results) - reused} trials run, {reused} reused from earlier runs; work done: {work}")
+    print(f"{len(result.results) - reused} trials run, {reused} reused from earlier runs; work done: {work}")
     print(f"MLflow: {result.tracking_uri}  (sweep run {result.parent_run_id})")
     if result.failed:
         print(f"{len(result.failed)} of {len(result.results)} trials failed:", file=sys.stderr)

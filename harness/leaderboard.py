@@ -1,42 +1,107 @@
-"""Ranking finished trials and rendering the ranking as a text table."""
+"""Ranking configurations per dataset, flagging ties with the leader, and rendering the ranking as text."""
 
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass, field
 from typing import Any
 
-COLUMNS = ("rank", "trial", "{metric}", "ami", "length_confound_index", "coverage", "n_clusters")
+from harness.evidence import BOOTSTRAPPED, tied_with
+from harness.sweep import DEFAULT_LABEL_FREE_METRIC, DEFAULT_LABELLED_METRIC
 
 
-def ranked(rows: list[dict[str, Any]], metric: str) -> list[dict[str, Any]]:
-    """Rows sorted best first by ``metric``; rows without it (or NaN) go last."""
-    def sort_key(row: dict[str, Any]) -> tuple:
-        value = row.get(metric)
-        missing = value is None or (isinstance(value, float) and math.isnan(value))
-        return (missing, -(value or 0.0) if not missing else 0.0, row.get("trial", ""))
-
-    return [{**row, "rank": i + 1} for i, row in enumerate(sorted(rows, key=sort_key))]
-
-
-COUNT_COLUMNS = frozenset({"n_clusters"})
+@dataclass
+class RankedRow:
+    rank: int
+    configuration: Any  # runner.ConfigurationResult
+    value: float
+    interval: tuple[float, float] | None = None
+    tied: bool | None = None  # None: no paired bootstrap for this metric, or this row is the leader
+    difference_interval: tuple[float, float] | None = None
 
 
-def _cell(value: Any, column: str) -> str:
-    if isinstance(value, float):
-        if math.isnan(value):
-            return "-"
-        return f"{value:.0f}" if column in COUNT_COLUMNS else f"{value:.3f}"
-    return "-" if value is None else str(value)
+@dataclass
+class Ranking:
+    dataset: str
+    metric: str
+    rows: list[RankedRow] = field(default_factory=list)
+    level: float = 0.95
+
+    @property
+    def winner(self) -> RankedRow | None:
+        return self.rows[0] if self.rows else None
 
 
-def table(rows: list[dict[str, Any]], metric: str, limit: int | None = None) -> str:
-    """Fixed-width text table of the ranked rows."""
-    columns = [c.format(metric=metric) for c in COLUMNS]
-    columns = list(dict.fromkeys(columns))
-    shown = rows[:limit] if limit else rows
-    cells = [[_cell(row.get(c), c) for c in columns] for row in shown]
-    widths = [max(len(c), *(len(r[i]) for r in cells)) if cells else len(c) for i, c in enumerate(columns)]
-    lines = ["  ".join(c.ljust(w) for c, w in zip(columns, widths))]
-    lines.append("  ".join("-" * w for w in widths))
-    lines += ["  ".join(v.ljust(w) for v, w in zip(r, widths)) for r in cells]
+def ranking_metric(rank_by: str | None, labelled: bool) -> str:
+    if rank_by is not None:
+        return rank_by
+    return DEFAULT_LABELLED_METRIC if labelled else DEFAULT_LABEL_FREE_METRIC
+
+
+def _value(configuration, metric: str) -> float:
+    value = configuration.metrics.get(metric, float("nan"))
+    return float("nan") if value is None else float(value)
+
+
+def rank_configurations(configurations: list, sweep, corpora: dict) -> dict[str, Ranking]:
+    """Per dataset: configurations best first by the mean over seeds; runners-up tied with the leader where the
+    paired bootstrap interval of the difference contains 0 (bootstrapped metrics only)."""
+    rankings: dict[str, Ranking] = {}
+    for configuration in configurations:
+        dataset = configuration.dataset
+        if dataset not in rankings:
+            metric = ranking_metric(sweep.rank_by, corpora[dataset].labels is not None)
+            rankings[dataset] = Ranking(dataset, metric, level=sweep.evidence.level)
+        rankings[dataset].rows.append(RankedRow(0, configuration, _value(configuration, rankings[dataset].metric)))
+    for ranking in rankings.values():
+        ranking.rows.sort(key=lambda r: (math.isnan(r.value), -r.value if not math.isnan(r.value) else 0.0, r.configuration.name))
+        leader = ranking.rows[0] if ranking.rows else None
+        for position, row in enumerate(ranking.rows, start=1):
+            row.rank = position
+            distributions = row.configuration.distributions
+            if ranking.metric in BOOTSTRAPPED and ranking.metric in distributions:
+                row.interval = (row.configuration.metrics[f"{ranking.metric}_ci_low"],
+                                row.configuration.metrics[f"{ranking.metric}_ci_high"])
+                if row is not leader and ranking.metric in leader.configuration.distributions:
+                    row.tied, row.difference_interval = tied_with(leader.configuration.distributions[ranking.metric],
+                                                                  distributions[ranking.metric], ranking.level)
+    return rankings
+
+
+def _number(value: Any, digits: int = 3) -> str:
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "-"
+    return f"{value:.{digits}f}"
+
+
+def table(ranking: Ranking, limit: int | None = None) -> str:
+    """Fixed-width text table of one dataset's ranking."""
+    level = f"{ranking.level * 100:g}% CI"
+    header = ["rank", "configuration", ranking.metric, level, "tie", "stability_ari", "length_confound_index",
+              "length_leakage_r2", "coverage", "n_clusters"]
+    cells = []
+    for row in ranking.rows[:limit] if limit else ranking.rows:
+        metrics = row.configuration.metrics
+        if not row.configuration.complete:
+            cells.append([str(row.rank), row.configuration.name, "failed"] + ["-"] * (len(header) - 3))
+            continue
+        cells.append([
+            str(row.rank), row.configuration.name, _number(row.value),
+            f"[{_number(row.interval[0])}, {_number(row.interval[1])}]" if row.interval else "-",
+            "leader" if row.rank == 1 else ("tied" if row.tied else ("" if row.tied is not None else "-")),
+            _number(metrics.get("stability_ari")), _number(metrics.get("length_confound_index")),
+            _number(metrics.get("length_leakage_r2")), _number(metrics.get("coverage")), _number(metrics.get("n_clusters"), 1),
+        ])
+    widths = [max(len(h), *(len(c[i]) for c in cells)) if cells else len(h) for i, h in enumerate(header)]
+    lines = [f"{ranking.dataset}: ranked by {ranking.metric} (mean over seeds)",
+             "  ".join(h.ljust(w) for h, w in zip(header, widths)), "  ".join("-" * w for w in widths)]
+    lines += ["  ".join(c.ljust(w) for c, w in zip(cell, widths)) for cell in cells]
+    return "\n".join(lines)
+
+
+def descriptions_table(rows: list[dict]) -> str:
+    """The winner's clusters: size, median length, NPMI and distinctive terms."""
+    lines = [f"{'cluster':>7}  {'size':>5}  {'median tokens':>13}  {'npmi':>6}  top terms"]
+    for row in rows:
+        lines.append(f"{row['cluster']:>7}  {row['size']:>5}  {row['median_tokens']:>13.0f}  {_number(row['npmi'], 2):>6}  {row['top_terms']}")
     return "\n".join(lines)

@@ -73,6 +73,7 @@ class Trial:
     seed: int
     stages: dict[str, Stage] = field(compare=False)
     key: str = ""
+    config_key: str = ""  # the same for the seeds of one configuration
     equivalent_to: str | None = None  # key of an earlier trial that shares every stage
 
     @property
@@ -93,13 +94,30 @@ class Trial:
         return flat
 
     @property
-    def name(self) -> str:
-        reducer = self.reducer.as_params()
-        clusterer = self.clusterer.as_params()
+    def config_params(self) -> dict[str, Any]:
+        return {k: v for k, v in self.params.items() if k != "seed"}
+
+    @property
+    def config_name(self) -> str:
         return (
             f"{self.dataset}/{self.model.name.rsplit('/', 1)[-1]}/{self.layers}/{self.pooling}/{self.normalize}/"
-            f"{reducer['method']}/{clusterer['method']}/s{self.seed}"
+            f"{_short(self.reducer)}/{_short(self.clusterer)}"
         )
+
+    @property
+    def name(self) -> str:
+        return f"{self.config_name}/s{self.seed}"
+
+
+def _short(settings: Settings) -> str:
+    """A method and the settings that tell its variants apart, e.g. umap5 or hdbscan15leaf."""
+    params = settings.as_params()
+    method = params.pop("method")
+    telling = {"umap": ("n_components",), "pca": ("n_components",), "kmeans": ("k",), "hdbscan": ("min_cluster_size",)}
+    suffix = "".join(str(params[k]) for k in telling.get(method, ()) if k in params)
+    if params.get("cluster_selection_method") == "leaf":
+        suffix += "leaf"
+    return f"{method}{suffix}"
 
 
 def dataset_key(spec: Settings, tokenizer_weights: str | None = None) -> str:
@@ -188,8 +206,9 @@ def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str,
                 dataset=name, model=model, resolved_model=resolved, layers=layers, pooling=pooling,
                 normalize=normalize, reducer=reducer, clusterer=clusterer, seed=seed, stages=stages,
             )
-            key = settings_key({"dataset": dataset_keys[name], "weights": resolved.weights_digest, **trial.params})
-            trials.append(replace(trial, key=key))
+            identity = {"dataset": dataset_keys[name], "weights": resolved.weights_digest}
+            trials.append(replace(trial, key=settings_key({**identity, **trial.params}),
+                                  config_key=settings_key({**identity, **trial.config_params})))
     return _marked_equivalents(trials)
 
 
@@ -213,6 +232,14 @@ def aligned_params(trials: list[Trial]) -> dict[str, dict[str, Any]]:
     """
     names = sorted({name for trial in trials for name in trial.params})
     return {t.key: {name: t.params.get(name, NOT_APPLICABLE) for name in names} for t in trials}
+
+
+def configurations(trials: list[Trial]) -> list[list[Trial]]:
+    """Trials grouped by configuration (all seeds of one setting), in plan order."""
+    groups: dict[str, list[Trial]] = {}
+    for trial in trials:
+        groups.setdefault(trial.config_key, []).append(trial)
+    return list(groups.values())
 
 
 def stage_counts(trials: list[Trial]) -> dict[str, int]:

@@ -25,7 +25,7 @@ from harness.layers import layer_choice_fits, output_width
 from harness.models import ResolvedModel, resolve_model
 from harness.plan import Trial, aligned_params, dataset_key, planned_trials
 from harness.reduce import reduction_limits
-from harness.sweep import Sweep, load_sweep, sweep_error_at
+from harness.sweep import LABEL_FREE_METRICS, LABELLED_METRICS, EvidenceSettings, Sweep, load_sweep, sweep_error_at
 
 ProgressFactory = Callable[..., Any]
 
@@ -51,25 +51,42 @@ class TrialResult:
 
 
 @dataclass
+class ConfigurationResult:
+    """A configuration (a trial without its seed) with its seeds' results and the evidence over them."""
+
+    trials: list[Trial]
+    seeds: list[TrialResult]
+    metrics: dict[str, float] = field(default_factory=dict)
+    distributions: dict[str, np.ndarray] = field(default_factory=dict, repr=False)
+    run_id: Optional[str] = None
+    descriptions: list[dict] = field(default_factory=list, repr=False)
+
+    @property
+    def name(self) -> str:
+        return self.trials[0].config_name
+
+    @property
+    def dataset(self) -> str:
+        return self.trials[0].dataset
+
+    @property
+    def complete(self) -> bool:
+        return all(r.status in ("FINISHED", "REUSED") for r in self.seeds)
+
+
+@dataclass
 class SweepResult:
     parent_run_id: str
     tracking_uri: str
     results: list[TrialResult]
     work: dict[str, int]
-    rank_by: str
+    rankings: dict[str, "Ranking"]
+    configurations: list[ConfigurationResult] = field(default_factory=list)
+    stage_log: list[dict[str, Any]] = field(default_factory=list)
 
     @property
     def failed(self) -> list[TrialResult]:
         return [r for r in self.results if r.status == "FAILED"]
-
-    def leaderboard(self) -> list[dict[str, Any]]:
-        return _leaderboard(self.results, self.rank_by)
-
-
-def _leaderboard(results: list[TrialResult], rank_by: str) -> list[dict[str, Any]]:
-    from harness.leaderboard import ranked
-
-    return ranked([{"trial": r.trial.name, **r.scores} for r in results if r.status in ("FINISHED", "REUSED")], rank_by)
 
 
 def prepared_sweep(path: str | Path) -> PreparedSweep:
@@ -127,6 +144,10 @@ def check_against_data(prepared: PreparedSweep, corpora: dict[str, Corpus]) -> N
                     if problem:
                         raise sweep_error_at(prepared.path, ["grid", "reduce", index],
                             f"{problem} (dataset '{corpus.name}', model '{spec.name}')")
+        metric = prepared.sweep.rank_by
+        if corpus.labels is None and metric in LABELLED_METRICS:
+            raise sweep_error_at(prepared.path, ["rank_by"], f"'{metric}' needs gold labels, and dataset '{corpus.name}' has "
+                                 f"none; use one of {', '.join(LABEL_FREE_METRICS)} (or leave rank_by out)")
         for index, clusterer in enumerate(grid.cluster):
             problem = clustering_limits(clusterer, corpus.n_texts, corpus.n_classes)
             if problem:
@@ -160,33 +181,106 @@ def _file_sha256(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
-def run_trial(executor, trial: Trial, corpus: Corpus) -> tuple[dict[str, float], np.ndarray, np.ndarray]:
-    """Compute (or reuse) the trial's stages and score its clustering."""
-    from harness.scoring import trial_scores
+def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings) -> tuple[dict[str, float], list[dict], np.ndarray, np.ndarray]:
+    """Compute (or reuse) the trial's stages; score and describe its clustering."""
+    from harness.scoring import described_clusters, label_free_scores, trial_scores
 
     clusters = executor.clustered(trial)
     counts = executor.token_counts(trial)
     scores = trial_scores(clusters, counts, corpus.labels)
+    scores.update(label_free_scores(clusters, counts, executor.pooled(trial), executor.reduced(trial), seed=trial.seed,
+                                    permutations=evidence.permutations, max_points=evidence.max_points))
+    scores["length_leakage_r2"] = executor.length_leakage(trial)
+    table, scores["npmi_mean"] = described_clusters(executor.term_counts(trial), clusters, counts, top=evidence.top_terms)
     scores["truncated_fraction"] = executor.truncated_fraction(trial)
     scores.update(executor.stage_seconds(trial))
-    return scores, clusters, counts
+    return scores, table, clusters, counts
 
 
-def _log_trial(tracker, run_id: str, trial: Trial, corpus: Corpus, scores: dict[str, float],
+def _log_trial(tracker, run_id: str, trial: Trial, corpus: Corpus, scores: dict[str, float], table: list[dict],
                clusters: np.ndarray, counts: np.ndarray) -> None:
     import matplotlib.pyplot as plt
+    import pandas as pd
 
     from harness.plots import token_counts_by_cluster_figure
 
     with tempfile.TemporaryDirectory() as folder:
-        table = Path(folder) / "assignments.parquet"
-        _assignments_table(corpus, clusters, counts).to_parquet(table, index=False)
+        assignments = Path(folder) / "assignments.parquet"
+        _assignments_table(corpus, clusters, counts).to_parquet(assignments, index=False)
+        descriptions = Path(folder) / "clusters.parquet"
+        pd.DataFrame(table, columns=["cluster", "size", "median_tokens", "top_terms", "npmi"]).to_parquet(descriptions, index=False)
         figure = token_counts_by_cluster_figure(counts, clusters, trial.name)
         plot = Path(folder) / "token_counts_by_cluster.png"
         figure.savefig(plot)
         plt.close(figure)
-        tracker.log_files(run_id, [table, plot])
+        tracker.log_files(run_id, [assignments, descriptions, plot])
     tracker.log_results(run_id, scores)
+
+
+def _trial_tags(trial: Trial, corpus: Corpus) -> dict[str, str]:
+    tags = {
+        "harness.dataset_fingerprint": corpus.fingerprint,
+        "harness.model_source": trial.resolved_model.source,
+        "harness.model_weights_sha256": trial.resolved_model.weights_digest,
+    }
+    if trial.equivalent_to:
+        tags["harness.equivalent_to"] = trial.equivalent_to
+    return tags
+
+
+def _run_configuration(tracker, executor, configuration: list[Trial], done: dict, corpus: Corpus, params: dict,
+                       evidence: EvidenceSettings, parent: str, on_trial) -> ConfigurationResult:
+    """The seed runs of one configuration under one configuration run, then the evidence over seeds."""
+    from harness.evidence import configuration_evidence
+
+    first = configuration[0]
+    config_params = {k: v for k, v in params[first.key].items() if k != "seed"}
+    config_run = tracker.start_run(first.config_name, parent, "configuration", config_params,
+                                   {**_trial_tags(first, corpus), "harness.config_key": first.config_key})
+    result = ConfigurationResult(trials=configuration, seeds=[], run_id=config_run)
+    current: Optional[str] = None
+    try:
+        for trial in configuration:
+            if trial.key in done:
+                run = done[trial.key]
+                result.seeds.append(TrialResult(trial, "REUSED", dict(run.data.metrics), run_id=run.info.run_id))
+                continue
+            current = tracker.start_run(trial.name, config_run, "trial", params[trial.key], _trial_tags(trial, corpus),
+                                        trial_key=trial.key)
+            tracker.log_dataset(current, corpus.name, corpus.fingerprint, _source_type(corpus), corpus.source,
+                                {"rows": corpus.n_texts, "classes": corpus.n_classes})
+            try:
+                scores, table, clusters, counts = run_trial(executor, trial, corpus, evidence)
+                _log_trial(tracker, current, trial, corpus, scores, table, clusters, counts)
+                tracker.end(current, "FINISHED")
+                result.seeds.append(TrialResult(trial, "FINISHED", scores, run_id=current))
+                if not result.descriptions:
+                    result.descriptions = table
+            except (KeyboardInterrupt, SystemExit):
+                raise
+            except Exception as err:
+                message = f"{type(err).__name__}: {err}".splitlines()[0]
+                tracker.log_results(current, {}, tags={"harness.traceback": traceback.format_exc()[-4000:]})
+                tracker.end(current, "FAILED", error=message)
+                result.seeds.append(TrialResult(trial, "FAILED", error=message, run_id=current))
+            current = None
+            on_trial()
+        if result.complete:
+            found = configuration_evidence([r.scores for r in result.seeds], [executor.clustered(t) for t in configuration],
+                                           corpus.labels, resamples=evidence.resamples, seed=evidence.seed,
+                                           level=evidence.level)
+            result.metrics, result.distributions = found.metrics(), found.distributions
+            result.metrics["n_seeds"] = float(len(configuration))
+            tracker.log_results(config_run, result.metrics)
+            tracker.end(config_run, "FINISHED")
+        else:
+            tracker.end(config_run, "FAILED", error="a seed run failed")
+    except BaseException:
+        if current is not None:
+            tracker.end(current, "KILLED")
+        tracker.end(config_run, "KILLED")
+        raise
+    return result
 
 
 def execute_sweep(
@@ -200,8 +294,10 @@ def execute_sweep(
     progress: Optional[ProgressFactory] = None,
     encode_progress=None,
 ) -> SweepResult:
-    """Run every trial not already FINISHED in the experiment, logging each as a nested run under one sweep run."""
+    """Run every trial not already FINISHED in the experiment: sweep run -> configuration runs -> seed runs."""
     from harness.cache import StageCache
+    from harness.leaderboard import rank_configurations, table as leaderboard_table
+    from harness.plan import configurations
     from harness.stages import StageExecutor
     from harness.tracking import SweepTracker
 
@@ -209,67 +305,45 @@ def execute_sweep(
     tracker = SweepTracker(tracking_uri, results_dir / "artifacts", sweep.name)
     killed = tracker.mark_orphans_killed()
     done = tracker.finished_trials() if resume else {}
-    results: list[TrialResult] = [
-        TrialResult(t, "REUSED", {k: v for k, v in done[t.key].data.metrics.items()}, run_id=done[t.key].info.run_id)
-        for t in prepared.trials if t.key in done
-    ]
     pending = [t for t in prepared.trials if t.key not in done]
     grid = sweep.grid.as_params()
-    parent = tracker.start_sweep(
-        sweep.name,
-        params={"n_trials": len(prepared.trials), "rank_by": sweep.rank_by, **{f"grid.{k}": v for k, v in grid.items()}},
-        tags={"harness.version": __version__, "harness.sweep_sha256": _file_sha256(prepared.path),
-              "harness.question": sweep.question, "harness.reused_trials": str(len(results)),
-              "harness.orphans_marked_killed": str(killed)},
-    )
-    executor = StageExecutor(corpora, pending, StageCache(cache_dir) if cache_dir else None, encode_progress)
-    cards = dataset_cards(corpora, next(iter(prepared.models.values())))
+    parent = tracker.start_run(sweep.name, None, "sweep",
+        {"n_trials": len(prepared.trials), "rank_by": sweep.rank_by or "default", **{f"grid.{k}": v for k, v in grid.items()},
+         **{f"evidence.{k}": v for k, v in sweep.evidence.as_params().items()}},
+        {"harness.version": __version__, "harness.sweep_sha256": _file_sha256(prepared.path),
+         "harness.question": sweep.question, "harness.reused_trials": str(len(prepared.trials) - len(pending)),
+         "harness.orphans_marked_killed": str(killed)})
+    executor = StageExecutor(corpora, prepared.trials, StageCache(cache_dir) if cache_dir else None, encode_progress)
     params = aligned_params(prepared.trials)
-    trials = progress(pending, desc="trials", unit="trial") if progress else pending
-    current: Optional[str] = None
+    bar = progress(total=len(pending), desc="trials", unit="trial") if progress else None
+    results: list[ConfigurationResult] = []
     try:
         tracker.log_text(parent, prepared.path.read_text(), "sweep.yaml")
-        tracker.log_text(parent, json.dumps(cards, indent=2), "dataset_cards.json")
-        for trial in trials:
-            corpus = corpora[trial.dataset]
-            tags = {
-                "harness.dataset_fingerprint": corpus.fingerprint,
-                "harness.model_source": trial.resolved_model.source,
-                "harness.model_weights_sha256": trial.resolved_model.weights_digest,
-            }
-            if trial.equivalent_to:
-                tags["harness.equivalent_to"] = trial.equivalent_to
-            current = tracker.start_trial(trial.name, trial.key, params[trial.key], tags=tags)
-            tracker.log_dataset(current, corpus.name, corpus.fingerprint, _source_type(corpus), corpus.source,
-                                {"rows": corpus.n_texts, "classes": corpus.n_classes})
-            try:
-                scores, clusters, counts = run_trial(executor, trial, corpus)
-                _log_trial(tracker, current, trial, corpus, scores, clusters, counts)
-                tracker.end(current, "FINISHED")
-                results.append(TrialResult(trial, "FINISHED", scores, run_id=current))
-            except (KeyboardInterrupt, SystemExit):
-                raise
-            except Exception as err:
-                message = f"{type(err).__name__}: {err}".splitlines()[0]
-                tracker.log_results(current, {}, tags={"harness.traceback": traceback.format_exc()[-4000:]})
-                tracker.end(current, "FAILED", error=message)
-                results.append(TrialResult(trial, "FAILED", error=message, run_id=current))
-            current = None
-        from harness.leaderboard import table as leaderboard_table
-
-        tracker.log_text(parent, leaderboard_table(_leaderboard(results, sweep.rank_by), sweep.rank_by), "leaderboard.txt")
-        tracker.log_results(parent, {"n_finished": sum(r.status == "FINISHED" for r in results),
-                                     "n_reused": sum(r.status == "REUSED" for r in results),
-                                     "n_failed": sum(r.status == "FAILED" for r in results),
+        tracker.log_text(parent, json.dumps(dataset_cards(corpora, next(iter(prepared.models.values()))), indent=2),
+                         "dataset_cards.json")
+        for configuration in configurations(prepared.trials):
+            results.append(_run_configuration(tracker, executor, configuration, done, corpora[configuration[0].dataset],
+                                              params, sweep.evidence, parent, bar.update if bar else (lambda: None)))
+        rankings = rank_configurations(results, sweep, corpora)
+        for ranking in rankings.values():
+            for row in ranking.rows:
+                tracker.log_results(row.configuration.run_id, {"rank": row.rank, "tied_with_leader": float(row.tied)}
+                                    if row.tied is not None else {"rank": row.rank})
+        tracker.log_text(parent, "\n\n".join(leaderboard_table(r) for r in rankings.values()), "leaderboard.txt")
+        trial_results = [r for c in results for r in c.seeds]
+        tracker.log_results(parent, {"n_finished": sum(r.status == "FINISHED" for r in trial_results),
+                                     "n_reused": sum(r.status == "REUSED" for r in trial_results),
+                                     "n_failed": sum(r.status == "FAILED" for r in trial_results),
                                      **{f"work.{k}": v for k, v in executor.work.items()}})
-        tracker.end(parent, "FAILED" if any(r.status == "FAILED" for r in results) else "FINISHED")
+        tracker.end(parent, "FAILED" if any(r.status == "FAILED" for r in trial_results) else "FINISHED")
     except BaseException:
-        if current is not None:
-            tracker.end(current, "KILLED")
         tracker.end(parent, "KILLED")
         raise
-    return SweepResult(parent_run_id=parent, tracking_uri=tracking_uri, results=results, work=dict(executor.work),
-                       rank_by=sweep.rank_by)
+    finally:
+        if bar is not None:
+            bar.close()
+    return SweepResult(parent_run_id=parent, tracking_uri=tracking_uri, results=trial_results, work=dict(executor.work),
+                       rankings=rankings, configurations=results, stage_log=executor.stage_log)
 
 
 def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None = None, *,

@@ -4,7 +4,16 @@ from __future__ import annotations
 
 import numpy as np
 
-from harness.metrics import cluster_shape, length_scores, noise_aware_scores
+from harness.describe import TermCounts, cluster_descriptions
+from harness.metrics import (
+    cluster_shape,
+    cluster_size_entropy,
+    density_validity,
+    length_eta2_pvalue,
+    length_scores,
+    noise_aware_scores,
+    silhouette_cosine,
+)
 
 
 def trial_scores(clusters: np.ndarray, token_counts: np.ndarray, labels: np.ndarray | None) -> dict[str, float]:
@@ -17,3 +26,23 @@ def trial_scores(clusters: np.ndarray, token_counts: np.ndarray, labels: np.ndar
     scores = noise_aware_scores(labels, clusters) if labels is not None else cluster_shape(clusters)
     scores.update(length_scores(lengths, clusters, labels))
     return scores
+
+
+def label_free_scores(clusters: np.ndarray, token_counts: np.ndarray, pooled: np.ndarray, reduced: np.ndarray, *,
+                      seed: int, permutations: int, max_points: int) -> dict[str, float]:
+    """Scores that need no labels: silhouette on the pooled vectors, DBCV on the clustered space, size entropy,
+    and the permutation p-value of eta^2(log length | cluster)."""
+    lengths = np.maximum(np.asarray(token_counts), 1)
+    return {
+        "silhouette": silhouette_cosine(pooled, clusters, max_points=max_points, seed=seed),
+        "dbcv": density_validity(reduced, clusters, max_points=max_points, seed=seed),
+        "cluster_size_entropy": cluster_size_entropy(clusters),
+        "length_eta2_pvalue": length_eta2_pvalue(lengths, clusters, permutations=permutations, seed=seed),
+    }
+
+
+def described_clusters(terms: TermCounts, clusters: np.ndarray, token_counts: np.ndarray, *, top: int) -> tuple[list[dict], float]:
+    """The cluster description table and its mean NPMI coherence (NaN without clusters)."""
+    table = cluster_descriptions(terms, clusters, token_counts, top=top)
+    coherences = [row["npmi"] for row in table if not np.isnan(row["npmi"])]
+    return table, float(np.mean(coherences)) if coherences else float("nan")

@@ -9,6 +9,7 @@ was (not) recomputed without timing anything.
 
 from __future__ import annotations
 
+import resource
 import time
 from collections import Counter, defaultdict
 from typing import Any, Callable, Optional
@@ -38,11 +39,13 @@ class StageExecutor:
         self.corpora = corpora
         self.cache = cache
         self.work: Counter = Counter()
+        self.stage_log: list[dict[str, Any]] = []  # one entry per computed stage: kind, seconds, peak RSS so far
         self._outputs: dict[str, np.ndarray] = {}
         self._info: dict[str, dict[str, Any]] = {}
         self._encoders: dict[tuple, LoadedEncoder] = {}
         self._variants: dict[str, set] = defaultdict(set)
         self._encode_progress = encode_progress
+        self._derived: dict[tuple, Any] = {}
         for trial in trials:
             self._variants[trial.stages["encode"].key].add((trial.layers, trial.stages["pool"].settings["pooling"]))
 
@@ -62,6 +65,10 @@ class StageExecutor:
         self._outputs[key], self._info[key] = array, info
         if self.cache is not None:
             self.cache.put(kind, key, array, info)
+
+    def _logged(self, kind: str, seconds: float) -> None:
+        peak_kib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+        self.stage_log.append({"kind": kind, "seconds": seconds, "peak_rss_mb": peak_kib / 1024})
 
     # -- encode and pool -------------------------------------------------------------------------------------
     def _encoder(self, trial: Trial) -> LoadedEncoder:
@@ -101,6 +108,7 @@ class StageExecutor:
             done()
         self.work["forward_passes"] += 1
         seconds = time.perf_counter() - started
+        self._logged("encode", seconds)
         for variant, array in variants.items():
             self._keep("pool", wanted[variant], array.astype(dtype, copy=False),
                        {"settings": {"layers": variant[0], "pooling": variant[1], "dtype": dtype}, "seconds": seconds})
@@ -127,8 +135,10 @@ class StageExecutor:
         if not self._held(kind, stage.key):
             started = time.perf_counter()
             array = compute()
+            seconds = time.perf_counter() - started
             self.work[counter] += 1
-            self._keep(kind, stage.key, array, {"settings": stage.settings, "seconds": time.perf_counter() - started})
+            self._logged(kind, seconds)
+            self._keep(kind, stage.key, array, {"settings": stage.settings, "seconds": seconds})
         return self._outputs[stage.key]
 
     def transformed(self, trial: Trial) -> np.ndarray:
@@ -142,6 +152,24 @@ class StageExecutor:
         n_classes = self.corpora[trial.dataset].n_classes
         return self._computed(trial, "cluster", "clusterings",
                               lambda: cluster_labels(self.reduced(trial), trial.clusterer, trial.seed, n_classes))
+
+    def _memo(self, key: tuple, compute: Callable[[], Any]) -> Any:
+        if key not in self._derived:
+            self._derived[key] = compute()
+        return self._derived[key]
+
+    def term_counts(self, trial: Trial):
+        """Unigram and bigram counts of the trial's corpus, built once per dataset."""
+        from harness.describe import term_counts
+
+        return self._memo(("terms", trial.dataset), lambda: term_counts(self.corpora[trial.dataset].texts))
+
+    def length_leakage(self, trial: Trial, seed: int = 0) -> float:
+        """Cross-validated R^2 of log length from the pooled vectors, once per pooled variant."""
+        from harness.metrics import length_leakage_r2
+
+        return self._memo(("leakage", trial.stages["pool"].key, seed), lambda: length_leakage_r2(
+            self.pooled(trial), np.maximum(self.token_counts(trial), 1), seed=seed))
 
     def stage_seconds(self, trial: Trial) -> dict[str, float]:
         """Seconds each of the trial's stages took when it was computed (shared or cached stages count in full)."""

@@ -22,7 +22,13 @@ from harness.pooling import POOLINGS
 from harness.reduce import ReducerSettings, UmapSettings
 from harness.transforms import NORMALIZATIONS
 
-RANKING_METRICS = ("ari", "ami", "nmi", "v_measure", "ari_clustered", "ami_clustered", "nmi_clustered", "v_measure_clustered")
+LABELLED_METRICS = ("ari", "ami", "nmi", "v_measure", "ari_clustered", "ami_clustered", "nmi_clustered", "v_measure_clustered")
+LABEL_FREE_METRICS = ("silhouette", "dbcv", "stability_ari", "npmi_mean", "cluster_size_entropy", "coverage")
+RANKING_METRICS = LABELLED_METRICS + LABEL_FREE_METRICS
+# Without labels the leaderboard ranks by silhouette: it is measured on the pooled vectors, the same space for
+# every reducer and clusterer of a model, while DBCV is measured on each reduced space and cannot be compared
+# across reducers.
+DEFAULT_LABELLED_METRIC, DEFAULT_LABEL_FREE_METRIC = "ari", "silhouette"
 
 
 def _one_of(value: Any, choices: Any, what: str) -> str:
@@ -79,13 +85,25 @@ class GridSettings(Settings):
         return _unique(values, info.field_name)
 
 
+class EvidenceSettings(Settings):
+    """How much resampling backs each claim."""
+
+    resamples: int = Field(1000, ge=0)  # bootstrap resamples of texts; 0 turns intervals and tie flags off
+    level: float = Field(0.95, gt=0.0, lt=1.0)
+    seed: int = 0
+    permutations: int = Field(999, ge=1)  # for the length p-value
+    max_points: PositiveInt = 5000  # silhouette and DBCV are computed on a seeded sample of at most this many texts
+    top_terms: PositiveInt = 10
+
+
 class Sweep(Settings):
     name: str = Field(min_length=1, pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")
     question: str = ""
     datasets: list[DatasetSettings] = Field(min_length=1)
     models: list[ModelSettings] = Field(min_length=1)
     grid: GridSettings
-    rank_by: str = "ari"
+    rank_by: Optional[str] = None  # default: ari with labels, silhouette without
+    evidence: EvidenceSettings = Field(default_factory=EvidenceSettings)
     storage_dtype: Literal["float32", "float16"] = "float32"  # how pooled vectors are kept in the cache
 
     @field_validator("models", mode="before")
@@ -97,8 +115,8 @@ class Sweep(Settings):
 
     @field_validator("rank_by")
     @classmethod
-    def _known_metric(cls, value: str) -> str:
-        if value not in RANKING_METRICS:
+    def _known_metric(cls, value: Optional[str]) -> Optional[str]:
+        if value is not None and value not in RANKING_METRICS:
             raise ValueError(_one_of(value, RANKING_METRICS, "a ranking metric"))
         return value
 

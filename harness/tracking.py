@@ -64,7 +64,6 @@ class SweepTracker:
                 self.experiment_id = experiment.experiment_id
         except Exception as err:
             raise HarnessError(f"tracking store {tracking_uri}: cannot open it: {str(err).splitlines()[0]}") from None
-        self.parent_id: str | None = None
 
     def _runs(self, filter_string: str) -> list:
         runs, token = [], None
@@ -85,33 +84,22 @@ class SweepTracker:
 
     def mark_orphans_killed(self) -> int:
         """Mark KILLED the runs left RUNNING by a process of this host that no longer exists."""
-        running = self._runs("attributes.status = 'RUNNING'")
-        owners = {r.info.run_id: r for r in running if r.data.tags.get(KIND_TAG) == "sweep"}
-        for run in running:
-            parent_id = run.data.tags.get(PARENT_TAG)
-            if parent_id and parent_id not in owners:
-                owners[parent_id] = self.client.get_run(parent_id)
         marked = 0
-        for run in running:
-            owner = owners.get(run.data.tags.get(PARENT_TAG, run.info.run_id))
-            if owner is not None and _owner_gone(owner.data.tags):
+        for run in self._runs("attributes.status = 'RUNNING'"):
+            if _owner_gone(run.data.tags):
                 self.client.set_terminated(run.info.run_id, status="KILLED")
                 marked += 1
         return marked
 
-    def start_sweep(self, name: str, params: dict[str, Any], tags: dict[str, str]) -> str:
-        tags = {KIND_TAG: "sweep", HOST_TAG: socket.gethostname(), PID_TAG: str(os.getpid()), **tags}
+    def start_run(self, name: str, parent_id: str | None, kind: str, params: dict[str, Any], tags: dict[str, str],
+                  trial_key: str | None = None) -> str:
+        """Create a run (nested under ``parent_id`` when given) with its params; every run records its host and PID."""
+        tags = {KIND_TAG: kind, HOST_TAG: socket.gethostname(), PID_TAG: str(os.getpid()), **tags}
+        if parent_id is not None:
+            tags[PARENT_TAG] = parent_id
+        if trial_key is not None:
+            tags[TRIAL_KEY_TAG] = trial_key
         run = self.client.create_run(self.experiment_id, run_name=name, tags=tags)
-        self.parent_id = run.info.run_id
-        self._log(self.parent_id, params=params)
-        return self.parent_id
-
-    def start_trial(self, name: str, trial_key: str, params: dict[str, Any], tags: dict[str, str]) -> str:
-        run = self.client.create_run(
-            self.experiment_id,
-            run_name=name,
-            tags={PARENT_TAG: self.parent_id, KIND_TAG: "trial", TRIAL_KEY_TAG: trial_key, **tags},
-        )
         self._log(run.info.run_id, params=params)
         return run.info.run_id
 

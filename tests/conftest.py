@@ -60,12 +60,24 @@ def pytest_terminal_summary(terminalreporter):
 
 
 def finished_runs(tracking_uri: str, experiment: str):
-    """(parent runs, child runs) of an experiment, read back through MLflow's client."""
+    """(client, sweep runs, seed runs) of an experiment, read back through MLflow's client.
+
+    Seed runs are the trials; the configuration runs between them and the sweep run come from configuration_runs.
+    """
+    client, runs = _runs(tracking_uri, experiment)
+    return client, runs["sweep"], runs["trial"]
+
+
+def configuration_runs(tracking_uri: str, experiment: str):
+    return _runs(tracking_uri, experiment)[1]["configuration"]
+
+
+def _runs(tracking_uri: str, experiment: str):
     from mlflow.tracking import MlflowClient
 
     client = MlflowClient(tracking_uri=tracking_uri)
     experiment_id = client.get_experiment_by_name(experiment).experiment_id
-    runs = client.search_runs([experiment_id], max_results=5000)
-    parents = [r for r in runs if "mlflow.parentRunId" not in r.data.tags]
-    children = [r for r in runs if "mlflow.parentRunId" in r.data.tags]
-    return client, parents, children
+    by_kind = {"sweep": [], "configuration": [], "trial": []}
+    for run in client.search_runs([experiment_id], max_results=5000):
+        by_kind[run.data.tags["harness.kind"]].append(run)
+    return client, by_kind

@@ -19,7 +19,7 @@ from harness.runner import loaded_corpora, prepared_sweep, run_sweep_file
 from harness.stages import StageExecutor
 from harness.transforms import l2_normalized
 
-from conftest import finished_runs, write_sweep
+from conftest import configuration_runs, finished_runs, write_sweep
 
 SWEEP = """
 name: cached
@@ -84,8 +84,8 @@ def test_equivalent_trials_are_computed_once_and_tagged(tmp_path, tiny_model_dir
     sweep = write_sweep(tmp_path, SWEEP.format(model=tiny_model_dir, cluster=CLUSTER_A))
     prepared = prepared_sweep(sweep)
     by_name = {t.name: t for t in prepared.trials}
-    twin = by_name[f"town_requests/{tiny_model_dir.name}/last/mean_sqrt_len/l2/umap/hdbscan/s0"]
-    original = by_name[f"town_requests/{tiny_model_dir.name}/last/mean/l2/umap/hdbscan/s0"]
+    twin = by_name[f"town_requests/{tiny_model_dir.name}/last/mean_sqrt_len/l2/umap4/hdbscan8/s0"]
+    original = by_name[f"town_requests/{tiny_model_dir.name}/last/mean/l2/umap4/hdbscan8/s0"]
     assert twin.equivalent_to == original.key and twin.stages == original.stages
 
     # The equivalence itself: after L2 normalisation mean and mean_sqrt_len pooled vectors agree to 1e-6.
@@ -169,7 +169,7 @@ grid:
     assert 3 <= finished_before < 24, "the sweep must be killed part-way"
 
     result = run_sweep_file(sweep, results)
-    statuses = [r.status for r in result.results]
+    statuses = [r.status for r in result.results]  # one seed per configuration here
     assert statuses.count("REUSED") == finished_before
     assert statuses.count("FINISHED") == 24 - finished_before
     _, parents, children = finished_runs(result.tracking_uri, "resumable")
@@ -177,6 +177,7 @@ grid:
     assert sorted(finished_keys) == sorted({t.trial.key for t in result.results})  # each trial FINISHED once
     assert {p.info.status for p in parents} == {"KILLED", "FINISHED"}  # the killed run is no longer RUNNING
     assert all(c.info.status in ("FINISHED", "KILLED") for c in children)
+    assert all(c.info.status in ("FINISHED", "KILLED") for c in configuration_runs(result.tracking_uri, "resumable"))
 
 
 def test_cache_info_and_prune(tmp_path, capsys):

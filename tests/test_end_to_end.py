@@ -12,7 +12,7 @@ from harness import reduce as reduce_module
 from harness.cli import main
 from harness.runner import run_sweep_file
 
-from conftest import MINILM, finished_runs, write_sweep
+from conftest import MINILM, configuration_runs, finished_runs, write_sweep
 
 SMALL = """
 name: small
@@ -40,12 +40,15 @@ def test_sweep_logs_one_parent_and_a_finished_child_per_trial(tmp_path, tiny_mod
     results = tmp_path / "results"
     assert main(["run", str(sweep), "--results-dir", str(results), "--no-progress"]) == 0
     out = capsys.readouterr().out
-    assert "rank" in out and "length_confound_index" in out
+    assert "town_requests: ranked by ari (mean over seeds)" in out and "length_confound_index" in out
 
-    client, parents, children = finished_runs(f"sqlite:///{results / 'mlflow.db'}", "small")
+    uri = f"sqlite:///{results / 'mlflow.db'}"
+    client, parents, children = finished_runs(uri, "small")
+    configs = configuration_runs(uri, "small")
     assert len(parents) == 1 and parents[0].info.status == "FINISHED"
     assert len(children) == 8 and {c.info.status for c in children} == {"FINISHED"}
-    assert {c.data.tags["mlflow.parentRunId"] for c in children} == {parents[0].info.run_id}
+    assert len(configs) == 8 and {c.data.tags["mlflow.parentRunId"] for c in configs} == {parents[0].info.run_id}
+    assert {c.data.tags["mlflow.parentRunId"] for c in children} == {c.info.run_id for c in configs}
     assert len({c.data.tags["harness.trial_key"] for c in children}) == 8
     for child in children:
         assert REQUIRED_METRICS <= child.data.metrics.keys()
@@ -54,7 +57,7 @@ def test_sweep_logs_one_parent_and_a_finished_child_per_trial(tmp_path, tiny_mod
         # Same param names on every run, so MLflow's compare views line up.
         assert set(child.data.params) == set(children[0].data.params)
         artifacts = {a.path for a in client.list_artifacts(child.info.run_id)}
-        assert artifacts == {"assignments.parquet", "token_counts_by_cluster.png"}
+        assert artifacts == {"assignments.parquet", "clusters.parquet", "token_counts_by_cluster.png"}
     table = pd.read_parquet(client.download_artifacts(children[0].info.run_id, "assignments.parquet", str(tmp_path)))
     assert list(table.columns) == ["id", "label", "cluster", "token_count"] and len(table) == 300
     # The logged scores are the ones the logged assignments give (scikit-learn's ARI as the reference).

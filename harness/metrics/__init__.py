@@ -10,11 +10,26 @@ from harness.metrics._external import (
     noise_aware_scores,
     normalized_mutual_info,
 )
-from harness.metrics._length import length_confound_index, length_eta_squared, length_scores
+from harness.metrics._contingency import PairCodes, scores_from_table
+from harness.metrics._internal import cluster_size_entropy, density_validity, silhouette_cosine
+from harness.metrics._length import (
+    length_confound_index,
+    length_eta2_pvalue,
+    length_eta_squared,
+    length_leakage_r2,
+    length_scores,
+)
 
 __all__ = sorted(
     [
         "NOISE",
+        "PairCodes",
+        "cluster_size_entropy",
+        "density_validity",
+        "length_eta2_pvalue",
+        "length_leakage_r2",
+        "scores_from_table",
+        "silhouette_cosine",
         "adjusted_mutual_info",
         "adjusted_rand",
         "cluster_shape",

@@ -41,3 +41,55 @@ def length_scores(lengths: np.ndarray, clusters: np.ndarray, labels: np.ndarray 
         scores["length_eta2_labels"] = length_eta_squared(lengths, labels)
         scores["length_confound_index"] = length_confound_index(lengths, clusters, labels)
     return scores
+
+
+def length_eta2_pvalue(lengths: np.ndarray, groups: np.ndarray, *, permutations: int = 999, seed: int = 0) -> float:
+    """Permutation p-value of eta^2(log length | groups): how often shuffled lengths explain as much.
+
+    p = (1 + #{eta2 of a permutation >= observed}) / (1 + permutations), the usual
+    Monte Carlo estimate that never returns 0.
+    """
+    lengths, groups = check_same_length(lengths, groups, names=("lengths", "groups"))
+    if permutations < 1:
+        raise ValueError(f"The 'permutations' parameter must be >= 1. Got {permutations} instead.")
+    log_len = np.log(check_positive(lengths, "lengths"))
+    _, codes = np.unique(groups, return_inverse=True)
+    sizes = np.bincount(codes).astype(float)
+    centred = log_len - log_len.mean()
+    total = float((centred ** 2).sum())
+    if total == 0.0:
+        return 1.0
+
+    membership = np.zeros((codes.size, sizes.size))
+    membership[np.arange(codes.size), codes] = 1.0
+
+    def between(values: np.ndarray) -> np.ndarray:  # (m, n) -> between-group sum of squares per row
+        return ((values @ membership) ** 2 / sizes).sum(axis=1)
+
+    observed = between(centred[None, :])[0]
+    rng = np.random.default_rng(seed)
+    exceed, done = 0, 0
+    tolerance = 1e-12 * max(abs(observed), 1.0)  # ties at floating-point level count as exceeding
+    while done < permutations:
+        chunk = min(256, permutations - done)
+        shuffled = np.stack([rng.permutation(centred) for _ in range(chunk)])
+        exceed += int((between(shuffled) >= observed - tolerance).sum())
+        done += chunk
+    return (1 + exceed) / (1 + permutations)
+
+
+def length_leakage_r2(vectors: np.ndarray, lengths: np.ndarray, *, folds: int = 5, seed: int = 0, alpha: float = 1.0) -> float:
+    """Cross-validated R^2 of a ridge regression predicting log length from the vectors.
+
+    How much length the embedding itself encodes, whatever the clustering. Folds are
+    shuffled with ``seed``; the score is the mean R^2 over folds.
+    """
+    from sklearn.linear_model import Ridge
+    from sklearn.model_selection import KFold, cross_val_score
+
+    (lengths,) = check_same_length(lengths, names=("lengths",))
+    if vectors.shape[0] != lengths.size:
+        raise ValueError(f"The 'vectors' parameter must have one row per length. Got {vectors.shape[0]} rows for {lengths.size} lengths instead.")
+    target = np.log(check_positive(lengths, "lengths"))
+    splitter = KFold(n_splits=folds, shuffle=True, random_state=seed)
+    return float(cross_val_score(Ridge(alpha=alpha), vectors, target, cv=splitter, scoring="r2").mean())

@@ -1,0 +1,203 @@
+"""Intervals, ties, label-free scores and cluster descriptions, against their references."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy import sparse, stats
+from sklearn import metrics as skm
+
+from harness.cli import main
+from harness.describe import TermCounts, cluster_descriptions, log_odds_z, npmi, npmi_coherence
+from harness.evidence import (
+    bootstrap_distributions,
+    configuration_evidence,
+    percentile_interval,
+    stability_ari,
+    tied_with,
+)
+from harness.metrics import (
+    PairCodes,
+    density_validity,
+    length_eta2_pvalue,
+    length_eta_squared,
+    length_leakage_r2,
+    scores_from_table,
+    silhouette_cosine,
+)
+
+from conftest import finished_runs, write_sweep
+
+RNG = np.random.default_rng(11)
+
+
+def _noisy(labels: np.ndarray, share: float, rng) -> np.ndarray:
+    return np.where(rng.random(labels.size) < share, rng.integers(0, labels.max() + 1, labels.size), labels)
+
+
+def test_bootstrap_interval_equals_scipy_percentile_bootstrap():
+    # Reference: scipy.stats.bootstrap(method="percentile", paired=True) on the same statistic with the same seed;
+    # both draw rng.integers(0, n, (B, n)) from numpy's default generator.
+    labels = RNG.integers(0, 4, 300)
+    clusters = _noisy(labels, 0.4, RNG)
+    ours = percentile_interval(bootstrap_distributions(labels, [clusters], resamples=199, seed=5)["ari"], 0.95)
+    reference = stats.bootstrap((labels, clusters), skm.adjusted_rand_score, paired=True, vectorized=False,
+                                n_resamples=199, method="percentile", confidence_level=0.95,
+                                random_state=np.random.default_rng(5)).confidence_interval
+    assert ours == pytest.approx((reference.low, reference.high), rel=1e-9)
+
+
+labelings = st.integers(min_value=2, max_value=80).flatmap(lambda n: st.tuples(
+    st.lists(st.integers(0, 4), min_size=n, max_size=n),
+    st.lists(st.integers(-1, 6), min_size=n, max_size=n),
+    st.lists(st.integers(0, 3), min_size=n, max_size=n),
+))
+
+
+@settings(max_examples=80, deadline=None)
+@given(labelings)
+def test_scores_from_a_reweighted_table_equal_scikit_learn_on_the_resampled_arrays(case):
+    # Reference: scikit-learn's ARI, AMI, NMI and V-measure on the label arrays that the weights describe.
+    labels, clusters, weights = (np.array(x) for x in case)
+    if weights.sum() == 0:
+        weights[0] = 1
+    ours = scores_from_table(PairCodes(labels, clusters).table(weights.astype(float)))
+    a, b = np.repeat(labels, weights), np.repeat(clusters, weights)
+    reference = {"ari": skm.adjusted_rand_score(a, b), "ami": skm.adjusted_mutual_info_score(a, b),
+                 "nmi": skm.normalized_mutual_info_score(a, b), "v_measure": skm.v_measure_score(a, b)}
+    for name, value in reference.items():
+        assert ours[name] == pytest.approx(value, abs=1e-9), name
+
+
+def test_permutation_pvalue_agrees_with_scipy_permutation_test():
+    # Reference: scipy.stats.permutation_test(permutation_type="pairings", alternative="greater"); the two use
+    # different random streams, so they agree within Monte Carlo error (sd of p at p~0.2 with 9,999 draws ~0.004).
+    rng = np.random.default_rng(5)
+    lengths = rng.integers(3, 60, 400)
+    groups = rng.integers(0, 4, 400)
+    groups[:25] = np.where(lengths[:25] > 30, 0, 1)  # a faint tie between length and group: p in mid range
+    ours = length_eta2_pvalue(lengths, groups, permutations=9999, seed=1)
+    reference = stats.permutation_test(
+        (lengths,), lambda x: length_eta_squared(x, groups), permutation_type="pairings", vectorized=False,
+        n_resamples=9999, alternative="greater", random_state=np.random.default_rng(2)).pvalue
+    assert 0.05 < reference < 0.95 and abs(ours - reference) < 0.03
+    strong = np.digitize(lengths, [15, 30, 45])
+    assert length_eta2_pvalue(lengths, strong, permutations=999, seed=1) == pytest.approx(1 / 1000)
+
+
+def test_silhouette_equals_scikit_learn_on_clustered_points():
+    # Reference: sklearn.metrics.silhouette_score(metric="cosine") on the points that are not noise.
+    vectors = RNG.normal(size=(200, 8))
+    clusters = RNG.integers(-1, 3, 200)
+    kept = clusters != -1
+    reference = skm.silhouette_score(vectors[kept], clusters[kept], metric="cosine")
+    assert silhouette_cosine(vectors, clusters) == pytest.approx(reference, rel=1e-12)
+    assert math.isnan(silhouette_cosine(vectors, np.zeros(200, int)))
+
+
+def test_dbcv_equals_the_hdbscan_package():
+    # Reference: hdbscan.validity.validity_index on the same points and labels.
+    from hdbscan.validity import validity_index
+
+    points = np.vstack([RNG.normal(0, 1, (60, 2)), RNG.normal(8, 1, (60, 2)), RNG.uniform(-5, 13, (10, 2))])
+    labels = np.array([0] * 60 + [1] * 60 + [-1] * 10)
+    assert density_validity(points, labels) == pytest.approx(validity_index(points, labels), rel=1e-12)
+
+
+def test_log_odds_hand_worked():
+    # Monroe, Colaresi & Quinn (2008), eqs. 16 and 22, worked by hand for two terms.
+    # Group i counts (3, 1), rest j counts (1, 5), prior a = (4, 6): a0 = 10, n_i = 4, n_j = 6.
+    # delta_1 = log(7/(4+10-7)) - log(5/(6+10-5)) = log(7/7) - log(5/11) = 0.788457...
+    # var_1 = 1/7 + 1/5 = 0.342857...;  z_1 = 0.788457 / sqrt(0.342857) = 1.346546...
+    z = log_odds_z(np.array([3, 1]), np.array([1, 5]), np.array([4, 6]))
+    assert z[0] == pytest.approx(math.log(5 / 11) * -1 / math.sqrt(1 / 7 + 1 / 5))
+    # delta_2 = log(7/(4+10-7)) - log(11/(6+10-11)) = 0 - log(11/5);  var_2 = 1/7 + 1/11
+    assert z[1] == pytest.approx(-math.log(11 / 5) / math.sqrt(1 / 7 + 1 / 11))
+
+
+def test_npmi_hand_worked():
+    # Bouma (2009): NPMI = log(p(x,y) / (p(x) p(y))) / -log p(x,y). Four documents: terms a, b, c.
+    # a in docs {0,1,2}, b in {0,1}, c in {3}: p(a)=3/4, p(b)=1/2, p(a,b)=1/2 ->
+    # NPMI(a,b) = log((1/2)/(3/8)) / -log(1/2) = log(4/3) / log 2 = 0.415037...; a and c never co-occur -> -1.
+    present = sparse.csr_matrix(np.array([[1, 1, 0], [1, 1, 0], [1, 0, 0], [0, 0, 1]], dtype=float))
+    assert npmi(3 / 4, 1 / 2, 1 / 2) == pytest.approx(math.log(4 / 3) / math.log(2))
+    assert npmi(3 / 4, 1 / 4, 0.0) == -1.0
+    expected = (math.log(4 / 3) / math.log(2) - 1.0 - 1.0) / 3  # pairs (a,b), (a,c), (b,c)
+    assert npmi_coherence(present, [0, 1, 2]) == pytest.approx(expected)
+
+
+def test_cluster_descriptions_name_each_cluster_by_its_own_terms():
+    texts = ["pothole road asphalt"] * 5 + ["bin rubbish recycling"] * 5
+    counts = sparse.csr_matrix(np.array([[1, 1, 1, 0, 0, 0]] * 5 + [[0, 0, 0, 1, 1, 1]] * 5, dtype=float))
+    terms = TermCounts(counts, np.array(["asphalt", "pothole", "road", "bin", "recycling", "rubbish"]))
+    rows = cluster_descriptions(terms, np.array([0] * 5 + [1] * 5), np.full(10, 3), top=3)
+    assert set(rows[0]["top_terms"].split(", ")) == {"asphalt", "pothole", "road"}
+    assert set(rows[1]["top_terms"].split(", ")) == {"bin", "recycling", "rubbish"}
+    assert rows[0]["npmi"] == pytest.approx(1.0) and len(texts) == 10  # always together -> NPMI 1
+
+
+def test_ties_for_clusterings_within_noise_and_none_for_a_clearly_better_one():
+    labels = RNG.integers(0, 5, 600)
+    good = _noisy(labels, 0.3, np.random.default_rng(1))
+    good_again = _noisy(labels, 0.3, np.random.default_rng(2))  # the same quality, different noise
+    poor = _noisy(labels, 0.8, np.random.default_rng(3))
+    dist = {name: bootstrap_distributions(labels, [c], resamples=300, seed=0)["ari"]
+            for name, c in (("good", good), ("again", good_again), ("poor", poor))}
+    assert tied_with(dist["good"], dist["again"])[0] is True
+    assert tied_with(dist["good"], dist["poor"])[0] is False
+
+
+def test_stability_and_seed_aggregation():
+    labels = RNG.integers(0, 3, 100)
+    assert stability_ari([labels, labels, labels]) == 1.0
+    assert math.isnan(stability_ari([labels]))
+    evidence = configuration_evidence([{"ari": 0.5}, {"ari": 0.7}], [labels, labels], labels, resamples=50, seed=0)
+    assert evidence.means["ari"] == pytest.approx(0.6) and evidence.stds["ari"] == pytest.approx(0.1)
+    assert evidence.metrics()["ari_ci_low"] == evidence.metrics()["ari_ci_high"] == 1.0  # both clusterings = labels
+
+
+def test_length_leakage_of_planted_and_absent_length():
+    lengths = RNG.integers(3, 60, 500)
+    planted = np.column_stack([np.log(lengths) + RNG.normal(0, 0.05, 500), RNG.normal(size=(500, 10))])
+    assert length_leakage_r2(planted, lengths) > 0.95
+    assert length_leakage_r2(RNG.normal(size=(500, 10)), lengths) < 0.05
+
+
+def test_an_unlabelled_file_is_ranked_by_silhouette(tmp_path, tiny_model_dir, capsys):
+    from harness.datasets.synthetic import SyntheticSource, synthetic_corpus
+
+    corpus = synthetic_corpus(SyntheticSource(source="synthetic", n_texts=150, topic_share=0.5))
+    pd.DataFrame({"body": corpus.texts}).to_csv(tmp_path / "requests.csv", index=False)
+    sweep = write_sweep(tmp_path, f"""
+name: unlabelled
+datasets:
+  - {{source: file, path: requests.csv, text_column: body, label_column: null}}
+models: [{tiny_model_dir}]
+grid:
+  pooling: [mean, max]
+  reduce:
+    - {{method: pca, n_components: 5}}
+  cluster:
+    - {{method: kmeans, k: 4}}
+  seeds: [0, 1]
+""")
+    results = tmp_path / "results"
+    assert main(["run", str(sweep), "--results-dir", str(results), "--no-progress"]) == 0
+    out = capsys.readouterr().out
+    assert "requests: ranked by silhouette (mean over seeds)" in out
+    _, parents, children = finished_runs(f"sqlite:///{results / 'mlflow.db'}", "unlabelled")
+    seeds = [c for c in children if c.data.tags["harness.kind"] == "trial"]
+    configs = [c for c in children if c.data.tags["harness.kind"] == "configuration"]
+    assert len(seeds) == 4 and len(configs) == 2
+    assert {s.data.tags["mlflow.parentRunId"] for s in seeds} == {c.info.run_id for c in configs}
+    assert {c.data.tags["mlflow.parentRunId"] for c in configs} == {parents[0].info.run_id}
+    for run in seeds:
+        assert {"silhouette", "dbcv", "cluster_size_entropy", "coverage", "length_eta2_clusters",
+                "length_eta2_pvalue", "length_leakage_r2", "npmi_mean"} <= run.data.metrics.keys()
+        assert "ari" not in run.data.metrics
+    assert all("stability_ari" in c.data.metrics for c in configs)
