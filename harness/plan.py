@@ -25,7 +25,7 @@ from harness.models import ResolvedModel
 from harness.pooling import MEAN_SCALED
 from harness.reduce import SCALE_INVARIANT_REDUCERS, SEEDED_REDUCERS
 from harness.sweep import ModelSettings, Sweep
-from harness.transforms import SCALE_REMOVING
+from harness.transforms import NORMALIZATIONS, SCALE_REMOVING, chain_label
 
 STAGE_KINDS = ("encode", "pool", "transform", "reduce", "cluster")
 
@@ -68,6 +68,7 @@ class Trial:
     layers: LayerChoice
     pooling: str
     normalize: str
+    transform: tuple  # the grid's transform chain (steps); the normalisation is appended after it
     reducer: Settings
     clusterer: Settings
     seed: int
@@ -87,11 +88,17 @@ class Trial:
             "layers": self.layers,
             "pooling": self.pooling,
             "normalize": self.normalize,
+            "transform": chain_label(list(self.transform)),
             "seed": self.seed,
         }
         flat.update({f"reduce.{k}": v for k, v in self.reducer.as_params().items()})
         flat.update({f"cluster.{k}": v for k, v in self.clusterer.as_params().items()})
         return flat
+
+    @property
+    def steps(self) -> list[Settings]:
+        """The whole post-processing chain: the grid's transform, then the normalisation."""
+        return effective_chain(self.transform, self.normalize)
 
     @property
     def config_params(self) -> dict[str, Any]:
@@ -100,8 +107,8 @@ class Trial:
     @property
     def config_name(self) -> str:
         return (
-            f"{self.dataset}/{self.model.name.rsplit('/', 1)[-1]}/{self.layers}/{self.pooling}/{self.normalize}/"
-            f"{_short(self.reducer)}/{_short(self.clusterer)}"
+            f"{self.dataset}/{self.model.name.rsplit('/', 1)[-1]}/{self.layers}/{self.pooling}/"
+            f"{chain_label(self.steps)}/{_short(self.reducer)}/{_short(self.clusterer)}"
         )
 
     @property
@@ -150,35 +157,39 @@ def pool_stage(encode_key: str, layers: LayerChoice, pooling: str, dtype: str) -
     return make_stage("pool", encode_key, {"layers": layers, "pooling": pooling, "dtype": dtype})
 
 
-def scale_invariant_path(normalize: str, reducer: Settings) -> bool:
+def effective_chain(transform, normalize: str) -> list[Settings]:
+    return list(transform) + NORMALIZATIONS[normalize]
+
+
+def scale_invariant_path(chain: list[Settings], reducer: Settings) -> bool:
     """Whether multiplying each pooled row by a positive factor leaves the clustering unchanged."""
-    if normalize in SCALE_REMOVING:
-        return True
+    if chain:
+        return chain[0].method in SCALE_REMOVING
     invariant = SCALE_INVARIANT_REDUCERS.get(reducer.method)
-    return normalize == "none" and invariant is not None and invariant(reducer)
+    return invariant is not None and invariant(reducer)
 
 
-def computed_pooling(pooling: str, normalize: str, reducer: Settings) -> str:
+def computed_pooling(pooling: str, chain: list[Settings], reducer: Settings) -> str:
     """The pooling whose output a trial's downstream stages are computed from.
 
     mean and mean_sqrt_len differ by a positive factor per row; on a scale-invariant
     path they give the same clusters, so both are computed from mean.
     """
-    if pooling in MEAN_SCALED and scale_invariant_path(normalize, reducer):
+    if pooling in MEAN_SCALED and scale_invariant_path(chain, reducer):
         return "mean"
     return pooling
 
 
 def trial_stages(
     dataset_key_: str, model: ModelSettings, resolved: ResolvedModel, layers: LayerChoice, pooling: str,
-    normalize: str, reducer: Settings, clusterer: Settings, seed: int, dtype: str = "float32",
+    chain: list[Settings], reducer: Settings, clusterer: Settings, seed: int, dtype: str = "float32",
 ) -> dict[str, Stage]:
     encode = make_stage("encode", dataset_key_, {
         "model": resolved.name, "weights": resolved.weights_digest, "max_length": model.max_length,
         "long_texts": model.long_texts,
     })
-    pool = pool_stage(encode.key, layers, computed_pooling(pooling, normalize, reducer), dtype)
-    transform = make_stage("transform", pool.key, {"normalize": normalize})
+    pool = pool_stage(encode.key, layers, computed_pooling(pooling, chain, reducer), dtype)
+    transform = make_stage("transform", pool.key, {"chain": [step.as_params() for step in chain]})
     reduce_settings = reducer.as_params()
     if reduce_settings["method"] in SEEDED_REDUCERS:
         reduce_settings["seed"] = seed
@@ -197,14 +208,16 @@ def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str,
     for spec, model in itertools.product(sweep.datasets, sweep.models):
         name = dataset_name(spec)
         resolved = models[model.name]
-        for layers, pooling, normalize, reducer, clusterer, seed in itertools.product(
-            grid.layers, grid.pooling, grid.normalize, grid.reduce, grid.cluster, grid.seeds
+        for layers, pooling, transform, normalize, reducer, clusterer, seed in itertools.product(
+            grid.layers, grid.pooling, grid.transform, grid.normalize, grid.reduce, grid.cluster, grid.seeds
         ):
-            stages = trial_stages(dataset_keys[name], model, resolved, layers, pooling, normalize, reducer, clusterer,
+            chain = effective_chain(transform, normalize)
+            stages = trial_stages(dataset_keys[name], model, resolved, layers, pooling, chain, reducer, clusterer,
                                   seed, sweep.storage_dtype)
             trial = Trial(
                 dataset=name, model=model, resolved_model=resolved, layers=layers, pooling=pooling,
-                normalize=normalize, reducer=reducer, clusterer=clusterer, seed=seed, stages=stages,
+                normalize=normalize, transform=tuple(transform), reducer=reducer, clusterer=clusterer, seed=seed,
+                stages=stages,
             )
             identity = {"dataset": dataset_keys[name], "weights": resolved.weights_digest}
             trials.append(replace(trial, key=settings_key({**identity, **trial.params}),

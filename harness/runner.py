@@ -25,6 +25,7 @@ from harness.layers import layer_choice_fits, output_width
 from harness.models import ResolvedModel, resolve_model
 from harness.plan import Trial, aligned_params, dataset_key, planned_trials
 from harness.reduce import reduction_limits
+from harness.transforms import chain_width, transform_limits
 from harness.sweep import LABEL_FREE_METRICS, LABELLED_METRICS, EvidenceSettings, Sweep, load_sweep, sweep_error_at
 
 ProgressFactory = Callable[..., Any]
@@ -138,6 +139,13 @@ def check_against_data(prepared: PreparedSweep, corpora: dict[str, Corpus]) -> N
                         f"{layers!r} does not fit '{spec.name}', which has {model.n_hidden_states} hidden states "
                         f"(embeddings + {model.n_hidden_states - 1} layers)")
             widths = {output_width(layers, model.width) for layers in grid.layers}
+            for index, chain in enumerate(grid.transform):
+                for width in sorted(widths):
+                    problem = transform_limits(chain, corpus.n_texts, width)
+                    if problem:
+                        raise sweep_error_at(prepared.path, ["grid", "transform", index],
+                            f"{problem} (dataset '{corpus.name}', model '{spec.name}')")
+            widths |= {chain_width(chain, w) for chain in grid.transform for w in widths}
             for index, reducer in enumerate(grid.reduce):
                 for width in sorted(widths):
                     problem = reduction_limits(reducer, corpus.n_texts, width)

@@ -23,7 +23,7 @@ from harness.encode import pooled_variants, token_counts, truncated_fraction
 from harness.models import LoadedEncoder, loaded_encoder
 from harness.plan import Trial, pool_stage
 from harness.reduce import reduced
-from harness.transforms import NORMALIZATIONS
+from harness.transforms import transformed
 
 BatchCallback = Callable[[int], None]
 
@@ -142,7 +142,8 @@ class StageExecutor:
         return self._outputs[stage.key]
 
     def transformed(self, trial: Trial) -> np.ndarray:
-        return self._computed(trial, "transform", "transforms", lambda: NORMALIZATIONS[trial.normalize](self.pooled(trial)))
+        return self._computed(trial, "transform", "transforms",
+                              lambda: transformed(self.pooled(trial), self.token_counts(trial), trial.steps))
 
     def reduced(self, trial: Trial) -> np.ndarray:
         return self._computed(trial, "reduce", f"{trial.reducer.method}_fits",

@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import Annotated, Any, Literal, Optional, Union
 
 import yaml
-from pydantic import AfterValidator, Field, PositiveInt, ValidationError, ValidationInfo, field_validator
+from pydantic import AfterValidator, BeforeValidator, Field, PositiveInt, ValidationError, ValidationInfo, field_validator
 
 from harness import _yaml_lines
 from harness._settings import Settings
@@ -20,7 +20,7 @@ from harness.errors import SweepError
 from harness.layers import LAYER_SELECTIONS
 from harness.pooling import POOLINGS
 from harness.reduce import ReducerSettings, UmapSettings
-from harness.transforms import NORMALIZATIONS
+from harness.transforms import NORMALIZATIONS, TransformStep
 
 LABELLED_METRICS = ("ari", "ami", "nmi", "v_measure", "ari_clustered", "ami_clustered", "nmi_clustered", "v_measure_clustered")
 LABEL_FREE_METRICS = ("silhouette", "dbcv", "stability_ari", "npmi_mean", "cluster_size_entropy", "coverage")
@@ -71,15 +71,28 @@ LayerName = Annotated[Union[int, str], _registered(LAYER_SELECTIONS, "a layer se
 NormalizationName = Annotated[str, _registered(NORMALIZATIONS, "a normalisation")]
 
 
+def _chain_shorthand(value: Any) -> Any:
+    """'none' -> [], a single step (name or mapping) -> [step], a list stays a list."""
+    if value == "none" or value is None:
+        return []
+    if isinstance(value, (str, dict)):
+        return [value]
+    return value
+
+
+TransformChain = Annotated[list[TransformStep], BeforeValidator(_chain_shorthand)]
+
+
 class GridSettings(Settings):
     pooling: list[PoolingName] = Field(min_length=1)
     layers: list[LayerName] = Field(default_factory=lambda: ["last"], min_length=1)
     normalize: list[NormalizationName] = Field(default_factory=lambda: ["none"], min_length=1)
+    transform: list[TransformChain] = Field(default_factory=lambda: [[]], min_length=1)
     reduce: list[ReducerSettings] = Field(default_factory=lambda: [UmapSettings(method="umap")], min_length=1)
     cluster: list[ClustererSettings] = Field(min_length=1)
     seeds: list[int] = Field(default_factory=lambda: [0], min_length=1)
 
-    @field_validator("pooling", "layers", "normalize", "seeds", "reduce", "cluster")
+    @field_validator("pooling", "layers", "normalize", "transform", "seeds", "reduce", "cluster")
     @classmethod
     def _no_repeats(cls, values: list, info: ValidationInfo) -> list:
         return _unique(values, info.field_name)

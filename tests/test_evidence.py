@@ -31,7 +31,7 @@ from harness.metrics import (
     silhouette_cosine,
 )
 
-from conftest import finished_runs, write_sweep
+from conftest import configuration_runs, finished_runs, write_sweep
 
 RNG = np.random.default_rng(11)
 
@@ -190,9 +190,8 @@ grid:
     assert main(["run", str(sweep), "--results-dir", str(results), "--no-progress"]) == 0
     out = capsys.readouterr().out
     assert "requests: ranked by silhouette (mean over seeds)" in out
-    _, parents, children = finished_runs(f"sqlite:///{results / 'mlflow.db'}", "unlabelled")
-    seeds = [c for c in children if c.data.tags["harness.kind"] == "trial"]
-    configs = [c for c in children if c.data.tags["harness.kind"] == "configuration"]
+    _, parents, seeds = finished_runs(f"sqlite:///{results / 'mlflow.db'}", "unlabelled")
+    configs = configuration_runs(f"sqlite:///{results / 'mlflow.db'}", "unlabelled")
     assert len(seeds) == 4 and len(configs) == 2
     assert {s.data.tags["mlflow.parentRunId"] for s in seeds} == {c.info.run_id for c in configs}
     assert {c.data.tags["mlflow.parentRunId"] for c in configs} == {parents[0].info.run_id}
