@@ -18,6 +18,9 @@ $(VENV)/.installed: pyproject.toml
 
 $(VENV)/.dev-installed: $(VENV)/.installed
 	$(PIP) install -e ".[dev]"
+	# Debian's headless Chromium for the report and MLflow UI tests (they are skipped, with the reason, without it).
+	command -v chromium >/dev/null || { apt-get update -qq && apt-get install -y -qq chromium; } \
+		|| echo "chromium could not be installed: browser tests will be skipped"
 	touch $@
 
 demo: $(VENV)/.installed

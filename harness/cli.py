@@ -21,6 +21,7 @@ def _quiet_libraries() -> None:
     os.environ.setdefault("HF_HUB_DISABLE_PROGRESS_BARS", "1")
     os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
     os.environ.setdefault("MLFLOW_LOGGING_LEVEL", "WARNING")
+    os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
     import logging
     import warnings
 
@@ -164,6 +165,52 @@ def command_datasets(args: argparse.Namespace) -> int:
     return 0
 
 
+def _tracking_uri(args: argparse.Namespace) -> str:
+    from harness.tracking import default_tracking_uri
+
+    return args.tracking_uri or default_tracking_uri(Path(args.results_dir))
+
+
+def command_report(args: argparse.Namespace) -> int:
+    from harness.readback import sweep_record
+    from harness.reporting import write_report
+
+    _quiet_libraries()
+    record = sweep_record(_tracking_uri(args), args.sweep)
+    page, markdown = write_report(record, Path(args.results_dir) / "reports", with_map=not args.no_map)
+    print(f"report: {page}\nmarkdown: {markdown}\nlogged to sweep run {record.run_id}")
+    return 0
+
+
+def command_cite(args: argparse.Namespace) -> int:
+    from harness.cite import write_citation
+    from harness.readback import sweep_record
+
+    _quiet_libraries()
+    record = sweep_record(_tracking_uri(args), args.sweep)
+    card, markdown = write_citation(record, Path(args.results_dir) / "reports", Path(args.results_dir))
+    print(f"citation: {markdown}\nrunnable sweep: {card}\nreproduce: harness run {card.resolve()} --results-dir {Path(args.results_dir).resolve()}")
+    return 0
+
+
+def command_ui(args: argparse.Namespace) -> int:
+    import subprocess
+
+    results = Path(args.results_dir).resolve()
+    store = results / "mlflow.db"
+    if not store.is_file():
+        raise HarnessError(f"{store}: no tracking store yet; run a sweep first (harness run SWEEP)")
+    environment = {**os.environ, "MLFLOW_SERVER_ENABLE_JOB_EXECUTION": "false"}
+    command = [sys.executable, "-m", "mlflow", "server", "--backend-store-uri", f"sqlite:///{store}",
+               "--default-artifact-root", (results / "artifacts").as_uri(), "--host", args.host,
+               "--port", str(args.port), "--workers", "1"]
+    print(f"MLflow UI on http://{args.host}:{args.port}  (Ctrl-C stops it)", flush=True)
+    try:
+        return subprocess.call(command, env=environment)
+    except KeyboardInterrupt:
+        return 0
+
+
 def _add_store_options(command: argparse.ArgumentParser) -> None:
     command.add_argument("--results-dir", default=str(DEFAULT_RESULTS),
                          help="where the MLflow store, artifacts and cache live (default: results)")
@@ -194,6 +241,25 @@ def parser() -> argparse.ArgumentParser:
     datasets.add_argument("--model", default="sentence-transformers/all-MiniLM-L6-v2", help="whose tokenizer measures lengths")
     datasets.add_argument("--json", action="store_true", help="print the cards as JSON")
     datasets.set_defaults(handler=command_datasets)
+
+    report = commands.add_parser("report", help="write the HTML and Markdown report of a finished sweep")
+    report.add_argument("sweep", help="a sweep name (its newest run) or a sweep run id")
+    _add_store_options(report)
+    report.add_argument("--tracking-uri", default=None, help="MLflow tracking URI (default: sqlite:///RESULTS_DIR/mlflow.db)")
+    report.add_argument("--no-map", action="store_true", help="leave out the 2-D map of the winner's clusters")
+    report.set_defaults(handler=command_report)
+
+    cite = commands.add_parser("cite", help="write a citation card for the winner, with the command that reproduces it")
+    cite.add_argument("sweep", help="a sweep name (its newest run) or a sweep run id")
+    _add_store_options(cite)
+    cite.add_argument("--tracking-uri", default=None, help="MLflow tracking URI (default: sqlite:///RESULTS_DIR/mlflow.db)")
+    cite.set_defaults(handler=command_cite)
+
+    ui = commands.add_parser("ui", help="start the MLflow UI on the results store")
+    _add_store_options(ui)
+    ui.add_argument("--host", default="127.0.0.1", help="address to bind (default: 127.0.0.1, this machine only)")
+    ui.add_argument("--port", type=int, default=5000)
+    ui.set_defaults(handler=command_ui)
 
     cache = commands.add_parser("cache", help="inspect or prune the stage cache")
     cache_commands = cache.add_subparsers(dest="cache_command", required=True)

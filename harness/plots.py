@@ -5,17 +5,29 @@ from __future__ import annotations
 import numpy as np
 
 
-def token_counts_by_cluster_figure(token_counts: np.ndarray, clusters: np.ndarray, title: str = ""):
-    """Box plot of token counts per cluster, clusters ordered by median length, noise in grey."""
+def pyplot():
+    """matplotlib's pyplot on the headless Agg backend."""
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
+    return plt
+
+
+def token_counts_by_cluster_figure(token_counts: np.ndarray, clusters: np.ndarray, title: str = ""):
+    """Box plot of token counts per cluster, clusters ordered by median length, noise in grey."""
+    plt = pyplot()
+    figure, axes = plt.subplots(figsize=(max(6, 0.35 * np.unique(clusters).size + 2), 4), dpi=100)
+    draw_token_counts_by_cluster(axes, token_counts, clusters, title)
+    figure.tight_layout()
+    return figure
+
+
+def draw_token_counts_by_cluster(axes, token_counts: np.ndarray, clusters: np.ndarray, title: str = "") -> None:
     ids = np.unique(clusters)
     medians = {c: np.median(token_counts[clusters == c]) for c in ids}
     ordered = sorted(ids, key=lambda c: (c == -1, medians[c]))
-    figure, axes = plt.subplots(figsize=(max(6, 0.35 * len(ordered) + 2), 4), dpi=100)
     boxes = axes.boxplot([token_counts[clusters == c] for c in ordered], patch_artist=True, showfliers=False)
     for patch, cluster in zip(boxes["boxes"], ordered):
         patch.set_facecolor("#bbbbbb" if cluster == -1 else "#6a9fd4")
@@ -24,5 +36,3 @@ def token_counts_by_cluster_figure(token_counts: np.ndarray, clusters: np.ndarra
     axes.set_xlabel("cluster (ordered by median length)")
     axes.set_ylabel("tokens per text (log scale)")
     axes.set_title(title, fontsize=9)
-    figure.tight_layout()
-    return figure

@@ -230,6 +230,7 @@ def _trial_tags(trial: Trial, corpus: Corpus) -> dict[str, str]:
         "harness.dataset_fingerprint": corpus.fingerprint,
         "harness.model_source": trial.resolved_model.source,
         "harness.model_weights_sha256": trial.resolved_model.weights_digest,
+        "harness.config_key": trial.config_key,
     }
     if trial.equivalent_to:
         tags["harness.equivalent_to"] = trial.equivalent_to
@@ -243,8 +244,7 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
 
     first = configuration[0]
     config_params = {k: v for k, v in params[first.key].items() if k != "seed"}
-    config_run = tracker.start_run(first.config_name, parent, "configuration", config_params,
-                                   {**_trial_tags(first, corpus), "harness.config_key": first.config_key})
+    config_run = tracker.start_run(first.config_name, parent, "configuration", config_params, _trial_tags(first, corpus))
     result = ConfigurationResult(trials=configuration, seeds=[], run_id=config_run)
     current: Optional[str] = None
     try:
@@ -319,6 +319,8 @@ def execute_sweep(
         {"n_trials": len(prepared.trials), "rank_by": sweep.rank_by or "default", **{f"grid.{k}": v for k, v in grid.items()},
          **{f"evidence.{k}": v for k, v in sweep.evidence.as_params().items()}},
         {"harness.version": __version__, "harness.sweep_sha256": _file_sha256(prepared.path),
+         "harness.sweep_path": str(prepared.path.resolve()), "harness.results_dir": str(results_dir.resolve()),
+         "harness.cache_dir": str(cache_dir.resolve()) if cache_dir else "",
          "harness.question": sweep.question, "harness.reused_trials": str(len(prepared.trials) - len(pending)),
          "harness.orphans_marked_killed": str(killed)})
     executor = StageExecutor(corpora, prepared.trials, StageCache(cache_dir) if cache_dir else None, encode_progress)

@@ -130,11 +130,14 @@ class StageExecutor:
         return np.asarray(self._outputs[key], dtype=np.float32)
 
     # -- downstream stages -------------------------------------------------------------------------------
-    def _computed(self, trial: Trial, kind: str, counter: str, compute: Callable[[], np.ndarray]) -> np.ndarray:
+    def _computed(self, trial: Trial, kind: str, counter: str, inputs: Callable[[], tuple],
+                  compute: Callable[..., np.ndarray]) -> np.ndarray:
+        """The stage's output; when computed, its inputs are fetched first so that only its own work is timed."""
         stage = trial.stages[kind]
         if not self._held(kind, stage.key):
+            arguments = inputs()
             started = time.perf_counter()
-            array = compute()
+            array = compute(*arguments)
             seconds = time.perf_counter() - started
             self.work[counter] += 1
             self._logged(kind, seconds)
@@ -142,17 +145,17 @@ class StageExecutor:
         return self._outputs[stage.key]
 
     def transformed(self, trial: Trial) -> np.ndarray:
-        return self._computed(trial, "transform", "transforms",
-                              lambda: transformed(self.pooled(trial), self.token_counts(trial), trial.steps))
+        return self._computed(trial, "transform", "transforms", lambda: (self.pooled(trial), self.token_counts(trial)),
+                              lambda pooled, counts: transformed(pooled, counts, trial.steps))
 
     def reduced(self, trial: Trial) -> np.ndarray:
-        return self._computed(trial, "reduce", f"{trial.reducer.method}_fits",
-                              lambda: reduced(self.transformed(trial), trial.reducer, trial.seed))
+        return self._computed(trial, "reduce", f"{trial.reducer.method}_fits", lambda: (self.transformed(trial),),
+                              lambda vectors: reduced(vectors, trial.reducer, trial.seed))
 
     def clustered(self, trial: Trial) -> np.ndarray:
         n_classes = self.corpora[trial.dataset].n_classes
-        return self._computed(trial, "cluster", "clusterings",
-                              lambda: cluster_labels(self.reduced(trial), trial.clusterer, trial.seed, n_classes))
+        return self._computed(trial, "cluster", "clusterings", lambda: (self.reduced(trial),),
+                              lambda vectors: cluster_labels(vectors, trial.clusterer, trial.seed, n_classes))
 
     def _memo(self, key: tuple, compute: Callable[[], Any]) -> Any:
         if key not in self._derived:
