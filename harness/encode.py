@@ -6,6 +6,7 @@ from typing import Callable, Iterable, Optional
 
 import numpy as np
 
+from harness._crashpoints import crash_point
 from harness.layers import LayerChoice, selected_hidden
 from harness.models import LoadedEncoder
 from harness.pooling import POOLINGS
@@ -98,6 +99,7 @@ def pooled_variants(
                 outputs[(layer_choice, pooling)][batch] = pooled
             if on_batch is not None:
                 on_batch(int(np.unique(owners[batch]).size) if pieces is not None else len(batch))
+            crash_point("encode_batch")
     if pieces is None:
         return outputs
     windows_per_text = np.bincount(owners, minlength=len(texts)).astype(np.float32)[:, None]

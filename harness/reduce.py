@@ -12,6 +12,7 @@ from typing import Annotated, Callable, Literal, Union
 import numpy as np
 from pydantic import Field, PositiveInt
 
+from harness._crashpoints import crash_point
 from harness._settings import Settings
 
 
@@ -56,6 +57,7 @@ def umap_reduced(vectors: np.ndarray, settings: UmapSettings, seed: int) -> np.n
         metric=settings.metric,
         random_state=seed,
     )
+    crash_point("umap_fit")
     with warnings.catch_warnings():
         # A fixed seed makes UMAP single-threaded; reproducibility is the point here.
         warnings.filterwarnings("ignore", message=".*n_jobs value.*overridden.*")

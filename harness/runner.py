@@ -18,6 +18,7 @@ from typing import Any, Callable, Optional
 import numpy as np
 
 from harness import __version__
+from harness._crashpoints import crash_point
 from harness.cluster import clustering_limits
 from harness.datasets import Corpus, dataset_name, loaded_corpus, needs_tokenizer
 from harness.errors import HarnessError
@@ -222,6 +223,7 @@ def _log_trial(tracker, run_id: str, trial: Trial, corpus: Corpus, scores: dict[
         figure.savefig(plot)
         plt.close(figure)
         tracker.log_files(run_id, [assignments, descriptions, plot])
+    crash_point("mlflow_write")
     tracker.log_results(run_id, scores)
 
 
@@ -262,13 +264,16 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
                 _log_trial(tracker, current, trial, corpus, scores, table, clusters, counts)
                 tracker.end(current, "FINISHED")
                 result.seeds.append(TrialResult(trial, "FINISHED", scores, run_id=current))
+                crash_point("between_trials")
                 if not result.descriptions:
                     result.descriptions = table
             except (KeyboardInterrupt, SystemExit):
                 raise
             except Exception as err:
                 message = f"{type(err).__name__}: {err}".splitlines()[0]
-                tracker.log_results(current, {}, tags={"harness.traceback": traceback.format_exc()[-4000:]})
+                tracker.log_results(current, {}, tags={"harness.traceback": traceback.format_exc()[-4000:],
+                                                       "harness.error_type": type(err).__name__,
+                                                       "harness.error_message": str(err).splitlines()[0] if str(err) else ""})
                 tracker.end(current, "FAILED", error=message)
                 result.seeds.append(TrialResult(trial, "FAILED", error=message, run_id=current))
             current = None
@@ -362,9 +367,13 @@ def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None
     """Everything ``harness run`` does, minus printing. The cache defaults to RESULTS_DIR/cache."""
     from harness.tracking import default_tracking_uri
 
+    from harness.tracking import check_reachable
+
     prepared = prepared_sweep(path)
     corpora = loaded_corpora(prepared)
     check_against_data(prepared, corpora)
+    if tracking_uri:
+        check_reachable(tracking_uri)  # before anything is written
     results_dir.mkdir(parents=True, exist_ok=True)
     return execute_sweep(
         prepared, corpora, results_dir=results_dir, tracking_uri=tracking_uri or default_tracking_uri(results_dir),

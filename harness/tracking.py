@@ -41,6 +41,26 @@ def _owner_gone(tags: dict[str, str]) -> bool:
     return False
 
 
+def check_reachable(tracking_uri: str, timeout: float = 5.0) -> None:
+    """Fail at once, with one line, when a tracking server does not answer its health check."""
+    if not tracking_uri.startswith(("http://", "https://")):
+        return
+    import urllib.error
+    import urllib.request
+
+    try:
+        with urllib.request.urlopen(tracking_uri.rstrip("/") + "/health", timeout=timeout) as answer:
+            if answer.status == 200:
+                return
+            reason = f"HTTP {answer.status}"
+    except urllib.error.URLError as err:
+        reason = str(err.reason)
+    except OSError as err:
+        reason = str(err)
+    raise HarnessError(f"tracking server {tracking_uri}: unreachable ({reason}); start it, or drop --tracking-uri "
+                       "to use the local SQLite store")
+
+
 def default_tracking_uri(results_dir: Path) -> str:
     return f"sqlite:///{(results_dir / 'mlflow.db').resolve()}"
 
@@ -52,14 +72,16 @@ class SweepTracker:
         from mlflow.tracking import MlflowClient
 
         self.tracking_uri = tracking_uri
+        check_reachable(tracking_uri)
         self.client = MlflowClient(tracking_uri=tracking_uri)
         try:
             experiment = self.client.get_experiment_by_name(experiment_name)
             if experiment is None:
-                artifact_root.mkdir(parents=True, exist_ok=True)
-                self.experiment_id = self.client.create_experiment(
-                    experiment_name, artifact_location=(artifact_root / experiment_name).resolve().as_uri()
-                )
+                location = None  # a tracking server decides where artifacts go
+                if not tracking_uri.startswith(("http://", "https://")):
+                    artifact_root.mkdir(parents=True, exist_ok=True)
+                    location = (artifact_root / experiment_name).resolve().as_uri()
+                self.experiment_id = self.client.create_experiment(experiment_name, artifact_location=location)
             else:
                 self.experiment_id = experiment.experiment_id
         except Exception as err:

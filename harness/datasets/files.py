@@ -26,6 +26,7 @@ class FileSource(Settings):
     id_column: Optional[str] = None
     sample: Optional[PositiveInt] = None
     sample_seed: int = 0
+    max_chars: PositiveInt = 1_000_000  # longer texts are refused: almost surely a broken file or column
 
     @field_validator("path")
     @classmethod
@@ -79,6 +80,11 @@ def file_corpus(spec: FileSource) -> Corpus:
             f"(first at row {first}); remove or fill them"
         )
     texts = raw_texts.astype(str).tolist()
+    lengths = np.fromiter((len(t) for t in texts), dtype=np.int64, count=len(texts))
+    if lengths.max() > spec.max_chars:
+        row = int(lengths.argmax())
+        raise DataError(f"{path}: text_column '{spec.text_column}': row {row} has {lengths[row]:,} characters, over "
+                        f"max_chars={spec.max_chars:,}; check the file, or raise max_chars")
 
     labels = label_names = None
     if spec.label_column is not None:
