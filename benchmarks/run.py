@@ -168,7 +168,27 @@ def rerun_figures(n_texts: int, repeats: int) -> dict:
     }}
 
 
-GROUPS = {"encode": encode_figures, "rerun_fraction": rerun_figures}
+def dask_figures(n_texts: int, repeats: int) -> dict:
+    """dask_over_local: wall time of the demo sweep on a 2-worker LocalCluster over the local executor (cold caches).
+
+    One run each (a demo run takes minutes); each starts from an empty cache and store.
+    """
+    from harness.runner import run_sweep_file
+
+    seconds = {}
+    work = {}
+    for executor in ("local", "dask"):
+        with tempfile.TemporaryDirectory(dir=REPO / "results") as folder:
+            started = time.perf_counter()
+            result = run_sweep_file(REPO / "experiments" / "demo.yaml", Path(folder), executor=executor)
+            seconds[executor] = time.perf_counter() - started
+            work[executor] = result.work
+    value = seconds["dask"] / seconds["local"]
+    return {"dask_over_local": {"value": value, "target": "reported (< 1 means the cluster is faster)",
+                                "met": True, "seconds": seconds, "work": work, "workers": 2}}
+
+
+GROUPS = {"encode": encode_figures, "rerun_fraction": rerun_figures, "dask": dask_figures}
 
 
 def environment() -> dict:

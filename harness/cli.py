@@ -85,6 +85,7 @@ def command_run(args: argparse.Namespace) -> int:
         args.sweep, Path(args.results_dir), args.tracking_uri,
         cache_dir=Path(args.cache_dir) if args.cache_dir else None, use_cache=not args.no_cache,
         resume=not args.rerun_finished, progress=progress, encode_progress=encode_progress,
+        executor=args.executor, scheduler=args.scheduler,
     )
     for ranking in result.rankings.values():
         print(table(ranking))
@@ -229,6 +230,10 @@ def parser() -> argparse.ArgumentParser:
     run.add_argument("--rerun-finished", action="store_true",
                      help="run trials again even where the experiment has a FINISHED run with the same key")
     run.add_argument("--no-progress", action="store_true", help="no progress bars")
+    run.add_argument("--executor", choices=("local", "dask"), default="local",
+                     help="where reductions and clusterings run: this process, or a Dask cluster")
+    run.add_argument("--scheduler", default=None, metavar="tcp://HOST:PORT",
+                     help="an existing Dask scheduler (default with --executor dask: a 2-worker LocalCluster on 127.0.0.1)")
     run.set_defaults(handler=command_run)
 
     plan = commands.add_parser("plan", help="list a sweep's trials and the work they need, without running anything")

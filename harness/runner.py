@@ -306,8 +306,12 @@ def execute_sweep(
     resume: bool = True,
     progress: Optional[ProgressFactory] = None,
     encode_progress=None,
+    dask_client=None,
 ) -> SweepResult:
-    """Run every trial not already FINISHED in the experiment: sweep run -> configuration runs -> seed runs."""
+    """Run every trial not already FINISHED in the experiment: sweep run -> configuration runs -> seed runs.
+
+    With a Dask client, the reductions and clusterings are computed on its cluster first.
+    """
     from harness.cache import StageCache
     from harness.leaderboard import rank_configurations, table as leaderboard_table
     from harness.plan import configurations
@@ -330,6 +334,10 @@ def execute_sweep(
          "harness.orphans_marked_killed": str(killed)})
     executor = StageExecutor(corpora, prepared.trials, StageCache(cache_dir) if cache_dir else None, encode_progress)
     params = aligned_params(prepared.trials)
+    if dask_client is not None:
+        from harness.distributed import precompute_on_cluster
+
+        precompute_on_cluster(executor, prepared.trials, dask_client)
     bar = progress(total=len(pending), desc="trials", unit="trial") if progress else None
     results: list[ConfigurationResult] = []
     try:
@@ -363,7 +371,8 @@ def execute_sweep(
 
 def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None = None, *,
                    cache_dir: Optional[Path] = None, use_cache: bool = True, resume: bool = True,
-                   progress: Optional[ProgressFactory] = None, encode_progress=None) -> SweepResult:
+                   progress: Optional[ProgressFactory] = None, encode_progress=None,
+                   executor: str = "local", scheduler: Optional[str] = None) -> SweepResult:
     """Everything ``harness run`` does, minus printing. The cache defaults to RESULTS_DIR/cache."""
     from harness.tracking import default_tracking_uri
 
@@ -375,8 +384,20 @@ def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None
     if tracking_uri:
         check_reachable(tracking_uri)  # before anything is written
     results_dir.mkdir(parents=True, exist_ok=True)
-    return execute_sweep(
-        prepared, corpora, results_dir=results_dir, tracking_uri=tracking_uri or default_tracking_uri(results_dir),
-        cache_dir=(cache_dir or results_dir / "cache") if use_cache else None, resume=resume,
-        progress=progress, encode_progress=encode_progress,
-    )
+    client = None
+    if executor == "dask":
+        from harness.distributed import dask_client
+
+        client = dask_client(scheduler)
+    try:
+        return execute_sweep(
+            prepared, corpora, results_dir=results_dir, tracking_uri=tracking_uri or default_tracking_uri(results_dir),
+            cache_dir=(cache_dir or results_dir / "cache") if use_cache else None, resume=resume,
+            progress=progress, encode_progress=encode_progress, dask_client=client,
+        )
+    finally:
+        if client is not None:
+            cluster = getattr(client, "cluster_to_close", None)
+            client.close()
+            if cluster is not None:
+                cluster.close()

@@ -130,6 +130,20 @@ class StageExecutor:
         return np.asarray(self._outputs[key], dtype=np.float32)
 
     # -- downstream stages -------------------------------------------------------------------------------
+    def holds(self, kind: str, key: str) -> bool:
+        """Whether the output of this stage is in memory or in the cache."""
+        return self._held(kind, key)
+
+    def adopt(self, trial: Trial, kind: str, array: np.ndarray, seconds: float, counter: str) -> None:
+        """Take a stage output computed elsewhere (a cluster worker) as if computed here."""
+        stage = trial.stages[kind]
+        if self._held(kind, stage.key):
+            return
+        self.work[counter] += 1
+        self.work[f"{kind}_from_cluster"] += 1
+        self._logged(kind, seconds)
+        self._keep(kind, stage.key, array, {"settings": stage.settings, "seconds": seconds, "computed_on": "dask"})
+
     def _computed(self, trial: Trial, kind: str, counter: str, inputs: Callable[[], tuple],
                   compute: Callable[..., np.ndarray]) -> np.ndarray:
         """The stage's output; when computed, its inputs are fetched first so that only its own work is timed."""

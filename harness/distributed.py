@@ -1,0 +1,86 @@
+"""Running the independent stages of a sweep on a Dask distributed cluster.
+
+Encoding stays in this process (one forward pass per model and dataset, the
+model loaded once). Every reduction, with the clusterings downstream of it, is
+then one task; the results come back into the executor, which stores them in
+the cache as if computed here, so scoring and MLflow logging proceed unchanged.
+A LocalCluster binds to 127.0.0.1; an existing cluster is reached by address.
+"""
+
+from __future__ import annotations
+
+import time
+from typing import Optional
+
+import numpy as np
+
+from harness.plan import Trial
+
+LOCAL_WORKERS = 2
+
+
+def reduce_and_cluster(pooled: np.ndarray, counts: np.ndarray, steps: list, reducer, seed: int,
+                       clusterings: list[tuple[str, object, int]], n_classes: Optional[int]) -> dict:
+    """One task: transform, reduce, then every clustering of that reduction. Pure; runs on a worker."""
+    import joblib
+
+    from harness.cluster import cluster_labels
+    from harness.reduce import reduced
+    from harness.transforms import transformed
+
+    # Nested joblib calls inside a task would otherwise be sent back to the cluster (ENVIRONMENT.md).
+    with joblib.parallel_config(backend="sequential"):
+        started = time.perf_counter()
+        vectors = transformed(pooled, counts, steps)
+        transform_seconds = time.perf_counter() - started
+        started = time.perf_counter()
+        points = reduced(vectors, reducer, seed)
+        reduce_seconds = time.perf_counter() - started
+        labels = {}
+        for key, clusterer, cluster_seed in clusterings:
+            started = time.perf_counter()
+            labels[key] = (cluster_labels(points, clusterer, cluster_seed, n_classes), time.perf_counter() - started)
+    return {"transformed": (vectors, transform_seconds), "reduced": (points, reduce_seconds), "clusters": labels}
+
+
+def dask_client(scheduler: Optional[str], workers: int = LOCAL_WORKERS):
+    """A client of the cluster at ``scheduler``, or of a new LocalCluster on 127.0.0.1 (closed with the client)."""
+    from dask.distributed import Client, LocalCluster
+
+    if scheduler:
+        return Client(scheduler)
+    cluster = LocalCluster(n_workers=workers, threads_per_worker=1, host="127.0.0.1", dashboard_address=None,
+                           env={"NUMBA_NUM_THREADS": "1", "OMP_NUM_THREADS": "1"})
+    client = Client(cluster)
+    client.cluster_to_close = cluster
+    return client
+
+
+def precompute_on_cluster(executor, trials: list[Trial], client) -> int:
+    """Compute, on the cluster, every reduction (and its clusterings) the trials need that is not stored yet.
+
+    Returns the number of tasks sent.
+    """
+    groups: dict[str, list[Trial]] = {}
+    for trial in trials:
+        groups.setdefault(trial.stages["reduce"].key, []).append(trial)
+    futures = {}
+    for key, members in groups.items():
+        first = members[0]
+        if executor.holds("reduce", key) and all(executor.holds("cluster", t.stages["cluster"].key) for t in members):
+            continue
+        pooled, counts = executor.pooled(first), executor.token_counts(first)  # encoded here, once per encode key
+        clusterings = list({t.stages["cluster"].key: (t.stages["cluster"].key, t.clusterer, t.seed) for t in members}.values())
+        n_classes = executor.corpora[first.dataset].n_classes
+        futures[key] = (members, client.submit(reduce_and_cluster, pooled, counts, first.steps, first.reducer, first.seed,
+                                               clusterings, n_classes, pure=False))
+    for key, (members, future) in futures.items():
+        first = members[0]
+        result = future.result()
+        executor.adopt(first, "transform", *result["transformed"], counter="transforms")
+        executor.adopt(first, "reduce", *result["reduced"], counter=f"{first.reducer.method}_fits")
+        for trial in members:
+            cluster_key = trial.stages["cluster"].key
+            if cluster_key in result["clusters"] and not executor.holds("cluster", cluster_key):
+                executor.adopt(trial, "cluster", *result["clusters"].pop(cluster_key), counter="clusterings")
+    return len(futures)
