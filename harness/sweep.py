@@ -10,7 +10,7 @@ from pathlib import Path
 from typing import Annotated, Any, Literal, Optional, Union
 
 import yaml
-from pydantic import AfterValidator, BeforeValidator, Field, PositiveInt, ValidationError, ValidationInfo, field_validator
+from pydantic import AfterValidator, BeforeValidator, Field, PositiveInt, ValidationError, ValidationInfo, field_validator, model_validator
 
 from harness import _yaml_lines
 from harness._settings import Settings
@@ -48,13 +48,66 @@ def _unique(values: list, what: str) -> list:
     return values
 
 
+MODEL_FAMILIES = ("sentence_transformer", "transformer", "static", "lexical")
+FAMILY_KEYS = {
+    "static": {"vectors", "vocabulary", "sif_a", "remove_first_component"},
+    "lexical": {"dimensions"},
+}
+
+
 class ModelSettings(Settings):
+    """A model of the grid. ``family`` says how it turns texts into vectors:
+    sentence_transformer (a sentence-transformers model), transformer (any Hugging Face encoder, loaded raw),
+    static (averaged word vectors), lexical (TF-IDF + truncated SVD)."""
+
     name: str = Field(min_length=1)
+    family: Literal["sentence_transformer", "transformer", "static", "lexical"] = "sentence_transformer"
     max_length: Optional[PositiveInt] = None
     batch_size: PositiveInt = 64
     revision: Optional[str] = None
     trust_remote_code: bool = False
     long_texts: Literal["truncate", "chunk_mean"] = "truncate"
+    vectors: Optional[str] = None  # static: a packaged name (glove-6b-50d) or a .npy file; default: the model's name
+    vocabulary: Optional[Path] = None  # static: one word per line (.txt) or a one-column Parquet, in the .npy's row order
+    sif_a: Optional[float] = Field(None, gt=0.0)  # static: smooth inverse frequency weighting a / (a + p(w))
+    remove_first_component: bool = False  # static: Arora et al.'s common-component removal
+    dimensions: PositiveInt = 100  # lexical: SVD dimensions
+
+    @model_validator(mode="before")
+    @classmethod
+    def _keys_of_other_families(cls, data: Any) -> Any:
+        if isinstance(data, dict):
+            family = data.get("family", "sentence_transformer")
+            for other, keys in FAMILY_KEYS.items():
+                for key in sorted(keys & set(data)):
+                    if other != family:
+                        raise ValueError(f"'{key}' applies to family {other}, not {family}")
+        return data
+
+    @property
+    def label(self) -> str:
+        """The model's identity in a sweep: its name, with the family unless it is a sentence-transformers model."""
+        return self.name if self.family == "sentence_transformer" else f"{self.name}[{self.family}]"
+
+    @field_validator("vectors")
+    @classmethod
+    def _vectors(cls, value: Optional[str], info: ValidationInfo) -> Optional[str]:
+        from harness.models import PACKAGED_VECTORS
+
+        if value is None or value.lower() in PACKAGED_VECTORS:
+            return value
+        return str(cls._existing_file(Path(value), info))
+
+    @field_validator("vocabulary")
+    @classmethod
+    def _existing_file(cls, path: Optional[Path], info: ValidationInfo) -> Optional[Path]:
+        if path is None:
+            return None
+        base = Path((info.context or {}).get("base_dir", "."))
+        resolved = (path if path.is_absolute() else base / path).resolve()
+        if not resolved.is_file():
+            raise ValueError(f"no such file: {resolved}")
+        return resolved
 
 
 def _registered(registry: dict, what: str) -> AfterValidator:
@@ -142,7 +195,7 @@ class Sweep(Settings):
     @field_validator("models")
     @classmethod
     def _distinct_models(cls, values: list[ModelSettings]) -> list[ModelSettings]:
-        _unique([m.name for m in values], "model")
+        _unique([m.label for m in values], "model")
         return values
 
 
