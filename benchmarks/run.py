@@ -188,7 +188,46 @@ def dask_figures(n_texts: int, repeats: int) -> dict:
                                 "met": True, "seconds": seconds, "work": work, "workers": 2}}
 
 
-GROUPS = {"encode": encode_figures, "rerun_fraction": rerun_figures, "dask": dask_figures}
+def onnx_figures(n_texts: int, repeats: int) -> dict:
+    """onnx_int8_speedup (encode throughput, int8 ONNX over fp32 PyTorch, same texts and batches) and
+    onnx_int8_ari_delta (|ARI difference| of mean pooling + cosine UMAP + k-means on the demo corpus)."""
+    import numpy as np
+    import torch
+
+    from harness.cluster import KmeansSettings, kmeans_labels
+    from harness.datasets import SyntheticSource, loaded_corpus
+    from harness.encode import pooled_variants
+    from harness.metrics import adjusted_rand
+    from harness.models import loaded_encoder, resolve_model
+    from harness.onnx_backend import onnx_encoder
+    from harness.reduce import UmapSettings, umap_reduced
+
+    torch.set_num_threads(os.cpu_count() or 1)
+    texts = corpus_texts(n_texts)
+    encoder = loaded_encoder(resolve_model(MINILM), 256, False)
+    with tempfile.TemporaryDirectory(dir=REPO / "results") as folder:
+        int8 = onnx_encoder(encoder, Path(folder), int8=True)
+        variant = [("last", "mean")]
+        pooled_variants(int8, texts[:64], variant, batch_size=64)  # warm-up
+        t_torch = median_seconds(lambda: pooled_variants(encoder, texts, variant, batch_size=64), repeats)
+        t_int8 = median_seconds(lambda: pooled_variants(int8, texts, variant, batch_size=64), repeats)
+
+        demo = loaded_corpus(SyntheticSource(source="synthetic", n_texts=1200, topic_share=0.15, seed=0))
+        scores = {}
+        for name, model in (("torch", encoder), ("onnx_int8", int8)):
+            vectors = pooled_variants(model, demo.texts, variant, batch_size=64)[variant[0]]
+            reduced = umap_reduced(vectors, UmapSettings(method="umap", n_components=5, n_neighbors=15), 0)
+            scores[name] = adjusted_rand(demo.labels, kmeans_labels(reduced, KmeansSettings(method="kmeans", k=6), 0, 6))
+    speedup = t_torch / t_int8
+    delta = abs(scores["torch"] - scores["onnx_int8"])
+    return {
+        "onnx_int8_speedup": {"value": speedup, "target": ">= 1.5", "met": speedup >= 1.5,
+                              "seconds": {"torch_fp32": t_torch, "onnx_int8": t_int8}},
+        "onnx_int8_ari_delta": {"value": delta, "target": "<= 0.01", "met": delta <= 0.01, "ari": scores},
+    }
+
+
+GROUPS = {"encode": encode_figures, "rerun_fraction": rerun_figures, "dask": dask_figures, "onnx": onnx_figures}
 
 
 def environment() -> dict:

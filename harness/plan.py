@@ -86,6 +86,7 @@ class Trial:
             "dataset": self.dataset,
             "model": self.model.name,
             "family": self.model.family,
+            "backend": self.model.backend,
             "max_length": self.model.max_length if self.model.max_length is not None else "model_default",
             "long_texts": self.model.long_texts,
             "layers": self.layers,
@@ -213,7 +214,8 @@ def trial_stages(
 ) -> dict[str, Stage]:
     encode = make_stage("encode", dataset_key_, {
         "model": resolved.name, "family": model.family, "weights": resolved.weights_digest,
-        "max_length": model.max_length, "long_texts": model.long_texts, **family_settings(model),
+        "max_length": model.max_length, "long_texts": model.long_texts, "backend": model.backend,
+        **family_settings(model),
     })
     pool = pool_stage(encode.key, layers, computed_pooling(pooling, chain, reducer), dtype)
     transform = make_stage("transform", pool.key, {"chain": [step.as_params() for step in chain]})

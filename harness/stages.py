@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import resource
 import time
+from pathlib import Path
 from collections import Counter, defaultdict
 from typing import Any, Callable, Optional
 
@@ -73,9 +74,19 @@ class StageExecutor:
     # -- encode and pool -------------------------------------------------------------------------------------
     def _encoder(self, trial: Trial) -> LoadedEncoder:
         spec = trial.model
-        cache_key = (trial.resolved_model.folder, spec.max_length, spec.trust_remote_code)
+        cache_key = (trial.resolved_model.folder, trial.resolved_model.family, spec.max_length, spec.trust_remote_code,
+                     spec.backend)
         if cache_key not in self._encoders:
-            self._encoders[cache_key] = loaded_encoder(trial.resolved_model, spec.max_length, spec.trust_remote_code)
+            encoder = loaded_encoder(trial.resolved_model, spec.max_length, spec.trust_remote_code)
+            if spec.backend != "torch":
+                from harness.onnx_backend import onnx_encoder
+
+                import tempfile
+
+                root = self.cache.root if self.cache is not None else Path(tempfile.mkdtemp(prefix="harness-onnx-"))
+                folder = root / "onnx" / f"{trial.resolved_model.weights_digest}-{trial.resolved_model.family}"
+                encoder = onnx_encoder(encoder, folder, int8=spec.backend == "onnx_int8")
+            self._encoders[cache_key] = encoder
             self.work["model_loads"] += 1
         return self._encoders[cache_key]
 

@@ -67,6 +67,7 @@ class ModelSettings(Settings):
     revision: Optional[str] = None
     trust_remote_code: bool = False
     long_texts: Literal["truncate", "chunk_mean"] = "truncate"
+    backend: Literal["torch", "onnx", "onnx_int8"] = "torch"  # transformer families: ONNX Runtime, optionally int8
     vectors: Optional[str] = None  # static: a packaged name (glove-6b-50d) or a .npy file; default: the model's name
     vocabulary: Optional[Path] = None  # static: one word per line (.txt) or a one-column Parquet, in the .npy's row order
     sif_a: Optional[float] = Field(None, gt=0.0)  # static: smooth inverse frequency weighting a / (a + p(w))

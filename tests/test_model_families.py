@@ -129,3 +129,21 @@ evidence: {{resamples: 50, permutations: 99}}
     by_family = {r.data.params["family"]: r for r in runs}
     assert 0.0 <= by_family["static"].data.metrics["oov_fraction"] < 0.5
     assert by_family["lexical"].data.params["pooling"] == "tfidf_svd"
+
+
+def test_onnx_backend_equals_pytorch_and_int8_stays_close(tmp_path):
+    # Reference: the PyTorch model the graph was exported from (fp32 to 1e-5); int8 is dynamic weight
+    # quantisation, so it is held to a cosine similarity with the fp32 vectors instead.
+    from harness.onnx_backend import onnx_encoder
+
+    encoder = loaded_encoder(resolve_model(MINILM), 128, False)
+    variants = [("last", "mean"), ("mean_last_4", "cls"), ("second_last", "max")]
+    reference = pooled_variants(encoder, TEXTS, variants, batch_size=3)
+    fp32 = pooled_variants(onnx_encoder(encoder, tmp_path, int8=False), TEXTS, variants, batch_size=3)
+    for variant in variants:
+        assert np.abs(fp32[variant] - reference[variant]).max() <= 1e-5
+    int8 = pooled_variants(onnx_encoder(encoder, tmp_path, int8=True), TEXTS, [("last", "mean")], batch_size=3)
+    a, b = int8[("last", "mean")], reference[("last", "mean")]
+    cosine = (a * b).sum(axis=1) / np.linalg.norm(a, axis=1) / np.linalg.norm(b, axis=1)
+    assert cosine.min() > 0.9
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["model_fp32.onnx", "model_int8.onnx"]  # exported once each
