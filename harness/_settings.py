@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
-from pydantic import BaseModel, ConfigDict
+from pathlib import Path
+
+from pydantic import BaseModel, ConfigDict, ValidationInfo
 
 
 class Settings(BaseModel):
@@ -13,3 +15,9 @@ class Settings(BaseModel):
     def as_params(self) -> dict:
         """The settings as a plain JSON-able dict (what keys and MLflow params are made of)."""
         return self.model_dump(mode="json")
+
+
+def relative_to_sweep(path: Path, info: ValidationInfo) -> Path:
+    """A path from the sweep file, resolved against the sweep file's folder (passed as validation context)."""
+    base = Path((info.context or {}).get("base_dir", "."))
+    return (path if path.is_absolute() else base / path).resolve()

@@ -49,7 +49,7 @@ def winner_sweep(record: SweepRecord, prepared, trial) -> dict[str, Any]:
         "name": f"{record.name}-winner",
         "question": f"Reproduces the winner of sweep '{record.name}' (MLflow run {record.run_id}).",
         "datasets": [{k: v for k, v in dataset.as_params().items() if v is not None}],
-        "models": [{k: v for k, v in trial.model.as_params().items() if v is not None}],
+        "models": [{"name": trial.model.name, **trial.model.model_dump(mode="json", exclude_defaults=True)}],
         "grid": {
             "pooling": [trial.pooling],
             "layers": [trial.layers],

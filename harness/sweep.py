@@ -13,7 +13,7 @@ import yaml
 from pydantic import AfterValidator, BeforeValidator, Field, PositiveInt, ValidationError, ValidationInfo, field_validator, model_validator
 
 from harness import _yaml_lines
-from harness._settings import Settings
+from harness._settings import Settings, relative_to_sweep
 from harness.cluster import ClustererSettings
 from harness.datasets import DatasetSettings, dataset_name
 from harness.errors import SweepError
@@ -104,8 +104,7 @@ class ModelSettings(Settings):
     def _existing_file(cls, path: Optional[Path], info: ValidationInfo) -> Optional[Path]:
         if path is None:
             return None
-        base = Path((info.context or {}).get("base_dir", "."))
-        resolved = (path if path.is_absolute() else base / path).resolve()
+        resolved = relative_to_sweep(path, info)
         if not resolved.is_file():
             raise ValueError(f"no such file: {resolved}")
         return resolved

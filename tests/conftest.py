@@ -37,6 +37,29 @@ def tiny_model_dir(tmp_path_factory) -> Path:
     return folder
 
 
+def free_port() -> int:
+    import socket
+
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        return probe.getsockname()[1]
+
+
+def wait_healthy(url: str, seconds: float = 90) -> None:
+    """Poll an MLflow server's /health until it answers 200 (bounded: fails after ``seconds``)."""
+    import time
+    import urllib.request
+
+    deadline = time.monotonic() + seconds
+    while time.monotonic() < deadline:
+        try:
+            if urllib.request.urlopen(f"{url}/health", timeout=2).status == 200:
+                return
+        except OSError:
+            time.sleep(0.5)
+    raise AssertionError(f"{url} did not become healthy in {seconds} s")
+
+
 def write_sweep(folder: Path, text: str, name: str = "sweep.yaml") -> Path:
     path = folder / name
     path.write_text(text)

@@ -5,11 +5,8 @@ from __future__ import annotations
 import os
 import shutil
 import signal
-import socket
 import subprocess
 import sys
-import time
-import urllib.request
 from pathlib import Path
 
 import pytest
@@ -19,7 +16,7 @@ from harness.cli import main
 from harness.report import main_effects, pareto_front
 from harness.runner import run_sweep_file
 
-from conftest import MINILM, configuration_runs, write_sweep
+from conftest import MINILM, configuration_runs, free_port, wait_healthy, write_sweep
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 needs_chromium = pytest.mark.skipif(CHROMIUM is None, reason="Debian's chromium is not installed (make test installs it)")
@@ -124,28 +121,16 @@ def test_citation_card_reproduces_the_winner(reviewed, capsys):
     assert abs(again.data.metrics["ari"] - winner.metrics["ari"]) <= spread
 
 
-def _free_port() -> int:
-    with socket.socket() as probe:
-        probe.bind(("127.0.0.1", 0))
-        return probe.getsockname()[1]
-
-
 @needs_chromium
 def test_the_mlflow_ui_lists_the_sweep_runs(reviewed):
     from playwright.sync_api import sync_playwright
 
     folder, results, result = reviewed
-    port = _free_port()
+    port = free_port()
     server = subprocess.Popen([sys.executable, "-m", "harness.cli", "ui", "--results-dir", str(results), "--port", str(port)],
                               stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)
     try:
-        deadline = time.monotonic() + 90
-        while time.monotonic() < deadline:
-            try:
-                if urllib.request.urlopen(f"http://127.0.0.1:{port}/health", timeout=2).status == 200:
-                    break
-            except OSError:
-                time.sleep(0.5)
+        wait_healthy(f"http://127.0.0.1:{port}")
         experiment = _experiment_id(results, "reviewed")
         with sync_playwright() as playwright:
             browser = _browser(playwright)

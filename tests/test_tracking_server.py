@@ -4,25 +4,16 @@ from __future__ import annotations
 
 import os
 import signal
-import socket
 import subprocess
 import sys
-import time
-import urllib.request
 
 from harness.runner import run_sweep_file
 
-from conftest import configuration_runs, finished_runs, write_sweep
-
-
-def _free_port() -> int:
-    with socket.socket() as probe:
-        probe.bind(("127.0.0.1", 0))
-        return probe.getsockname()[1]
+from conftest import configuration_runs, finished_runs, free_port, wait_healthy, write_sweep
 
 
 def test_a_sweep_logs_to_a_tracking_server(tmp_path, tiny_model_dir):
-    port = _free_port()
+    port = free_port()
     # A light server (ENVIRONMENT.md): one worker, no job runner, SQLite backend, loopback only.
     server = subprocess.Popen(
         [sys.executable, "-m", "mlflow", "server", "--backend-store-uri", f"sqlite:///{tmp_path / 'server.db'}",
@@ -32,13 +23,7 @@ def test_a_sweep_logs_to_a_tracking_server(tmp_path, tiny_model_dir):
         stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)
     uri = f"http://127.0.0.1:{port}"
     try:
-        deadline = time.monotonic() + 90
-        while time.monotonic() < deadline:
-            try:
-                if urllib.request.urlopen(f"{uri}/health", timeout=2).status == 200:
-                    break
-            except OSError:
-                time.sleep(0.5)
+        wait_healthy(uri)
         sweep = write_sweep(tmp_path, f"""
 name: served
 datasets:

@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 from pydantic import PositiveInt, ValidationInfo, field_validator
 
-from harness._settings import Settings
+from harness._settings import Settings, relative_to_sweep
 from harness.datasets.corpus import Corpus, random_indices, stratified_indices
 from harness.errors import DataError
 
@@ -31,13 +31,12 @@ class FileSource(Settings):
     @field_validator("path")
     @classmethod
     def _exists(cls, path: Path, info: ValidationInfo) -> Path:
-        base = Path((info.context or {}).get("base_dir", "."))
-        resolved = path if path.is_absolute() else (base / path)
+        resolved = relative_to_sweep(path, info)
         if not resolved.is_file():
             raise ValueError(f"no such file: {resolved}")
         if resolved.suffix.lower() not in SUFFIX_FORMATS:
             raise ValueError(f"cannot tell the format of {resolved.name}; expected one of {', '.join(SUFFIX_FORMATS)}")
-        return resolved.resolve()
+        return resolved
 
     @property
     def dataset_name(self) -> str:

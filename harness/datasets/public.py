@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 from pydantic import Field, PositiveInt, ValidationInfo, field_validator
 
-from harness._settings import Settings
+from harness._settings import Settings, relative_to_sweep
 from harness.datasets.corpus import Corpus, balanced_length_indices, per_class_indices, stratified_indices
 from harness.datasets.newsgroups_text import PARTS, stripped_message
 from harness.errors import DataError
@@ -38,8 +38,7 @@ class PublicSource(Settings):
     def _resolved(cls, path: Optional[Path], info: ValidationInfo) -> Optional[Path]:
         if path is None:
             return None
-        base = Path((info.context or {}).get("base_dir", "."))
-        resolved = (path if path.is_absolute() else base / path).resolve()
+        resolved = relative_to_sweep(path, info)
         if not resolved.is_dir():
             raise ValueError(f"no such folder: {resolved}")
         return resolved
