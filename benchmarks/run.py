@@ -191,7 +191,6 @@ def dask_figures(n_texts: int, repeats: int) -> dict:
 def onnx_figures(n_texts: int, repeats: int) -> dict:
     """onnx_int8_speedup (encode throughput, int8 ONNX over fp32 PyTorch, same texts and batches) and
     onnx_int8_ari_delta (|ARI difference| of mean pooling + cosine UMAP + k-means on the demo corpus)."""
-    import numpy as np
     import torch
 
     from harness.cluster import KmeansSettings, kmeans_labels

@@ -77,9 +77,11 @@ def command_run(args: argparse.Namespace) -> int:
 
         progress = lambda **kw: tqdm(file=sys.stderr, dynamic_ncols=True, **kw)  # noqa: E731
 
-        def encode_progress(total: int, description: str):
+        def encode_bar(total: int, description: str):
             bar = tqdm(total=total, desc=description, unit="text", file=sys.stderr, dynamic_ncols=True, leave=False)
             return bar.update, bar.close
+
+        encode_progress = encode_bar
 
     result = run_sweep_file(
         args.sweep, Path(args.results_dir), args.tracking_uri,

@@ -12,7 +12,6 @@ import html
 import io
 import math
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Optional
 
 import numpy as np

@@ -13,7 +13,7 @@ import tempfile
 import traceback
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Optional
+from typing import TYPE_CHECKING, Any, Callable, Optional
 
 import numpy as np
 
@@ -28,6 +28,9 @@ from harness.plan import Trial, aligned_params, dataset_key, planned_trials
 from harness.reduce import reduction_limits
 from harness.transforms import chain_width, transform_limits
 from harness.sweep import LABEL_FREE_METRICS, LABELLED_METRICS, EvidenceSettings, Sweep, load_sweep, sweep_error_at
+
+if TYPE_CHECKING:
+    from harness.leaderboard import Ranking
 
 ProgressFactory = Callable[..., Any]
 

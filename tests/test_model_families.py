@@ -9,7 +9,7 @@ import pytest
 
 from harness.encode import pooled_variants, special_wrapping
 from harness.lexical import tfidf_svd
-from harness.models import ResolvedModel, loaded_encoder, loaded_word_vectors, resolve_family_model, resolve_model
+from harness.models import loaded_encoder, loaded_word_vectors, resolve_family_model, resolve_model
 from harness.runner import run_sweep_file
 from harness.static_vectors import first_component_removed, sif_weights, static_pooled, tokens
 from harness.sweep import ModelSettings
