@@ -249,18 +249,17 @@ def parser() -> argparse.ArgumentParser:
     datasets.add_argument("--json", action="store_true", help="print the cards as JSON")
     datasets.set_defaults(handler=command_datasets)
 
-    report = commands.add_parser("report", help="write the HTML and Markdown report of a finished sweep")
-    report.add_argument("sweep", help="a sweep name (its newest run) or a sweep run id")
-    _add_store_options(report)
-    report.add_argument("--tracking-uri", default=None, help="MLflow tracking URI (default: sqlite:///RESULTS_DIR/mlflow.db)")
-    report.add_argument("--no-map", action="store_true", help="leave out the 2-D map of the winner's clusters")
-    report.set_defaults(handler=command_report)
+    def finished_sweep_command(name: str, help_text: str, handler) -> argparse.ArgumentParser:
+        command = commands.add_parser(name, help=help_text)
+        command.add_argument("sweep", help="a sweep name (its newest run) or a sweep run id")
+        _add_store_options(command)
+        command.add_argument("--tracking-uri", default=None, help="MLflow tracking URI (default: sqlite:///RESULTS_DIR/mlflow.db)")
+        command.set_defaults(handler=handler)
+        return command
 
-    cite = commands.add_parser("cite", help="write a citation card for the winner, with the command that reproduces it")
-    cite.add_argument("sweep", help="a sweep name (its newest run) or a sweep run id")
-    _add_store_options(cite)
-    cite.add_argument("--tracking-uri", default=None, help="MLflow tracking URI (default: sqlite:///RESULTS_DIR/mlflow.db)")
-    cite.set_defaults(handler=command_cite)
+    report = finished_sweep_command("report", "write the HTML and Markdown report of a finished sweep", command_report)
+    report.add_argument("--no-map", action="store_true", help="leave out the 2-D map of the winner's clusters")
+    finished_sweep_command("cite", "write a citation card for the winner, with the command that reproduces it", command_cite)
 
     ui = commands.add_parser("ui", help="start the MLflow UI on the results store")
     _add_store_options(ui)

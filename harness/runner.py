@@ -144,19 +144,16 @@ def check_against_data(prepared: PreparedSweep, corpora: dict[str, Corpus]) -> N
                         f"{layers!r} does not fit '{spec.name}', which has {model.n_hidden_states} hidden states "
                         f"(embeddings + {model.n_hidden_states - 1} layers)")
             widths = {output_width(layers, model.width) for layers in grid.layers}
-            for index, chain in enumerate(grid.transform):
-                for width in sorted(widths):
-                    problem = transform_limits(chain, corpus.n_texts, width)
+            # Transforms see the pooled widths; reducers also see what whitening leaves.
+            for axis, limits, axis_widths in (
+                ("transform", transform_limits, widths),
+                ("reduce", reduction_limits, widths | {chain_width(c, w) for c in grid.transform for w in widths}),
+            ):
+                for index, setting in enumerate(getattr(grid, axis)):
+                    problem = next((p for w in sorted(axis_widths) if (p := limits(setting, corpus.n_texts, w))), None)
                     if problem:
-                        raise sweep_error_at(prepared.path, ["grid", "transform", index],
-                            f"{problem} (dataset '{corpus.name}', model '{spec.name}')")
-            widths |= {chain_width(chain, w) for chain in grid.transform for w in widths}
-            for index, reducer in enumerate(grid.reduce):
-                for width in sorted(widths):
-                    problem = reduction_limits(reducer, corpus.n_texts, width)
-                    if problem:
-                        raise sweep_error_at(prepared.path, ["grid", "reduce", index],
-                            f"{problem} (dataset '{corpus.name}', model '{spec.name}')")
+                        raise sweep_error_at(prepared.path, ["grid", axis, index],
+                                             f"{problem} (dataset '{corpus.name}', model '{spec.name}')")
         metric = prepared.sweep.rank_by
         if corpus.labels is None and metric in LABELLED_METRICS:
             raise sweep_error_at(prepared.path, ["rank_by"], f"'{metric}' needs gold labels, and dataset '{corpus.name}' has "
