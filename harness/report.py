@@ -106,7 +106,7 @@ def caveats(ordered: list[ConfigurationRecord], metric: str) -> list[str]:
     if winner.metrics.get("length_confound_index", 0.0) > HIGH_LENGTH_INDEX:
         notes.append(f"The winner's clusters carry length beyond topic: length-confound index "
                      f"{winner.metrics['length_confound_index']:.2f} (0 = none, 1 = clusters are length bins). "
-                     "See the length picture below; a transform such as remove_length may help.")
+                     "See the length picture above; a transform such as remove_length may help.")
     if winner.metrics.get("truncated_fraction", 0.0) > MANY_TRUNCATED:
         notes.append(f"{winner.metrics['truncated_fraction']:.0%} of texts were longer than the model's maximum length "
                      "and were cut; consider long_texts: chunk_mean.")
