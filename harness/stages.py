@@ -10,6 +10,7 @@ was (not) recomputed without timing anything.
 from __future__ import annotations
 
 import resource
+import tempfile
 import time
 from pathlib import Path
 from collections import Counter, defaultdict
@@ -81,8 +82,6 @@ class StageExecutor:
             if spec.backend != "torch":
                 from harness.onnx_backend import onnx_encoder
 
-                import tempfile
-
                 root = self.cache.root if self.cache is not None else Path(tempfile.mkdtemp(prefix="harness-onnx-"))
                 folder = root / "onnx" / f"{trial.resolved_model.weights_digest}-{trial.resolved_model.family}"
                 encoder = onnx_encoder(encoder, folder, int8=spec.backend == "onnx_int8")
@@ -104,8 +103,10 @@ class StageExecutor:
             return
         encoder = self._encoder(trial)
         started = time.perf_counter()
-        counts = token_counts(encoder, corpus.texts)
-        if not self._held("encode", encode.key):
+        if self._held("encode", encode.key):  # counted before: only pooled variants are missing
+            counts = self._outputs[encode.key]
+        else:
+            counts = token_counts(encoder, corpus.texts)
             self._keep("encode", encode.key, counts, {
                 "settings": encode.settings, "truncated_fraction": truncated_fraction(counts, encoder),
                 "seconds": time.perf_counter() - started,
