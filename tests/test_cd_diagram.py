@@ -87,6 +87,8 @@ def test_every_configuration_is_named_at_its_average_rank_best_to_the_right(case
     assert abs(np.diff(interval.get_xdata())[0]) == pytest.approx(verdict.critical_difference)
     (axis,) = parts(figure, "cd-axis")
     assert min(axis.get_xdata()) == 1.0 and max(axis.get_xdata()) >= len(verdict.average_ranks)
+    # the CD is a scale bar along the axis: the axis is long enough to hold it (two configurations: CD > 1)
+    assert min(axis.get_xdata()) <= min(interval.get_xdata()) and max(interval.get_xdata()) <= max(axis.get_xdata())
     pyplot().close(figure)
 
 
