@@ -454,7 +454,7 @@ class AcrossVerdict:
             out.append("Nemenyi: every pair of configurations differs significantly.")
         out.append(f"Against {self.best} (Holm): " + "; ".join(
             f"{c.configuration} z = {c.z:.2f}, {_p(c.p_value)}, adjusted {_p(c.p_holm)}"
-            f"{' (different)' if c.significant else ' (not different)'}" for c in self.against_best) + ".")
+            f"{' (significantly worse)' if c.significant else ' (not significantly different)'}" for c in self.against_best) + ".")
         if self.bayesian is not None:
             out.append(self.bayesian.sentence())
         return out + [f"Caveat: {note}" for note in self.caveats()]
