@@ -15,34 +15,53 @@ from typing import Iterator
 
 import numpy as np
 
-from harness.metrics import PairCodes, adjusted_rand, scores_from_table
+from harness.metrics import PairCodes, adjusted_rand, scores_from_tables
 
 BOOTSTRAPPED = ("ari", "ami", "nmi", "v_measure")
-ROWS_PER_DRAW = 64  # an even number of rows keeps the random stream equal to one (B, n) draw
+ROWS_PER_DRAW = 64  # resamples per block; an even number keeps the random stream equal to one (B, n) draw
 
 
-def resample_indices(n: int, resamples: int, seed: int) -> Iterator[np.ndarray]:
-    """Indices of each bootstrap resample, in the order numpy's ``rng.integers(0, n, (resamples, n))`` gives them."""
+def resample_blocks(n: int, resamples: int, seed: int) -> Iterator[np.ndarray]:
+    """Blocks of bootstrap resamples (rows x n text indices), in the order ``rng.integers(0, n, (resamples, n))`` gives them.
+
+    That is the draw scipy.stats.bootstrap makes with the same generator, so intervals can be checked against it.
+    """
     rng = np.random.default_rng(seed)
     done = 0
     while done < resamples:
         rows = min(ROWS_PER_DRAW, resamples - done)
-        yield from rng.integers(0, n, (rows, n))
+        yield rng.integers(0, n, (rows, n))
         done += rows
+
+
+def resample_indices(n: int, resamples: int, seed: int) -> Iterator[np.ndarray]:
+    """Indices of each bootstrap resample, one at a time (the rows of ``resample_blocks``)."""
+    for block in resample_blocks(n, resamples, seed):
+        yield from block
+
+
+def per_seed_resampled_scores(labels_true: np.ndarray, seed_clusterings: list[np.ndarray], *, resamples: int,
+                              seed: int) -> dict[str, np.ndarray]:
+    """Per bootstrapped score, an array (seeds, resamples): each seed's score on each resample of texts.
+
+    One draw of text indices per block serves every seed; clusterings equal across seeds are scored once.
+    """
+    distinct: dict[bytes, int] = {}
+    order = [distinct.setdefault(np.asarray(c).tobytes(), len(distinct)) for c in seed_clusterings]
+    codes = [PairCodes(labels_true, seed_clusterings[order.index(i)]) for i in range(len(distinct))]
+    blocks: list[list[dict[str, np.ndarray]]] = [[] for _ in codes]
+    for block in resample_blocks(labels_true.size, resamples, seed):
+        for i, code in enumerate(codes):
+            blocks[i].append(scores_from_tables(code.resampled_tables(block)))
+    scored = [{name: np.concatenate([b[name] for b in seed_blocks]) for name in BOOTSTRAPPED} for seed_blocks in blocks]
+    return {name: np.stack([scored[i][name] for i in order]) for name in BOOTSTRAPPED}
 
 
 def bootstrap_distributions(labels_true: np.ndarray, seed_clusterings: list[np.ndarray], *, resamples: int,
                             seed: int) -> dict[str, np.ndarray]:
     """Per bootstrapped score, its value on each resample (mean over the seeds' clusterings)."""
-    n = labels_true.size
-    codes = [PairCodes(labels_true, clusters) for clusters in seed_clusterings]
-    out = {name: np.empty(resamples) for name in BOOTSTRAPPED}
-    for b, indices in enumerate(resample_indices(n, resamples, seed)):
-        counts = np.bincount(indices, minlength=n).astype(float)
-        per_seed = [scores_from_table(code.table(counts)) for code in codes]
-        for name in BOOTSTRAPPED:
-            out[name][b] = np.mean([scores[name] for scores in per_seed])
-    return out
+    per_seed = per_seed_resampled_scores(labels_true, seed_clusterings, resamples=resamples, seed=seed)
+    return {name: values.mean(axis=0) for name, values in per_seed.items()}
 
 
 def percentile_interval(distribution: np.ndarray, level: float = 0.95) -> tuple[float, float]:

@@ -24,14 +24,17 @@ from harness.evidence import (
 from harness.metrics import (
     PairCodes,
     density_validity,
+    expected_mutual_info,
     length_eta2_pvalue,
     length_eta_squared,
     length_leakage_r2,
     scores_from_table,
+    scores_from_tables,
     silhouette_cosine,
 )
 
 from conftest import configuration_runs, finished_runs, write_sweep
+import reference_bootstrap
 
 RNG = np.random.default_rng(11)
 
@@ -72,6 +75,87 @@ def test_scores_from_a_reweighted_table_equal_scikit_learn_on_the_resampled_arra
                  "nmi": skm.normalized_mutual_info_score(a, b), "v_measure": skm.v_measure_score(a, b)}
     for name, value in reference.items():
         assert ours[name] == pytest.approx(value, abs=1e-9), name
+
+
+BATCH_CASES = [  # (texts, gold classes, cluster ids drawn from -1 .. clusters-1, share kept equal to the label)
+    (50, 3, 2, 0.5), (300, 4, 6, 0.7), (2000, 6, 9, 0.6), (3000, 12, 20, 0.5), (800, 2, 40, 0.2), (400, 5, 1, 0.0),
+]
+
+
+@pytest.mark.parametrize("n, classes, clusters, kept", BATCH_CASES)
+def test_batched_scores_equal_the_per_resample_reference(n, classes, clusters, kept):
+    # Reference: the per-resample implementation of 3a07799 (tests/reference_bootstrap.py), one scores_from_table call
+    # per resample, on the same resample indices (same generator, same seed).
+    rng = np.random.default_rng(n)
+    labels = rng.integers(0, classes, n)
+    predicted = np.where(rng.random(n) < kept, labels, rng.integers(-1, clusters, n))
+    reference = reference_bootstrap.per_resample_scores(labels, predicted, 120, seed=9)
+    blocks = np.vstack(list(reference_bootstrap.resample_indices(n, 120, 9)))
+    ours = scores_from_tables(PairCodes(labels, predicted).resampled_tables(blocks))
+    for name in ("ari", "ami", "nmi", "v_measure"):
+        np.testing.assert_allclose(ours[name], reference[name], rtol=0, atol=1e-12, err_msg=name)
+    mean_of_seeds = reference_bootstrap.bootstrap_distributions(labels, [predicted, labels], resamples=70, seed=4)
+    batched = bootstrap_distributions(labels, [predicted, labels], resamples=70, seed=4)
+    for name in ("ari", "ami", "nmi", "v_measure"):
+        np.testing.assert_allclose(batched[name], mean_of_seeds[name], rtol=0, atol=1e-12, err_msg=name)
+
+
+def test_batched_scores_equal_scikit_learn_on_resampled_arrays():
+    # Reference: scikit-learn's scores on the label arrays of the first resamples, rebuilt text by text.
+    rng = np.random.default_rng(3)
+    labels = rng.integers(0, 5, 700)
+    predicted = np.where(rng.random(700) < 0.5, labels, rng.integers(-1, 8, 700))
+    blocks = next(iter(reference_bootstrap.resample_indices(700, 1, 2)))[None]
+    blocks = np.vstack([blocks, np.random.default_rng(8).integers(0, 700, (4, 700))])
+    ours = scores_from_tables(PairCodes(labels, predicted).resampled_tables(blocks))
+    for row, indices in enumerate(blocks):
+        a, b = labels[indices], predicted[indices]
+        reference = {"ari": skm.adjusted_rand_score(a, b), "ami": skm.adjusted_mutual_info_score(a, b),
+                     "nmi": skm.normalized_mutual_info_score(a, b), "v_measure": skm.v_measure_score(a, b)}
+        for name, value in reference.items():
+            assert ours[name][row] == pytest.approx(value, abs=1e-12), name
+
+
+margins = st.lists(st.lists(st.integers(0, 40), min_size=1, max_size=6), min_size=1, max_size=6).filter(
+    lambda rows: len({len(r) for r in rows}) == 1)
+
+
+@settings(max_examples=150, deadline=None)
+@given(margins)
+def test_expected_mutual_info_equals_scikit_learn(rows):
+    # Reference: sklearn.metrics.cluster._expected_mutual_info_fast.expected_mutual_information (every term of the
+    # support summed) on the table with its empty rows and columns removed, as adjusted_mutual_info_score calls it.
+    from sklearn.metrics.cluster._expected_mutual_info_fast import expected_mutual_information
+
+    table = np.array(rows, dtype=np.int64)
+    if table.sum() == 0:
+        table[0, 0] = 1
+    stripped = table[table.sum(axis=1) > 0][:, table.sum(axis=0) > 0]
+    ours = expected_mutual_info(table.sum(axis=1)[None], table.sum(axis=0)[None])[0]
+    assert ours == pytest.approx(expected_mutual_information(stripped, int(table.sum())), abs=1e-12)
+
+
+@pytest.mark.parametrize("row_sums, col_sums", [
+    ([10_000, 10_000], [19_999, 1]), ([1, 1, 19_998], [6_000, 7_000, 7_000]), ([5_000] * 4, [1_000] * 20),
+    ([2] * 10, [2] * 10), ([1] * 30, [30]), ([12_000, 8_000], [10_000, 10_000]), ([1_000] * 20, [1] * 20_000 + [0]),
+])
+def test_expected_mutual_info_on_extreme_margins(row_sums, col_sums):
+    # Reference: scikit-learn's exact sum over the whole support; large, skewed and singleton margins, where a walk
+    # from the mode that stopped too early would show.
+    from sklearn.metrics.cluster._expected_mutual_info_fast import expected_mutual_information
+
+    rows, cols = np.array(row_sums), np.array(col_sums)
+    assert rows.sum() == cols.sum()
+    table = np.zeros((rows.size, cols.size), dtype=np.int64)  # any table with these margins: EMI needs only them
+    r, c = rows.copy(), cols.copy()
+    for i in range(rows.size):
+        for j in range(cols.size):
+            table[i, j] = min(r[i], c[j])
+            r[i] -= table[i, j]
+            c[j] -= table[i, j]
+    stripped = table[table.sum(axis=1) > 0][:, table.sum(axis=0) > 0]
+    ours = expected_mutual_info(rows[None], table.sum(axis=0)[None])[0]
+    assert ours == pytest.approx(expected_mutual_information(stripped, int(rows.sum())), abs=1e-12)
 
 
 def test_permutation_pvalue_agrees_with_scipy_permutation_test():

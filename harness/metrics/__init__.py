@@ -10,7 +10,8 @@ from harness.metrics._external import (
     noise_aware_scores,
     normalized_mutual_info,
 )
-from harness.metrics._contingency import PairCodes, scores_from_table
+from harness.metrics._contingency import PairCodes, scores_from_table, scores_from_tables
+from harness.metrics._expected_mi import expected_mutual_info
 from harness.metrics._internal import cluster_size_entropy, density_validity, silhouette_cosine
 from harness.metrics._length import (
     length_confound_index,
@@ -29,6 +30,8 @@ __all__ = sorted(
         "length_eta2_pvalue",
         "length_leakage_r2",
         "scores_from_table",
+        "scores_from_tables",
+        "expected_mutual_info",
         "silhouette_cosine",
         "adjusted_mutual_info",
         "adjusted_rand",
