@@ -1,10 +1,24 @@
-"""Uncertainty of a configuration's scores: bootstrap intervals over texts, ties with the leader, seed stability.
+"""Uncertainty of a configuration's scores: a two-level bootstrap over seeds and texts, ties with the leader,
+seed stability.
 
-A configuration is a trial without its seed; its score is the mean over seeds.
-Resampling texts with replacement B times (seeded) gives a distribution of that
-mean; the 95 % interval is its 2.5th and 97.5th percentiles. Every configuration
-of a dataset is resampled with the same seed, hence on the same resamples, so the
-difference to the leader can be bootstrapped pairwise.
+A configuration is a trial without its seed; its score is the mean over seeds. Two
+sources of chance move that mean: which texts the corpus happens to hold, and which
+seeds were run. Seeds and texts are crossed (every seed clusters the same texts), so
+each bootstrap resample draws both independently, as the pigeonhole bootstrap does
+for a crossed design (Owen, 2007, Annals of Applied Statistics 1(2)): S seeds with
+replacement from the S run, and n texts with replacement; the resample's score is the
+mean, over the drawn seeds (with their multiplicity), of each seed's score on the
+drawn texts. Every drawn seed sees the same drawn texts.
+
+With fewer than SEED_LEVEL_MINIMUM seeds the seeds are too few to resample (two seeds
+give three possible draws); the bootstrap then resamples texts only and the interval
+says nothing about seed-to-seed spread: the caller must say so (``interval_scope``).
+
+The draws depend only on the evidence seed, n and S, so every configuration of a
+dataset is resampled on the same seed draws and the same text draws: the difference
+to the leader is bootstrapped pairwise. The text draws are the ones
+scipy.stats.bootstrap makes with ``np.random.default_rng(seed)``; the seed draws come
+from a stream of their own, so they leave the text draws unchanged.
 """
 
 from __future__ import annotations
@@ -19,6 +33,14 @@ from harness.metrics import PairCodes, adjusted_rand, scores_from_tables
 
 BOOTSTRAPPED = ("ari", "ami", "nmi", "v_measure")
 ROWS_PER_DRAW = 64  # resamples per block; an even number keeps the random stream equal to one (B, n) draw
+SEED_LEVEL_MINIMUM = 3  # fewer seeds than this: intervals and ties cover text sampling only
+SEED_STREAM = 1  # the seed draws use np.random.default_rng([seed, SEED_STREAM]), apart from the text draws
+SCOPE_SEEDS_AND_TEXTS, SCOPE_TEXTS_ONLY = "seeds_and_texts", "texts_only"
+
+
+def interval_scope(n_seeds: int) -> str:
+    """What a configuration's intervals and tie flags cover: seeds and texts, or (fewer than 3 seeds) texts only."""
+    return SCOPE_SEEDS_AND_TEXTS if n_seeds >= SEED_LEVEL_MINIMUM else SCOPE_TEXTS_ONLY
 
 
 def resample_blocks(n: int, resamples: int, seed: int) -> Iterator[np.ndarray]:
@@ -40,6 +62,18 @@ def resample_indices(n: int, resamples: int, seed: int) -> Iterator[np.ndarray]:
         yield from block
 
 
+def seed_weights(n_seeds: int, resamples: int, seed: int) -> np.ndarray:
+    """(resamples, n_seeds): each seed's weight in each resample's mean over seeds; every row sums to 1.
+
+    From SEED_LEVEL_MINIMUM seeds on, the weight is how often the seed was drawn (S draws with replacement) over S;
+    below it every seed weighs 1/S in every resample (texts-only bootstrap).
+    """
+    if n_seeds < SEED_LEVEL_MINIMUM:
+        return np.full((resamples, n_seeds), 1.0 / n_seeds)
+    draws = np.random.default_rng([seed, SEED_STREAM]).integers(0, n_seeds, (resamples, n_seeds))
+    return (draws[:, :, None] == np.arange(n_seeds)).sum(axis=1) / n_seeds
+
+
 def per_seed_resampled_scores(labels_true: np.ndarray, seed_clusterings: list[np.ndarray], *, resamples: int,
                               seed: int) -> dict[str, np.ndarray]:
     """Per bootstrapped score, an array (seeds, resamples): each seed's score on each resample of texts.
@@ -59,9 +93,11 @@ def per_seed_resampled_scores(labels_true: np.ndarray, seed_clusterings: list[np
 
 def bootstrap_distributions(labels_true: np.ndarray, seed_clusterings: list[np.ndarray], *, resamples: int,
                             seed: int) -> dict[str, np.ndarray]:
-    """Per bootstrapped score, its value on each resample (mean over the seeds' clusterings)."""
+    """Per bootstrapped score, its value on each resample: the seed-weighted mean of the seeds' scores on the
+    resample's texts (two-level from SEED_LEVEL_MINIMUM seeds on, texts only below)."""
     per_seed = per_seed_resampled_scores(labels_true, seed_clusterings, resamples=resamples, seed=seed)
-    return {name: values.mean(axis=0) for name, values in per_seed.items()}
+    weights = seed_weights(len(seed_clusterings), resamples, seed)
+    return {name: (weights * values.T).sum(axis=1) for name, values in per_seed.items()}
 
 
 def percentile_interval(distribution: np.ndarray, level: float = 0.95) -> tuple[float, float]:
@@ -85,15 +121,24 @@ def stability_ari(seed_clusterings: list[np.ndarray]) -> float:
     return float(np.mean([adjusted_rand(a, b) for a, b in pairs]))
 
 
+STABILITY_TAG, SCOPE_TAG, VERDICT_TAG = "harness.stability", "harness.interval_scope", "harness.verdict"
+
+
 @dataclass
 class ConfigurationEvidence:
     """Seed-aggregated scores of one configuration."""
 
     means: dict[str, float]
     stds: dict[str, float]
+    n_seeds: int = 1
     intervals: dict[str, tuple[float, float]] = field(default_factory=dict)
     distributions: dict[str, np.ndarray] = field(default_factory=dict)
     stability: float = float("nan")
+
+    @property
+    def scope(self) -> str | None:
+        """What the intervals cover (None without intervals)."""
+        return interval_scope(self.n_seeds) if self.intervals else None
 
     def metrics(self) -> dict[str, float]:
         flat = dict(self.means)
@@ -101,7 +146,17 @@ class ConfigurationEvidence:
         for name, (low, high) in self.intervals.items():
             flat[f"{name}_ci_low"], flat[f"{name}_ci_high"] = low, high
         flat["stability_ari"] = self.stability
+        flat["n_seeds"] = float(self.n_seeds)
         return flat
+
+    def tags(self) -> dict[str, str]:
+        """The configuration run's tags: what the intervals cover, and a provisional verdict below 3 seeds."""
+        tags = {}
+        if self.scope is not None:
+            tags[SCOPE_TAG] = self.scope
+        if self.n_seeds < SEED_LEVEL_MINIMUM:
+            tags[VERDICT_TAG] = "provisional"
+        return tags
 
 
 def configuration_evidence(seed_scores: list[dict[str, float]], seed_clusterings: list[np.ndarray],
@@ -113,7 +168,8 @@ def configuration_evidence(seed_scores: list[dict[str, float]], seed_clusterings
     with np.errstate(all="ignore"):
         means = {name: float(np.nanmean(v)) if not np.all(np.isnan(v)) else float("nan") for name, v in values.items()}
         stds = {name: float(np.nanstd(v)) if not np.all(np.isnan(v)) else float("nan") for name, v in values.items()}
-    evidence = ConfigurationEvidence(means=means, stds=stds, stability=stability_ari(seed_clusterings))
+    evidence = ConfigurationEvidence(means=means, stds=stds, n_seeds=len(seed_clusterings),
+                                     stability=stability_ari(seed_clusterings))
     if labels_true is not None and resamples > 0:
         evidence.distributions = bootstrap_distributions(labels_true, seed_clusterings, resamples=resamples, seed=seed)
         evidence.intervals = {name: percentile_interval(d, level) for name, d in evidence.distributions.items()}

@@ -6,7 +6,14 @@ import math
 from dataclasses import dataclass, field
 from typing import Any
 
-from harness.evidence import BOOTSTRAPPED, tied_with
+from harness.evidence import (
+    BOOTSTRAPPED,
+    SCOPE_TAG,
+    SCOPE_TEXTS_ONLY,
+    SEED_LEVEL_MINIMUM,
+    VERDICT_TAG,
+    tied_with,
+)
 from harness.sweep import DEFAULT_LABEL_FREE_METRIC, DEFAULT_LABELLED_METRIC
 
 
@@ -30,6 +37,16 @@ class Ranking:
     @property
     def winner(self) -> RankedRow | None:
         return self.rows[0] if self.rows else None
+
+    @property
+    def provisional(self) -> bool:
+        """Whether the verdict rests on fewer than SEED_LEVEL_MINIMUM seeds (any configuration of the dataset)."""
+        return any(row.configuration.tags.get(VERDICT_TAG) == "provisional" for row in self.rows)
+
+    @property
+    def texts_only(self) -> bool:
+        """Whether the intervals and tie flags cover text sampling only (not the spread over seeds)."""
+        return any(row.configuration.tags.get(SCOPE_TAG) == SCOPE_TEXTS_ONLY for row in self.rows)
 
 
 def ranking_metric(rank_by: str | None, labelled: bool) -> str:
@@ -93,10 +110,25 @@ def table(ranking: Ranking, limit: int | None = None) -> str:
             _number(metrics.get("length_leakage_r2")), _number(metrics.get("coverage")), _number(metrics.get("n_clusters"), 1),
         ])
     widths = [max(len(h), *(len(c[i]) for c in cells)) if cells else len(h) for i, h in enumerate(header)]
-    lines = [f"{ranking.dataset}: ranked by {ranking.metric} (mean over seeds)",
+    verdict = " - provisional verdict" if ranking.provisional else ""
+    lines = [f"{ranking.dataset}: ranked by {ranking.metric} (mean over seeds){verdict}",
              "  ".join(h.ljust(w) for h, w in zip(header, widths)), "  ".join("-" * w for w in widths)]
     lines += ["  ".join(c.ljust(w) for c, w in zip(cell, widths)) for cell in cells]
-    return "\n".join(lines)
+    return "\n".join(lines + notes(ranking))
+
+
+def notes(ranking: Ranking) -> list[str]:
+    """What the reader must know to cite this ranking: the lines printed under its table."""
+    lines = []
+    if ranking.texts_only:
+        lines.append(f"note: intervals and ties cover text sampling only, not the spread over seeds (fewer than "
+                     f"{SEED_LEVEL_MINIMUM} seeds); the verdict is provisional: run {SEED_LEVEL_MINIMUM} or more seeds.")
+    elif ranking.provisional:
+        lines.append(f"note: fewer than {SEED_LEVEL_MINIMUM} seeds; the verdict is provisional: run "
+                     f"{SEED_LEVEL_MINIMUM} or more seeds.")
+    elif any(row.interval for row in ranking.rows):
+        lines.append("note: intervals and ties resample seeds and texts (two-level bootstrap).")
+    return lines
 
 
 def descriptions_table(rows: list[dict]) -> str:

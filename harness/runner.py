@@ -63,6 +63,7 @@ class ConfigurationResult:
     seeds: list[TrialResult]
     metrics: dict[str, float] = field(default_factory=dict)
     distributions: dict[str, np.ndarray] = field(default_factory=dict, repr=False)
+    tags: dict[str, str] = field(default_factory=dict)
     run_id: Optional[str] = None
     descriptions: list[dict] = field(default_factory=list, repr=False)
 
@@ -291,9 +292,8 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
             found = configuration_evidence([r.scores for r in result.seeds], [executor.clustered(t) for t in configuration],
                                            corpus.labels, resamples=evidence.resamples, seed=evidence.seed,
                                            level=evidence.level)
-            result.metrics, result.distributions = found.metrics(), found.distributions
-            result.metrics["n_seeds"] = float(len(configuration))
-            tracker.log_results(config_run, result.metrics)
+            result.metrics, result.distributions, result.tags = found.metrics(), found.distributions, found.tags()
+            tracker.log_results(config_run, result.metrics, tags=result.tags)
             tracker.end(config_run, "FINISHED")
         else:
             tracker.end(config_run, "FAILED", error="a seed run failed")

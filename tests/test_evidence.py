@@ -15,9 +15,12 @@ from sklearn import metrics as skm
 from harness.cli import main
 from harness.describe import TermCounts, cluster_descriptions, log_odds_z, npmi, npmi_coherence
 from harness.evidence import (
+    SEED_LEVEL_MINIMUM,
     bootstrap_distributions,
     configuration_evidence,
     percentile_interval,
+    resample_indices,
+    seed_weights,
     stability_ari,
     tied_with,
 )
@@ -236,6 +239,97 @@ def test_ties_for_clusterings_within_noise_and_none_for_a_clearly_better_one():
     assert tied_with(dist["good"], dist["poor"])[0] is False
 
 
+def test_a_planted_seed_spread_widens_the_interval_and_ties_the_runner_up():
+    # Planted as in the issue's held-out corpus: one configuration whose seeds disagree (one good seed, three poor ones,
+    # ARI about 0.88 / 0.65 / 0.65 / 0.65) and one whose seeds agree (about 0.76 each), on 3,000 texts, so that the
+    # text-level spread is small. A bootstrap of texts alone calls the steady one the winner with a narrow interval and
+    # the other untied; resampling the seeds as well must widen the spread one's interval and tie the two.
+    labels = np.random.default_rng(0).integers(0, 5, 3000)
+    spread = [_noisy(labels, share, np.random.default_rng(10 + i)) for i, share in enumerate((0.07, 0.21, 0.21, 0.21))]
+    steady = [_noisy(labels, 0.14, np.random.default_rng(20 + i)) for i in range(4)]
+    seed_aris = [skm.adjusted_rand_score(labels, c) for c in spread]
+    assert max(seed_aris) - min(seed_aris) > 0.15  # the planted seed spread
+    found = {name: configuration_evidence([{"ari": skm.adjusted_rand_score(labels, c)} for c in seeds], seeds, labels,
+                                          resamples=400, seed=0)
+             for name, seeds in (("spread", spread), ("steady", steady))}
+    assert found["steady"].means["ari"] > found["spread"].means["ari"]  # the steady one leads on the mean
+    low, high = found["spread"].intervals["ari"]
+    assert high - low > 0.5 * (max(seed_aris) - min(seed_aris)), (low, high)  # the seeds' spread shows in the interval
+    tied, difference = tied_with(found["steady"].distributions["ari"], found["spread"].distributions["ari"])
+    assert tied, difference
+    assert found["spread"].scope == "seeds_and_texts" and found["spread"].tags() == {"harness.interval_scope": "seeds_and_texts"}
+
+
+def test_every_seed_of_a_resample_sees_the_same_texts():
+    # Two seeds with the same partition must give exactly the one-seed distribution (texts only, below 3 seeds), and
+    # three or four copies too (resampling identical seeds changes nothing): true only if every seed of a resample is
+    # scored on the same drawn texts. Drawing texts per seed would make the copies disagree. The copies carry other
+    # cluster ids (the same partition), so that they are scored as distinct clusterings.
+    labels = RNG.integers(0, 4, 400)
+    clusters = _noisy(labels, 0.4, np.random.default_rng(4))
+    one = bootstrap_distributions(labels, [clusters], resamples=150, seed=3)
+    for copies in (2, 3, 4):
+        many = bootstrap_distributions(labels, [clusters + 10 * i for i in range(copies)], resamples=150, seed=3)
+        for name in one:
+            np.testing.assert_allclose(many[name], one[name], rtol=0, atol=1e-14, err_msg=f"{copies} copies, {name}")
+
+
+def test_two_seed_interval_equals_scipy_paired_bootstrap_of_the_seed_mean():
+    # Reference: scipy.stats.bootstrap((labels, seed 1, seed 2), paired=True, method="percentile") of the mean ARI over
+    # the two seeds, same generator and seed: the texts-only bootstrap (fewer than 3 seeds) draws the same indices for
+    # both seeds, as scipy's paired resampling does.
+    labels = RNG.integers(0, 4, 250)
+    first, second = _noisy(labels, 0.3, np.random.default_rng(1)), _noisy(labels, 0.6, np.random.default_rng(2))
+    ours = percentile_interval(bootstrap_distributions(labels, [first, second], resamples=199, seed=5)["ari"])
+    reference = stats.bootstrap(
+        (labels, first, second), lambda y, a, b: (skm.adjusted_rand_score(y, a) + skm.adjusted_rand_score(y, b)) / 2,
+        paired=True, vectorized=False, n_resamples=199, method="percentile", confidence_level=0.95,
+        random_state=np.random.default_rng(5)).confidence_interval
+    assert ours == pytest.approx((reference.low, reference.high), rel=1e-9)
+
+
+def test_the_seed_draws_leave_the_text_draws_equal_to_scipy():
+    # Reference: scipy.stats.bootstrap on one clustering. Three identical seeds take the two-level path (seeds are
+    # resampled), yet the distribution must equal scipy's: the seed draws have a stream of their own.
+    labels = RNG.integers(0, 3, 200)
+    clusters = _noisy(labels, 0.5, np.random.default_rng(6))
+    copies = [clusters, clusters + 10, clusters + 20]  # one partition, three id sets: scored as three seeds
+    ours = percentile_interval(bootstrap_distributions(labels, copies, resamples=199, seed=8)["ami"])
+    reference = stats.bootstrap((labels, clusters), skm.adjusted_mutual_info_score, paired=True, vectorized=False,
+                                n_resamples=199, method="percentile", confidence_level=0.95,
+                                random_state=np.random.default_rng(8)).confidence_interval
+    assert ours == pytest.approx((reference.low, reference.high), rel=1e-9)
+
+
+def test_configurations_are_resampled_on_the_same_seed_and_text_draws():
+    # Two configurations that differ in one text of one seed must move together on every resample: the same seeds and
+    # the same texts drawn for both. Unpaired seed draws (seeds 1 and 3 differ by ~0.3 ARI) or unpaired text draws
+    # would make their per-resample difference as large as the spread itself.
+    labels = RNG.integers(0, 4, 500)
+    seeds = [_noisy(labels, share, np.random.default_rng(30 + i)) for i, share in enumerate((0.1, 0.3, 0.6))]
+    nudged = [c.copy() for c in seeds]
+    nudged[2][0] = (nudged[2][0] + 1) % 4
+    a = bootstrap_distributions(labels, seeds, resamples=300, seed=1)["ari"]
+    b = bootstrap_distributions(labels, nudged, resamples=300, seed=1)["ari"]
+    assert np.ptp(a) > 0.2  # the seed draws do move the score
+    assert np.abs(a - b).max() < 0.01
+    low, high = tied_with(a, b)[1]
+    assert high - low < 0.01
+
+
+def test_seed_weights_resample_seeds_from_three_on():
+    # Each row is one resample's weights over the seeds: multiplicities over S (a multinomial draw), summing to 1; below
+    # SEED_LEVEL_MINIMUM every seed weighs 1/S. Over many resamples each seed is drawn 1/S of the time.
+    assert SEED_LEVEL_MINIMUM == 3
+    np.testing.assert_array_equal(seed_weights(2, 5, 0), np.full((5, 2), 0.5))
+    weights = seed_weights(4, 20_000, 0)
+    np.testing.assert_allclose(weights.sum(axis=1), 1.0)
+    assert set(np.unique(weights * 4)) <= {0.0, 1.0, 2.0, 3.0, 4.0}
+    np.testing.assert_allclose(weights.mean(axis=0), 0.25, atol=0.01)
+    assert (weights == 0).any(axis=1).mean() > 0.8  # most resamples leave out at least one seed (1 - 4!/4^4 = 0.906)
+    assert not np.array_equal(seed_weights(4, 50, 0), seed_weights(4, 50, 1))
+
+
 def test_stability_and_seed_aggregation():
     labels = RNG.integers(0, 3, 100)
     assert stability_ari([labels, labels, labels]) == 1.0
@@ -243,6 +337,9 @@ def test_stability_and_seed_aggregation():
     evidence = configuration_evidence([{"ari": 0.5}, {"ari": 0.7}], [labels, labels], labels, resamples=50, seed=0)
     assert evidence.means["ari"] == pytest.approx(0.6) and evidence.stds["ari"] == pytest.approx(0.1)
     assert evidence.metrics()["ari_ci_low"] == evidence.metrics()["ari_ci_high"] == 1.0  # both clusterings = labels
+    # Two seeds: the interval covers text sampling only and the verdict is provisional (the agreed MLflow tags).
+    assert evidence.tags() == {"harness.interval_scope": "texts_only", "harness.verdict": "provisional"}
+    assert evidence.metrics()["n_seeds"] == 2
 
 
 def test_length_leakage_of_planted_and_absent_length():
@@ -273,7 +370,8 @@ grid:
     results = tmp_path / "results"
     assert main(["run", str(sweep), "--results-dir", str(results), "--no-progress"]) == 0
     out = capsys.readouterr().out
-    assert "requests: ranked by silhouette (mean over seeds)" in out
+    assert "requests: ranked by silhouette (mean over seeds) - provisional verdict" in out
+    assert "fewer than 3 seeds; the verdict is provisional" in out  # two seeds
     _, parents, seeds = finished_runs(f"sqlite:///{results / 'mlflow.db'}", "unlabelled")
     configs = configuration_runs(f"sqlite:///{results / 'mlflow.db'}", "unlabelled")
     assert len(seeds) == 4 and len(configs) == 2
@@ -284,3 +382,5 @@ grid:
                 "length_eta2_pvalue", "length_leakage_r2", "npmi_mean"} <= run.data.metrics.keys()
         assert "ari" not in run.data.metrics
     assert all("stability_ari" in c.data.metrics for c in configs)
+    assert all(c.data.tags["harness.verdict"] == "provisional" and "harness.interval_scope" not in c.data.tags
+               for c in configs)  # no labels, no intervals: nothing to scope
