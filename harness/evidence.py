@@ -162,12 +162,15 @@ class ConfigurationEvidence:
 def configuration_evidence(seed_scores: list[dict[str, float]], seed_clusterings: list[np.ndarray],
                            labels_true: np.ndarray | None, *, resamples: int, seed: int,
                            level: float = 0.95) -> ConfigurationEvidence:
-    """Mean and standard deviation over seeds of every score, bootstrap intervals, and seed stability."""
+    """Mean and sample standard deviation over seeds of every score, bootstrap intervals, and seed stability."""
     names = sorted(set().union(*seed_scores)) if seed_scores else []
     values = {name: np.array([s.get(name, np.nan) for s in seed_scores], dtype=float) for name in names}
     with np.errstate(all="ignore"):
         means = {name: float(np.nanmean(v)) if not np.all(np.isnan(v)) else float("nan") for name, v in values.items()}
-        stds = {name: float(np.nanstd(v)) if not np.all(np.isnan(v)) else float("nan") for name, v in values.items()}
+        # The sample standard deviation (ddof = 1): with 2 or 3 seeds the population form understates the spread
+        # by a factor sqrt((S - 1) / S); undefined (NaN) for fewer than 2 valid seeds.
+        stds = {name: float(np.nanstd(v, ddof=1)) if np.count_nonzero(~np.isnan(v)) > 1 else float("nan")
+                for name, v in values.items()}
     evidence = ConfigurationEvidence(means=means, stds=stds, n_seeds=len(seed_clusterings),
                                      stability=stability_ari(seed_clusterings))
     if labels_true is not None and resamples > 0:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import statistics
 
 import numpy as np
 import pandas as pd
@@ -335,11 +336,24 @@ def test_stability_and_seed_aggregation():
     assert stability_ari([labels, labels, labels]) == 1.0
     assert math.isnan(stability_ari([labels]))
     evidence = configuration_evidence([{"ari": 0.5}, {"ari": 0.7}], [labels, labels], labels, resamples=50, seed=0)
-    assert evidence.means["ari"] == pytest.approx(0.6) and evidence.stds["ari"] == pytest.approx(0.1)
+    assert evidence.means["ari"] == pytest.approx(0.6)
+    # The sample standard deviation (ddof = 1), as Python's statistics.stdev computes it: sqrt(0.02) = 0.1414...,
+    # not the population form (0.1).
+    assert evidence.stds["ari"] == pytest.approx(statistics.stdev([0.5, 0.7])) == pytest.approx(math.sqrt(0.02))
     assert evidence.metrics()["ari_ci_low"] == evidence.metrics()["ari_ci_high"] == 1.0  # both clusterings = labels
     # Two seeds: the interval covers text sampling only and the verdict is provisional (the agreed MLflow tags).
     assert evidence.tags() == {"harness.interval_scope": "texts_only", "harness.verdict": "provisional"}
     assert evidence.metrics()["n_seeds"] == 2
+
+
+def test_seed_standard_deviation_is_the_sample_one_and_undefined_for_one_seed():
+    # Reference: statistics.stdev (n - 1 in the denominator); one seed has no spread to estimate: NaN, not 0.
+    labels = RNG.integers(0, 3, 60)
+    scores = [{"silhouette": 0.1}, {"silhouette": 0.4}, {"silhouette": 0.25}]
+    found = configuration_evidence(scores, [labels] * 3, labels, resamples=0, seed=0)
+    assert found.stds["silhouette"] == pytest.approx(statistics.stdev([0.1, 0.4, 0.25]), rel=1e-12)
+    single = configuration_evidence(scores[:1], [labels], labels, resamples=0, seed=0)
+    assert math.isnan(single.stds["silhouette"]) and single.means["silhouette"] == 0.1
 
 
 def test_length_leakage_of_planted_and_absent_length():
