@@ -131,6 +131,7 @@ class ConfigurationEvidence:
     means: dict[str, float]
     stds: dict[str, float]
     n_seeds: int = 1
+    valid_seeds: dict[str, int] = field(default_factory=dict)  # per score: seeds that gave a finite value
     intervals: dict[str, tuple[float, float]] = field(default_factory=dict)
     distributions: dict[str, np.ndarray] = field(default_factory=dict)
     stability: float = float("nan")
@@ -143,6 +144,7 @@ class ConfigurationEvidence:
     def metrics(self) -> dict[str, float]:
         flat = dict(self.means)
         flat.update({f"{k}_std": v for k, v in self.stds.items()})
+        flat.update({f"{k}_valid_seeds": float(v) for k, v in self.valid_seeds.items()})
         for name, (low, high) in self.intervals.items():
             flat[f"{name}_ci_low"], flat[f"{name}_ci_high"] = low, high
         flat["stability_ari"] = self.stability
@@ -171,7 +173,9 @@ def configuration_evidence(seed_scores: list[dict[str, float]], seed_clusterings
         # by a factor sqrt((S - 1) / S); undefined (NaN) for fewer than 2 valid seeds.
         stds = {name: float(np.nanstd(v, ddof=1)) if np.count_nonzero(~np.isnan(v)) > 1 else float("nan")
                 for name, v in values.items()}
-    evidence = ConfigurationEvidence(means=means, stds=stds, n_seeds=len(seed_clusterings),
+    # A mean over fewer seeds than were run (NaN on the others) must not pass for a mean over all of them.
+    valid = {name: int(np.count_nonzero(np.isfinite(v))) for name, v in values.items()}
+    evidence = ConfigurationEvidence(means=means, stds=stds, n_seeds=len(seed_clusterings), valid_seeds=valid,
                                      stability=stability_ari(seed_clusterings))
     if labels_true is not None and resamples > 0:
         evidence.distributions = bootstrap_distributions(labels_true, seed_clusterings, resamples=resamples, seed=seed)

@@ -25,6 +25,13 @@ class RankedRow:
     interval: tuple[float, float] | None = None
     tied: bool | None = None  # None: no paired bootstrap for this metric, or this row is the leader
     difference_interval: tuple[float, float] | None = None
+    valid_seeds: int | None = None  # seeds with a finite value of the ranking metric (None: not a per-seed mean)
+    n_seeds: int | None = None
+
+    @property
+    def short_of_seeds(self) -> bool:
+        """Ranked on a mean over fewer seeds than the configuration ran (the others gave NaN)."""
+        return self.valid_seeds is not None and self.n_seeds is not None and self.valid_seeds < self.n_seeds
 
 
 @dataclass
@@ -69,7 +76,12 @@ def rank_configurations(configurations: list, sweep, corpora: dict) -> dict[str,
         if dataset not in rankings:
             metric = ranking_metric(sweep.rank_by, corpora[dataset].labels is not None)
             rankings[dataset] = Ranking(dataset, metric, level=sweep.evidence.level)
-        rankings[dataset].rows.append(RankedRow(0, configuration, _value(configuration, rankings[dataset].metric)))
+        metric = rankings[dataset].metric
+        row = RankedRow(0, configuration, _value(configuration, metric))
+        valid, n_seeds = configuration.metrics.get(f"{metric}_valid_seeds"), configuration.metrics.get("n_seeds")
+        if valid is not None and n_seeds is not None:
+            row.valid_seeds, row.n_seeds = int(valid), int(n_seeds)
+        rankings[dataset].rows.append(row)
     for ranking in rankings.values():
         ranking.rows.sort(key=lambda r: (math.isnan(r.value), -r.value if not math.isnan(r.value) else 0.0, r.configuration.name))
         leader = ranking.rows[0] if ranking.rows else None
@@ -94,7 +106,7 @@ def _number(value: Any, digits: int = 3) -> str:
 def table(ranking: Ranking, limit: int | None = None) -> str:
     """Fixed-width text table of one dataset's ranking."""
     level = f"{ranking.level * 100:g}% CI"
-    header = ["rank", "configuration", ranking.metric, level, "tie", "stability_ari", "length_confound_index",
+    header = ["rank", "configuration", ranking.metric, level, "tie", "seeds", "stability_ari", "length_confound_index",
               "length_leakage_r2", "coverage", "n_clusters"]
     cells = []
     for row in ranking.rows[:limit] if limit else ranking.rows:
@@ -106,6 +118,7 @@ def table(ranking: Ranking, limit: int | None = None) -> str:
             str(row.rank), row.configuration.name, _number(row.value),
             f"[{_number(row.interval[0])}, {_number(row.interval[1])}]" if row.interval else "-",
             "leader" if row.rank == 1 else ("tied" if row.tied else ("" if row.tied is not None else "-")),
+            _seeds(row),
             _number(metrics.get("stability_ari")), _number(metrics.get("length_confound_index")),
             _number(metrics.get("length_leakage_r2")), _number(metrics.get("coverage")), _number(metrics.get("n_clusters"), 1),
         ])
@@ -117,9 +130,21 @@ def table(ranking: Ranking, limit: int | None = None) -> str:
     return "\n".join(lines + notes(ranking))
 
 
+def _seeds(row: RankedRow) -> str:
+    """Seeds behind the row's score, valid / run, with '!' where some gave no value."""
+    if row.valid_seeds is None:
+        return "-"
+    return f"{row.valid_seeds}/{row.n_seeds}" + ("!" if row.short_of_seeds else "")
+
+
 def notes(ranking: Ranking) -> list[str]:
     """What the reader must know to cite this ranking: the lines printed under its table."""
     lines = []
+    short = [row for row in ranking.rows if row.short_of_seeds]
+    if short:
+        lines.append(f"note: '!' in seeds: {ranking.metric} is a mean over the seeds where it had a value (NaN on the "
+                     f"others), so {len(short)} row(s) rank on fewer seeds than they ran and are less certain than "
+                     "the table looks.")
     if ranking.texts_only:
         lines.append(f"note: intervals and ties cover text sampling only, not the spread over seeds (fewer than "
                      f"{SEED_LEVEL_MINIMUM} seeds); the verdict is provisional: run {SEED_LEVEL_MINIMUM} or more seeds.")

@@ -356,6 +356,51 @@ def test_seed_standard_deviation_is_the_sample_one_and_undefined_for_one_seed():
     assert math.isnan(single.stds["silhouette"]) and single.means["silhouette"] == 0.1
 
 
+def _configurations(tmp_path, model_dir, pipelines: str, seeds: str = "[0, 1, 2]"):
+    """Real planned configurations (and the sweep and corpora) of a small labelled sweep, without running it."""
+    from harness.plan import configurations
+    from harness.runner import ConfigurationResult, TrialResult, loaded_corpora, prepared_sweep
+
+    prepared = prepared_sweep(write_sweep(tmp_path, f"""
+name: rows
+datasets: [{{source: synthetic, n_texts: 120, seed: 3}}]
+models: [{model_dir}]
+grid:
+  pooling: [mean]
+{pipelines}
+  seeds: {seeds}
+rank_by: silhouette
+"""))
+    results = [ConfigurationResult(trials=group, seeds=[TrialResult(t, "FINISHED") for t in group])
+               for group in configurations(prepared.trials)]
+    return results, prepared.sweep, loaded_corpora(prepared)
+
+
+def test_a_mean_over_fewer_valid_seeds_is_counted_and_flagged(tmp_path, tiny_model_dir):
+    # Silhouette NaN on two of three seeds: the configuration's mean rests on one seed. Its run must say so
+    # (silhouette_valid_seeds = 1 while n_seeds = 3), and where that mean tops the ranking the row carries a flag.
+    labels = RNG.integers(0, 3, 60)
+    thin = configuration_evidence([{"silhouette": float("nan")}, {"silhouette": float("nan")}, {"silhouette": 0.6}],
+                                  [labels] * 3, labels, resamples=0, seed=0)
+    full = configuration_evidence([{"silhouette": 0.5}, {"silhouette": 0.52}, {"silhouette": 0.48}],
+                                  [labels] * 3, labels, resamples=0, seed=0)
+    assert thin.metrics()["silhouette"] == 0.6 and thin.metrics()["silhouette_valid_seeds"] == 1.0
+    assert thin.metrics()["n_seeds"] == 3.0 and full.metrics()["silhouette_valid_seeds"] == 3.0
+
+    from harness.leaderboard import rank_configurations, table
+
+    results, sweep, corpora = _configurations(tmp_path, tiny_model_dir, """  reduce: [{method: pca, n_components: 4}]
+  cluster: [{method: kmeans, k: 3}, {method: kmeans, k: 4}]""")
+    for result, found in zip(results, (full, thin)):
+        result.metrics, result.tags = found.metrics(), found.tags()
+    ranking = rank_configurations(results, sweep, corpora)["town_requests"]
+    assert [row.configuration for row in ranking.rows] == [results[1], results[0]]  # ranked by the mean, as it is
+    assert ranking.rows[0].short_of_seeds and not ranking.rows[1].short_of_seeds
+    text = table(ranking)
+    assert "1/3!" in text.splitlines()[3] and "3/3" in text.splitlines()[4]
+    assert "rank on fewer seeds than they ran" in text
+
+
 def test_length_leakage_of_planted_and_absent_length():
     lengths = RNG.integers(3, 60, 500)
     planted = np.column_stack([np.log(lengths) + RNG.normal(0, 0.05, 500), RNG.normal(size=(500, 10))])
