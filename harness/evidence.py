@@ -29,7 +29,10 @@ from typing import Iterator
 
 import numpy as np
 
+from harness._settings import Settings
+from harness.cluster import SEEDED_CLUSTERERS
 from harness.metrics import PairCodes, adjusted_rand, scores_from_tables
+from harness.reduce import SEEDED_REDUCERS
 
 BOOTSTRAPPED = ("ari", "ami", "nmi", "v_measure")
 ROWS_PER_DRAW = 64  # resamples per block; an even number keeps the random stream equal to one (B, n) draw
@@ -113,6 +116,17 @@ def tied_with(leader: np.ndarray, other: np.ndarray, level: float = 0.95) -> tup
     return bool(low <= 0.0 <= high), (low, high)
 
 
+def seed_free(reducer: Settings, clusterer: Settings) -> bool:
+    """Whether no stage of a pipeline takes the trial's seed, so every seed gives the same clustering by construction.
+
+    Decided from the stage registries: reducers and clusterers declare whether they use the seed
+    (SEEDED_REDUCERS, SEEDED_CLUSTERERS, which also decide whether the seed enters their stage keys); transform
+    steps receive no seed at all (their registry signature has none), and the encode stage never sees the trial's
+    seed. tests/test_evidence.py checks this over every registered reducer x clusterer by fitting each with two seeds.
+    """
+    return reducer.method not in SEEDED_REDUCERS and clusterer.method not in SEEDED_CLUSTERERS
+
+
 def stability_ari(seed_clusterings: list[np.ndarray]) -> float:
     """Mean ARI over all pairs of seeds' clusterings: how reproducible the clustering is. NaN for one seed."""
     pairs = list(combinations(seed_clusterings, 2))
@@ -134,7 +148,7 @@ class ConfigurationEvidence:
     valid_seeds: dict[str, int] = field(default_factory=dict)  # per score: seeds that gave a finite value
     intervals: dict[str, tuple[float, float]] = field(default_factory=dict)
     distributions: dict[str, np.ndarray] = field(default_factory=dict)
-    stability: float = float("nan")
+    stability: float | None = float("nan")  # None: not applicable (seed-free pipeline), so not logged
 
     @property
     def scope(self) -> str | None:
@@ -147,13 +161,17 @@ class ConfigurationEvidence:
         flat.update({f"{k}_valid_seeds": float(v) for k, v in self.valid_seeds.items()})
         for name, (low, high) in self.intervals.items():
             flat[f"{name}_ci_low"], flat[f"{name}_ci_high"] = low, high
-        flat["stability_ari"] = self.stability
+        if self.stability is not None:
+            flat["stability_ari"] = self.stability
         flat["n_seeds"] = float(self.n_seeds)
         return flat
 
     def tags(self) -> dict[str, str]:
-        """The configuration run's tags: what the intervals cover, and a provisional verdict below 3 seeds."""
+        """The configuration run's tags: stability not applicable (seed-free), what the intervals cover, and a
+        provisional verdict below 3 seeds."""
         tags = {}
+        if self.stability is None:
+            tags[STABILITY_TAG] = "not_applicable"
         if self.scope is not None:
             tags[SCOPE_TAG] = self.scope
         if self.n_seeds < SEED_LEVEL_MINIMUM:
@@ -162,9 +180,13 @@ class ConfigurationEvidence:
 
 
 def configuration_evidence(seed_scores: list[dict[str, float]], seed_clusterings: list[np.ndarray],
-                           labels_true: np.ndarray | None, *, resamples: int, seed: int,
-                           level: float = 0.95) -> ConfigurationEvidence:
-    """Mean and sample standard deviation over seeds of every score, bootstrap intervals, and seed stability."""
+                           labels_true: np.ndarray | None, *, resamples: int, seed: int, level: float = 0.95,
+                           seed_free: bool = False) -> ConfigurationEvidence:
+    """Mean and sample standard deviation over seeds of every score, bootstrap intervals, and seed stability.
+
+    For a seed-free pipeline (``seed_free``) stability is not applicable: its seeds agree by construction, and a
+    1.0 would let a deterministic pipeline win a stability ranking for free.
+    """
     names = sorted(set().union(*seed_scores)) if seed_scores else []
     values = {name: np.array([s.get(name, np.nan) for s in seed_scores], dtype=float) for name in names}
     with np.errstate(all="ignore"):
@@ -176,7 +198,7 @@ def configuration_evidence(seed_scores: list[dict[str, float]], seed_clusterings
     # A mean over fewer seeds than were run (NaN on the others) must not pass for a mean over all of them.
     valid = {name: int(np.count_nonzero(np.isfinite(v))) for name, v in values.items()}
     evidence = ConfigurationEvidence(means=means, stds=stds, n_seeds=len(seed_clusterings), valid_seeds=valid,
-                                     stability=stability_ari(seed_clusterings))
+                                     stability=None if seed_free else stability_ari(seed_clusterings))
     if labels_true is not None and resamples > 0:
         evidence.distributions = bootstrap_distributions(labels_true, seed_clusterings, resamples=resamples, seed=seed)
         evidence.intervals = {name: percentile_interval(d, level) for name, d in evidence.distributions.items()}

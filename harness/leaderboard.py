@@ -11,6 +11,7 @@ from harness.evidence import (
     SCOPE_TAG,
     SCOPE_TEXTS_ONLY,
     SEED_LEVEL_MINIMUM,
+    STABILITY_TAG,
     VERDICT_TAG,
     tied_with,
 )
@@ -97,6 +98,10 @@ def rank_configurations(configurations: list, sweep, corpora: dict) -> dict[str,
     return rankings
 
 
+def _stability_not_applicable(configuration) -> bool:
+    return configuration.tags.get(STABILITY_TAG) == "not_applicable"
+
+
 def _number(value: Any, digits: int = 3) -> str:
     if value is None or (isinstance(value, float) and math.isnan(value)):
         return "-"
@@ -114,12 +119,14 @@ def table(ranking: Ranking, limit: int | None = None) -> str:
         if not row.configuration.complete:
             cells.append([str(row.rank), row.configuration.name, "failed"] + ["-"] * (len(header) - 3))
             continue
+        not_applicable = _stability_not_applicable(row.configuration)
         cells.append([
-            str(row.rank), row.configuration.name, _number(row.value),
+            str(row.rank), row.configuration.name,
+            "n/a" if not_applicable and ranking.metric == "stability_ari" else _number(row.value),
             f"[{_number(row.interval[0])}, {_number(row.interval[1])}]" if row.interval else "-",
             "leader" if row.rank == 1 else ("tied" if row.tied else ("" if row.tied is not None else "-")),
             _seeds(row),
-            _number(metrics.get("stability_ari")), _number(metrics.get("length_confound_index")),
+            "n/a" if not_applicable else _number(metrics.get("stability_ari")), _number(metrics.get("length_confound_index")),
             _number(metrics.get("length_leakage_r2")), _number(metrics.get("coverage")), _number(metrics.get("n_clusters"), 1),
         ])
     widths = [max(len(h), *(len(c[i]) for c in cells)) if cells else len(h) for i, h in enumerate(header)]
@@ -140,6 +147,9 @@ def _seeds(row: RankedRow) -> str:
 def notes(ranking: Ranking) -> list[str]:
     """What the reader must know to cite this ranking: the lines printed under its table."""
     lines = []
+    if any(_stability_not_applicable(row.configuration) for row in ranking.rows):
+        lines.append("note: stability_ari n/a: no stage of that pipeline uses the seed (e.g. PCA + HDBSCAN), so its "
+                     "seeds agree by construction; it is not ranked on stability.")
     short = [row for row in ranking.rows if row.short_of_seeds]
     if short:
         lines.append(f"note: '!' in seeds: {ranking.metric} is a mean over the seeds where it had a value (NaN on the "

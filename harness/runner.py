@@ -252,7 +252,7 @@ def _trial_tags(trial: Trial, corpus: Corpus) -> dict[str, str]:
 def _run_configuration(tracker, executor, configuration: list[Trial], done: dict, corpus: Corpus, params: dict,
                        evidence: EvidenceSettings, parent: str, on_trial) -> ConfigurationResult:
     """The seed runs of one configuration under one configuration run, then the evidence over seeds."""
-    from harness.evidence import configuration_evidence
+    from harness.evidence import configuration_evidence, seed_free
 
     first = configuration[0]
     config_params = {k: v for k, v in params[first.key].items() if k != "seed"}
@@ -291,7 +291,7 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
         if result.complete:
             found = configuration_evidence([r.scores for r in result.seeds], [executor.clustered(t) for t in configuration],
                                            corpus.labels, resamples=evidence.resamples, seed=evidence.seed,
-                                           level=evidence.level)
+                                           level=evidence.level, seed_free=seed_free(first.reducer, first.clusterer))
             result.metrics, result.distributions, result.tags = found.metrics(), found.distributions, found.tags()
             tracker.log_results(config_run, result.metrics, tags=result.tags)
             tracker.end(config_run, "FINISHED")

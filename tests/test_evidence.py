@@ -21,6 +21,7 @@ from harness.evidence import (
     configuration_evidence,
     percentile_interval,
     resample_indices,
+    seed_free,
     seed_weights,
     stability_ari,
     tied_with,
@@ -399,6 +400,95 @@ def test_a_mean_over_fewer_valid_seeds_is_counted_and_flagged(tmp_path, tiny_mod
     text = table(ranking)
     assert "1/3!" in text.splitlines()[3] and "3/3" in text.splitlines()[4]
     assert "rank on fewer seeds than they ran" in text
+
+
+def _registered_pipelines():
+    """Every registered reducer x clusterer, each with its default settings."""
+    from pydantic import TypeAdapter
+
+    from harness.cluster import CLUSTERERS, ClustererSettings
+    from harness.reduce import REDUCERS, ReducerSettings
+
+    reducers = [TypeAdapter(ReducerSettings).validate_python({"method": name}) for name in sorted(REDUCERS)]
+    clusterers = [TypeAdapter(ClustererSettings).validate_python({"method": name}) for name in sorted(CLUSTERERS)]
+    return [(r, c) for r in reducers for c in clusterers]
+
+
+@pytest.mark.parametrize("reducer, clusterer", _registered_pipelines(),
+                         ids=lambda s: s.method if hasattr(s, "method") else str(s))
+def test_seed_free_is_true_exactly_where_seeds_cannot_change_the_clustering(reducer, clusterer):
+    # The rule behind "stability not applicable", checked by fitting, not by reading the registry back: for every
+    # registered reducer x clusterer, a pipeline declared seed-free gives identical reductions and labels for every
+    # seed, and a pipeline declared seeded has a stage whose output the seed does change (on structureless points,
+    # where a seeded method has many equally good answers).
+    from harness.cluster import cluster_labels
+    from harness.reduce import reduced
+
+    points = np.random.default_rng(0).normal(size=(150, 60)).astype(np.float32)
+    outputs = {}
+    for seed in range(4):
+        vectors = reduced(points, reducer, seed)
+        outputs[seed] = (vectors, cluster_labels(vectors, clusterer, seed, 3))
+    same_reduction = all(np.array_equal(outputs[0][0], outputs[s][0]) for s in outputs)
+    same_labels = all(np.array_equal(outputs[0][1], outputs[s][1]) for s in outputs)
+    if seed_free(reducer, clusterer):
+        assert same_reduction and same_labels
+    else:
+        fixed = outputs[0][0]  # the clusterer alone, on one reduction
+        clusterer_varies = len({cluster_labels(fixed, clusterer, s, 3).tobytes() for s in range(4)}) > 1
+        assert not same_reduction or clusterer_varies
+
+
+def test_transform_steps_take_no_seed():
+    # seed_free looks at reducers and clusterers only: transform steps are called as (vectors, lengths, settings).
+    import inspect
+
+    from harness.transforms import TRANSFORMS
+
+    for name, step in TRANSFORMS.items():
+        assert "seed" not in inspect.signature(step).parameters and len(inspect.signature(step).parameters) == 3, name
+
+
+def test_seed_free_agrees_with_the_planner_stage_keys(tmp_path, tiny_model_dir):
+    # The planner shares a seed-free pipeline's stages across seeds (the seed leaves its keys); the stability rule must
+    # call exactly those pipelines seed-free, for every registered reducer x clusterer.
+    import yaml
+
+    pipelines = _registered_pipelines()
+    grid = yaml.safe_dump({"reduce": [r.as_params() for r in {r.method: r for r, _ in pipelines}.values()],
+                           "cluster": [c.as_params() for c in {c.method: c for _, c in pipelines}.values()]})
+    results, _, _ = _configurations(tmp_path, tiny_model_dir, "\n".join("  " + line for line in grid.splitlines()), "[0, 1]")
+    assert len(results) == len(pipelines)
+    for result in results:
+        first, second = result.trials
+        shared = first.stages["cluster"].key == second.stages["cluster"].key
+        assert shared == seed_free(first.reducer, first.clusterer), first.config_name
+
+
+def test_a_seed_free_pipeline_cannot_win_a_stability_ranking(tmp_path, tiny_model_dir):
+    # PCA + HDBSCAN gives one clustering for every seed: its stability_ari would be 1.0 by construction. It is not
+    # logged (tag harness.stability = not_applicable), and a ranking by stability puts the seeded pipeline first,
+    # with n/a shown for the other.
+    labels = RNG.integers(0, 3, 90)
+    wobbly = [_noisy(labels, 0.2, np.random.default_rng(i)) for i in range(3)]
+    from harness.leaderboard import rank_configurations, table
+
+    results, sweep, corpora = _configurations(tmp_path, tiny_model_dir, """  reduce: [{method: pca, n_components: 4}]
+  cluster: [{method: hdbscan, min_cluster_size: 5}, {method: kmeans, k: 3}]""")
+    sweep = sweep.model_copy(update={"rank_by": "stability_ari"})
+    for result in results:
+        free = seed_free(result.trials[0].reducer, result.trials[0].clusterer)
+        found = configuration_evidence([{"ari": 0.5}] * 3, [labels] * 3 if free else wobbly, labels, resamples=0,
+                                       seed=0, seed_free=free)
+        result.metrics, result.tags = found.metrics(), found.tags()
+    hdbscan, kmeans = results
+    assert "stability_ari" not in hdbscan.metrics and hdbscan.tags == {"harness.stability": "not_applicable"}
+    assert 0 < kmeans.metrics["stability_ari"] < 1 and "harness.stability" not in kmeans.tags
+    ranking = rank_configurations(results, sweep, corpora)["town_requests"]
+    assert ranking.winner.configuration is kmeans
+    lines = table(ranking).splitlines()
+    assert "hdbscan" in lines[4] and lines[4].split()[2] == "n/a"
+    assert any(line.startswith("note: stability_ari n/a") for line in lines)
 
 
 def test_length_leakage_of_planted_and_absent_length():
