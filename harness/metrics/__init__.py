@@ -15,6 +15,7 @@ from harness.metrics._expected_mi import expected_mutual_info
 from harness.metrics._internal import cluster_size_entropy, density_validity, silhouette_cosine
 from harness.metrics._length import (
     length_confound_index,
+    length_epsilon_squared,
     length_eta2_pvalue,
     length_eta_squared,
     length_leakage_r2,
@@ -39,6 +40,7 @@ __all__ = sorted(
         "external_scores",
         "homogeneity_completeness_v",
         "length_confound_index",
+        "length_epsilon_squared",
         "length_eta_squared",
         "length_scores",
         "noise_aware_scores",
