@@ -6,6 +6,7 @@ import math
 from dataclasses import dataclass, field
 from typing import Any
 
+from harness.describe import SHORT_TEXT_WORDS, coherence_is_meaningful, median_words
 from harness.evidence import (
     BOOTSTRAPPED,
     SCOPE_TAG,
@@ -16,6 +17,8 @@ from harness.evidence import (
     tied_with,
 )
 from harness.sweep import DEFAULT_LABEL_FREE_METRIC, DEFAULT_LABELLED_METRIC
+
+COHERENCE_TAG, MEDIAN_WORDS_TAG = "harness.coherence", "harness.median_words"
 
 
 @dataclass
@@ -41,10 +44,26 @@ class Ranking:
     metric: str
     rows: list[RankedRow] = field(default_factory=list)
     level: float = 0.95
+    median_words: float | None = None  # words per text in the dataset (for the coherence caveat)
 
     @property
     def winner(self) -> RankedRow | None:
         return self.rows[0] if self.rows else None
+
+    @property
+    def short_texts(self) -> bool:
+        """Whether the texts are too short for NPMI to read as a coherence level."""
+        return self.median_words is not None and not coherence_is_meaningful(self.median_words)
+
+    @property
+    def tags(self) -> dict[str, str]:
+        """Tags for each configuration run of this dataset: its median length, and whether coherence is meaningful."""
+        if self.median_words is None:
+            return {}
+        tags = {MEDIAN_WORDS_TAG: f"{self.median_words:g}"}
+        if self.short_texts:
+            tags[COHERENCE_TAG] = "not_meaningful"
+        return tags
 
     @property
     def provisional(self) -> bool:
@@ -76,7 +95,8 @@ def rank_configurations(configurations: list, sweep, corpora: dict) -> dict[str,
         dataset = configuration.dataset
         if dataset not in rankings:
             metric = ranking_metric(sweep.rank_by, corpora[dataset].labels is not None)
-            rankings[dataset] = Ranking(dataset, metric, level=sweep.evidence.level)
+            rankings[dataset] = Ranking(dataset, metric, level=sweep.evidence.level,
+                                        median_words=median_words(corpora[dataset].texts))
         metric = rankings[dataset].metric
         row = RankedRow(0, configuration, _value(configuration, metric))
         valid, n_seeds = configuration.metrics.get(f"{metric}_valid_seeds"), configuration.metrics.get("n_seeds")
@@ -163,6 +183,11 @@ def notes(ranking: Ranking) -> list[str]:
                      f"{SEED_LEVEL_MINIMUM} or more seeds.")
     elif any(row.interval for row in ranking.rows):
         lines.append("note: intervals and ties resample seeds and texts (two-level bootstrap).")
+    if ranking.short_texts:
+        lines.append(f"note: npmi is not meaningful as a coherence level here: texts have a median of "
+                     f"{ranking.median_words:g} words (< {SHORT_TEXT_WORDS}), and on texts this short two words of one "
+                     "topic rarely share a text, so even the gold topics score below 0; compare npmi only between "
+                     "configurations of this dataset.")
     return lines
 
 

@@ -359,7 +359,7 @@ def execute_sweep(
         for ranking in rankings.values():
             for row in ranking.rows:
                 tracker.log_results(row.configuration.run_id, {"rank": row.rank, "tied_with_leader": float(row.tied)}
-                                    if row.tied is not None else {"rank": row.rank})
+                                    if row.tied is not None else {"rank": row.rank}, tags=ranking.tags)
         tracker.log_text(parent, "\n\n".join(leaderboard_table(r) for r in rankings.values()), "leaderboard.txt")
         trial_results = [r for c in results for r in c.seeds]
         tracker.log_results(parent, {"n_finished": sum(r.status == "FINISHED" for r in trial_results),

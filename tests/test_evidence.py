@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import os
 import statistics
 
 import numpy as np
@@ -14,7 +15,17 @@ from scipy import sparse, stats
 from sklearn import metrics as skm
 
 from harness.cli import main
-from harness.describe import TermCounts, cluster_descriptions, log_odds_z, npmi, npmi_coherence
+from harness.describe import (
+    SHORT_TEXT_WORDS,
+    TermCounts,
+    cluster_descriptions,
+    coherence_is_meaningful,
+    log_odds_z,
+    median_words,
+    npmi,
+    npmi_coherence,
+    term_counts,
+)
 from harness.evidence import (
     SEED_LEVEL_MINIMUM,
     bootstrap_distributions,
@@ -228,6 +239,47 @@ def test_cluster_descriptions_name_each_cluster_by_its_own_terms():
     assert set(rows[0]["top_terms"].split(", ")) == {"asphalt", "pothole", "road"}
     assert set(rows[1]["top_terms"].split(", ")) == {"bin", "recycling", "rubbish"}
     assert rows[0]["npmi"] == pytest.approx(1.0) and len(texts) == 10  # always together -> NPMI 1
+
+
+MIRROR = os.environ.get("HARNESS_DATA_DIR")
+
+
+@pytest.mark.skipif(not MIRROR, reason="HARNESS_DATA_DIR is not set: no offline copy of the public corpora")
+@pytest.mark.parametrize("file_name, short", [("stackoverflow_titles.parquet", True), ("search_snippets.parquet", True),
+                                              ("twenty_newsgroups.parquet", False)])
+def test_npmi_of_the_gold_topics_is_negative_on_short_texts(file_name, short, record_measurement):
+    # Measured, not assumed: on one-line texts (median under SHORT_TEXT_WORDS words) even the gold topics score NPMI
+    # below 0 from document co-occurrence, so the number cannot be read as a coherence level there; on long posts
+    # the gold topics score above 0. A random partition scores far lower in both (the ordering still holds).
+    from harness.scoring import described_clusters
+
+    path = os.path.join(MIRROR, file_name)
+    if not os.path.exists(path):
+        pytest.skip(f"{file_name} is not in HARNESS_DATA_DIR")
+    frame = pd.read_parquet(path).sample(n=2000, random_state=0)
+    texts, labels = frame.text.tolist(), frame.label.to_numpy()
+    median = median_words(texts)
+    terms = term_counts(texts)
+    gold = described_clusters(terms, labels, np.ones(len(texts)), top=10)[1]
+    shuffled = described_clusters(terms, np.random.default_rng(0).permutation(labels), np.ones(len(texts)), top=10)[1]
+    record_measurement(f"NPMI {file_name}: median {median:g} words, gold topics {gold:+.3f}, random partition "
+                       f"{shuffled:+.3f}")
+    assert coherence_is_meaningful(median) is (not short)
+    assert (gold < 0) is short and gold > shuffled + 0.2
+
+
+def test_short_texts_get_a_coherence_note_in_the_leaderboard(tmp_path, tiny_model_dir):
+    from harness.leaderboard import rank_configurations, table
+
+    results, sweep, corpora = _configurations(tmp_path, tiny_model_dir, """  reduce: [{method: pca, n_components: 4}]
+  cluster: [{method: kmeans, k: 3}]""")
+    labels = corpora["town_requests"].labels
+    found = configuration_evidence([{"npmi_mean": -0.5}] * 3, [labels] * 3, labels, resamples=0, seed=0)
+    results[0].metrics, results[0].tags = found.metrics(), found.tags()
+    ranking = rank_configurations(results, sweep, corpora)["town_requests"]
+    assert median_words(corpora["town_requests"].texts) < SHORT_TEXT_WORDS  # the synthetic requests are short
+    assert ranking.tags == {"harness.median_words": f"{ranking.median_words:g}", "harness.coherence": "not_meaningful"}
+    assert "note: npmi is not meaningful as a coherence level here" in table(ranking)
 
 
 def test_ties_for_clusterings_within_noise_and_none_for_a_clearly_better_one():
@@ -533,3 +585,5 @@ grid:
     assert all("stability_ari" in c.data.metrics for c in configs)
     assert all(c.data.tags["harness.verdict"] == "provisional" and "harness.interval_scope" not in c.data.tags
                for c in configs)  # no labels, no intervals: nothing to scope
+    assert all(c.data.tags["harness.coherence"] == "not_meaningful" and float(c.data.tags["harness.median_words"]) < 40
+               for c in configs)  # one-line requests: NPMI is not a coherence level
