@@ -47,7 +47,8 @@ def interval_scope(n_seeds: int) -> str:
 
 
 def resample_blocks(n: int, resamples: int, seed: int) -> Iterator[np.ndarray]:
-    """Blocks of bootstrap resamples (rows x n text indices), in the order ``rng.integers(0, n, (resamples, n))`` gives them.
+    """Blocks of bootstrap resamples (rows x n text indices), in the order ``rng.integers(0, n, (resamples, n))``
+    gives them.
 
     That is the draw scipy.stats.bootstrap makes with the same generator, so intervals can be checked against it.
     """

@@ -145,9 +145,9 @@ def table(ranking: Ranking, limit: int | None = None) -> str:
             "n/a" if not_applicable and ranking.metric == "stability_ari" else _number(row.value),
             f"[{_number(row.interval[0])}, {_number(row.interval[1])}]" if row.interval else "-",
             "leader" if row.rank == 1 else ("tied" if row.tied else ("" if row.tied is not None else "-")),
-            _seeds(row),
-            "n/a" if not_applicable else _number(metrics.get("stability_ari")), _number(metrics.get("length_confound_index")),
-            _number(metrics.get("length_leakage_r2")), _number(metrics.get("coverage")), _number(metrics.get("n_clusters"), 1),
+            _seeds(row), "n/a" if not_applicable else _number(metrics.get("stability_ari")),
+            _number(metrics.get("length_confound_index")), _number(metrics.get("length_leakage_r2")),
+            _number(metrics.get("coverage")), _number(metrics.get("n_clusters"), 1),
         ])
     widths = [max(len(h), *(len(c[i]) for c in cells)) if cells else len(h) for i, h in enumerate(header)]
     verdict = " - provisional verdict" if ranking.provisional else ""
@@ -177,7 +177,8 @@ def notes(ranking: Ranking) -> list[str]:
                      "the table looks.")
     if ranking.texts_only:
         lines.append(f"note: intervals and ties cover text sampling only, not the spread over seeds (fewer than "
-                     f"{SEED_LEVEL_MINIMUM} seeds); the verdict is provisional: run {SEED_LEVEL_MINIMUM} or more seeds.")
+                     f"{SEED_LEVEL_MINIMUM} seeds); the verdict is provisional: run {SEED_LEVEL_MINIMUM} or more "
+                     "seeds.")
     elif ranking.provisional:
         lines.append(f"note: fewer than {SEED_LEVEL_MINIMUM} seeds; the verdict is provisional: run "
                      f"{SEED_LEVEL_MINIMUM} or more seeds.")

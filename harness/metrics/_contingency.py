@@ -52,7 +52,8 @@ def scores_from_tables(tables: np.ndarray) -> dict[str, np.ndarray]:
     """
     tables = np.asarray(tables, dtype=np.float64)
     if tables.ndim != 3:
-        raise ValueError(f"The 'tables' parameter must be 3-D (tables, labels, clusters). Got shape {tables.shape} instead.")
+        raise ValueError(f"The 'tables' parameter must be 3-D (tables, labels, clusters). "
+                         f"Got shape {tables.shape} instead.")
     n = tables.sum(axis=(1, 2))
     rows, cols = tables.sum(axis=2), tables.sum(axis=1)
     n_rows, n_cols = (rows > 0).sum(axis=1), (cols > 0).sum(axis=1)
