@@ -5,16 +5,42 @@ Distinctive terms: the weighted log-odds ratio with an informative Dirichlet pri
 against the rest of the corpus, the prior being the term counts of the whole
 corpus. Coherence: the mean normalised pointwise mutual information (Bouma, 2009)
 of every pair of a cluster's top terms, from document co-occurrence in the corpus.
+
+On short texts document co-occurrence says little: two words of one topic rarely
+share a one-line text, so NPMI is negative even for the gold topics. Measured with
+this module on 2,000-text samples (top 10 terms, clusters = gold labels), median
+words per text -> NPMI of the gold topics (of a random partition): Stack Overflow
+titles 7 -> -0.41 (-0.89); biomedical titles 12 -> -0.17 (-0.86); search snippets
+18 -> -0.27 (-0.89); AG News 37 -> +0.03 (-0.91); 20 Newsgroups 180 -> +0.21
+(-0.30); AG News cut to its first 10 / 20 / 30 words -> -0.58 / -0.32 / -0.18.
+Counting in a sliding window over the corpus would not help: a window longer than
+a text spans unrelated neighbours, one shorter sees even less. So below
+SHORT_TEXT_WORDS the value is not read as a coherence level (the leaderboard and
+the run's tags say so); it still orders partitions of the same corpus (gold far
+above random in every row above).
 """
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 from itertools import combinations
 
 import numpy as np
 
 NOISE = -1
+WORDS = re.compile(r"(?u)\b\w\w+\b")  # scikit-learn CountVectorizer's default token pattern: what terms are made of
+SHORT_TEXT_WORDS = 40  # median words per text below which NPMI is not a coherence level (see the module docstring)
+
+
+def median_words(texts: list[str]) -> float:
+    """Median number of words per text, counted as the term vocabulary counts them."""
+    return float(np.median([len(WORDS.findall(text)) for text in texts])) if texts else 0.0
+
+
+def coherence_is_meaningful(median: float) -> bool:
+    """Whether NPMI from document co-occurrence can be read as a coherence level on texts of this median length."""
+    return median >= SHORT_TEXT_WORDS
 
 
 @dataclass(frozen=True)

@@ -63,6 +63,7 @@ class ConfigurationResult:
     seeds: list[TrialResult]
     metrics: dict[str, float] = field(default_factory=dict)
     distributions: dict[str, np.ndarray] = field(default_factory=dict, repr=False)
+    tags: dict[str, str] = field(default_factory=dict)
     run_id: Optional[str] = None
     descriptions: list[dict] = field(default_factory=list, repr=False)
 
@@ -251,7 +252,7 @@ def _trial_tags(trial: Trial, corpus: Corpus) -> dict[str, str]:
 def _run_configuration(tracker, executor, configuration: list[Trial], done: dict, corpus: Corpus, params: dict,
                        evidence: EvidenceSettings, parent: str, on_trial) -> ConfigurationResult:
     """The seed runs of one configuration under one configuration run, then the evidence over seeds."""
-    from harness.evidence import configuration_evidence
+    from harness.evidence import configuration_evidence, seed_free
 
     first = configuration[0]
     config_params = {k: v for k, v in params[first.key].items() if k != "seed"}
@@ -290,10 +291,9 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
         if result.complete:
             found = configuration_evidence([r.scores for r in result.seeds], [executor.clustered(t) for t in configuration],
                                            corpus.labels, resamples=evidence.resamples, seed=evidence.seed,
-                                           level=evidence.level)
-            result.metrics, result.distributions = found.metrics(), found.distributions
-            result.metrics["n_seeds"] = float(len(configuration))
-            tracker.log_results(config_run, result.metrics)
+                                           level=evidence.level, seed_free=seed_free(first.reducer, first.clusterer))
+            result.metrics, result.distributions, result.tags = found.metrics(), found.distributions, found.tags()
+            tracker.log_results(config_run, result.metrics, tags=result.tags)
             tracker.end(config_run, "FINISHED")
         else:
             tracker.end(config_run, "FAILED", error="a seed run failed")
@@ -359,7 +359,7 @@ def execute_sweep(
         for ranking in rankings.values():
             for row in ranking.rows:
                 tracker.log_results(row.configuration.run_id, {"rank": row.rank, "tied_with_leader": float(row.tied)}
-                                    if row.tied is not None else {"rank": row.rank})
+                                    if row.tied is not None else {"rank": row.rank}, tags=ranking.tags)
         tracker.log_text(parent, "\n\n".join(leaderboard_table(r) for r in rankings.values()), "leaderboard.txt")
         trial_results = [r for c in results for r in c.seeds]
         tracker.log_results(parent, {"n_finished": sum(r.status == "FINISHED" for r in trial_results),

@@ -79,3 +79,16 @@ def test_empty_texts_are_refused_with_a_count(tmp_path):
     pd.DataFrame({"text": ["a", "", "  ", "b"], "label": ["x", "y", "x", "y"]}).to_csv(path, index=False)
     with pytest.raises(DataError, match="2 of 4 rows have empty text"):
         loaded_corpus(FileSource(source="file", path=path))
+
+
+@pytest.mark.parametrize("suffix", ["csv", "parquet", "jsonl"])
+def test_empty_labels_are_refused_with_a_count(tmp_path, suffix):
+    # An empty cell, a blank one and a null: in a CSV the first two read as "" and would become a class named "";
+    # in Parquet and JSON lines the null reads as missing. Each is counted and refused, as empty texts are.
+    frame = pd.DataFrame({"text": ["lamp out", "bins", "noise", "pothole", "bench"],
+                          "label": ["lights", "", "  ", None, "parks"]})
+    path = tmp_path / f"t.{suffix}"
+    {"csv": lambda: frame.to_csv(path, index=False), "parquet": lambda: frame.to_parquet(path),
+     "jsonl": lambda: path.write_text("\n".join(json.dumps(r) for r in frame.to_dict("records")))}[suffix]()
+    with pytest.raises(DataError, match=r"label_column 'label': 3 of 5 rows have an empty label \(first at row 1\)"):
+        loaded_corpus(FileSource(source="file", path=path))

@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import math
+import os
+import statistics
 
 import numpy as np
 import pandas as pd
@@ -13,25 +15,42 @@ from scipy import sparse, stats
 from sklearn import metrics as skm
 
 from harness.cli import main
-from harness.describe import TermCounts, cluster_descriptions, log_odds_z, npmi, npmi_coherence
+from harness.describe import (
+    SHORT_TEXT_WORDS,
+    TermCounts,
+    cluster_descriptions,
+    coherence_is_meaningful,
+    log_odds_z,
+    median_words,
+    npmi,
+    npmi_coherence,
+    term_counts,
+)
 from harness.evidence import (
+    SEED_LEVEL_MINIMUM,
     bootstrap_distributions,
     configuration_evidence,
     percentile_interval,
+    resample_indices,
+    seed_free,
+    seed_weights,
     stability_ari,
     tied_with,
 )
 from harness.metrics import (
     PairCodes,
     density_validity,
+    expected_mutual_info,
     length_eta2_pvalue,
     length_eta_squared,
     length_leakage_r2,
     scores_from_table,
+    scores_from_tables,
     silhouette_cosine,
 )
 
 from conftest import configuration_runs, finished_runs, write_sweep
+import reference_bootstrap
 
 RNG = np.random.default_rng(11)
 
@@ -72,6 +91,87 @@ def test_scores_from_a_reweighted_table_equal_scikit_learn_on_the_resampled_arra
                  "nmi": skm.normalized_mutual_info_score(a, b), "v_measure": skm.v_measure_score(a, b)}
     for name, value in reference.items():
         assert ours[name] == pytest.approx(value, abs=1e-9), name
+
+
+BATCH_CASES = [  # (texts, gold classes, cluster ids drawn from -1 .. clusters-1, share kept equal to the label)
+    (50, 3, 2, 0.5), (300, 4, 6, 0.7), (2000, 6, 9, 0.6), (3000, 12, 20, 0.5), (800, 2, 40, 0.2), (400, 5, 1, 0.0),
+]
+
+
+@pytest.mark.parametrize("n, classes, clusters, kept", BATCH_CASES)
+def test_batched_scores_equal_the_per_resample_reference(n, classes, clusters, kept):
+    # Reference: the per-resample implementation of 3a07799 (tests/reference_bootstrap.py), one scores_from_table call
+    # per resample, on the same resample indices (same generator, same seed).
+    rng = np.random.default_rng(n)
+    labels = rng.integers(0, classes, n)
+    predicted = np.where(rng.random(n) < kept, labels, rng.integers(-1, clusters, n))
+    reference = reference_bootstrap.per_resample_scores(labels, predicted, 120, seed=9)
+    blocks = np.vstack(list(reference_bootstrap.resample_indices(n, 120, 9)))
+    ours = scores_from_tables(PairCodes(labels, predicted).resampled_tables(blocks))
+    for name in ("ari", "ami", "nmi", "v_measure"):
+        np.testing.assert_allclose(ours[name], reference[name], rtol=0, atol=1e-12, err_msg=name)
+    mean_of_seeds = reference_bootstrap.bootstrap_distributions(labels, [predicted, labels], resamples=70, seed=4)
+    batched = bootstrap_distributions(labels, [predicted, labels], resamples=70, seed=4)
+    for name in ("ari", "ami", "nmi", "v_measure"):
+        np.testing.assert_allclose(batched[name], mean_of_seeds[name], rtol=0, atol=1e-12, err_msg=name)
+
+
+def test_batched_scores_equal_scikit_learn_on_resampled_arrays():
+    # Reference: scikit-learn's scores on the label arrays of the first resamples, rebuilt text by text.
+    rng = np.random.default_rng(3)
+    labels = rng.integers(0, 5, 700)
+    predicted = np.where(rng.random(700) < 0.5, labels, rng.integers(-1, 8, 700))
+    blocks = next(iter(reference_bootstrap.resample_indices(700, 1, 2)))[None]
+    blocks = np.vstack([blocks, np.random.default_rng(8).integers(0, 700, (4, 700))])
+    ours = scores_from_tables(PairCodes(labels, predicted).resampled_tables(blocks))
+    for row, indices in enumerate(blocks):
+        a, b = labels[indices], predicted[indices]
+        reference = {"ari": skm.adjusted_rand_score(a, b), "ami": skm.adjusted_mutual_info_score(a, b),
+                     "nmi": skm.normalized_mutual_info_score(a, b), "v_measure": skm.v_measure_score(a, b)}
+        for name, value in reference.items():
+            assert ours[name][row] == pytest.approx(value, abs=1e-12), name
+
+
+margins = st.lists(st.lists(st.integers(0, 40), min_size=1, max_size=6), min_size=1, max_size=6).filter(
+    lambda rows: len({len(r) for r in rows}) == 1)
+
+
+@settings(max_examples=150, deadline=None)
+@given(margins)
+def test_expected_mutual_info_equals_scikit_learn(rows):
+    # Reference: sklearn.metrics.cluster._expected_mutual_info_fast.expected_mutual_information (every term of the
+    # support summed) on the table with its empty rows and columns removed, as adjusted_mutual_info_score calls it.
+    from sklearn.metrics.cluster._expected_mutual_info_fast import expected_mutual_information
+
+    table = np.array(rows, dtype=np.int64)
+    if table.sum() == 0:
+        table[0, 0] = 1
+    stripped = table[table.sum(axis=1) > 0][:, table.sum(axis=0) > 0]
+    ours = expected_mutual_info(table.sum(axis=1)[None], table.sum(axis=0)[None])[0]
+    assert ours == pytest.approx(expected_mutual_information(stripped, int(table.sum())), abs=1e-12)
+
+
+@pytest.mark.parametrize("row_sums, col_sums", [
+    ([10_000, 10_000], [19_999, 1]), ([1, 1, 19_998], [6_000, 7_000, 7_000]), ([5_000] * 4, [1_000] * 20),
+    ([2] * 10, [2] * 10), ([1] * 30, [30]), ([12_000, 8_000], [10_000, 10_000]), ([1_000] * 20, [1] * 20_000 + [0]),
+])
+def test_expected_mutual_info_on_extreme_margins(row_sums, col_sums):
+    # Reference: scikit-learn's exact sum over the whole support; large, skewed and singleton margins, where a walk
+    # from the mode that stopped too early would show.
+    from sklearn.metrics.cluster._expected_mutual_info_fast import expected_mutual_information
+
+    rows, cols = np.array(row_sums), np.array(col_sums)
+    assert rows.sum() == cols.sum()
+    table = np.zeros((rows.size, cols.size), dtype=np.int64)  # any table with these margins: EMI needs only them
+    r, c = rows.copy(), cols.copy()
+    for i in range(rows.size):
+        for j in range(cols.size):
+            table[i, j] = min(r[i], c[j])
+            r[i] -= table[i, j]
+            c[j] -= table[i, j]
+    stripped = table[table.sum(axis=1) > 0][:, table.sum(axis=0) > 0]
+    ours = expected_mutual_info(rows[None], table.sum(axis=0)[None])[0]
+    assert ours == pytest.approx(expected_mutual_information(stripped, int(rows.sum())), abs=1e-12)
 
 
 def test_permutation_pvalue_agrees_with_scipy_permutation_test():
@@ -141,6 +241,47 @@ def test_cluster_descriptions_name_each_cluster_by_its_own_terms():
     assert rows[0]["npmi"] == pytest.approx(1.0) and len(texts) == 10  # always together -> NPMI 1
 
 
+MIRROR = os.environ.get("HARNESS_DATA_DIR")
+
+
+@pytest.mark.skipif(not MIRROR, reason="HARNESS_DATA_DIR is not set: no offline copy of the public corpora")
+@pytest.mark.parametrize("file_name, short", [("stackoverflow_titles.parquet", True), ("search_snippets.parquet", True),
+                                              ("twenty_newsgroups.parquet", False)])
+def test_npmi_of_the_gold_topics_is_negative_on_short_texts(file_name, short, record_measurement):
+    # Measured, not assumed: on one-line texts (median under SHORT_TEXT_WORDS words) even the gold topics score NPMI
+    # below 0 from document co-occurrence, so the number cannot be read as a coherence level there; on long posts
+    # the gold topics score above 0. A random partition scores far lower in both (the ordering still holds).
+    from harness.scoring import described_clusters
+
+    path = os.path.join(MIRROR, file_name)
+    if not os.path.exists(path):
+        pytest.skip(f"{file_name} is not in HARNESS_DATA_DIR")
+    frame = pd.read_parquet(path).sample(n=2000, random_state=0)
+    texts, labels = frame.text.tolist(), frame.label.to_numpy()
+    median = median_words(texts)
+    terms = term_counts(texts)
+    gold = described_clusters(terms, labels, np.ones(len(texts)), top=10)[1]
+    shuffled = described_clusters(terms, np.random.default_rng(0).permutation(labels), np.ones(len(texts)), top=10)[1]
+    record_measurement(f"NPMI {file_name}: median {median:g} words, gold topics {gold:+.3f}, random partition "
+                       f"{shuffled:+.3f}")
+    assert coherence_is_meaningful(median) is (not short)
+    assert (gold < 0) is short and gold > shuffled + 0.2
+
+
+def test_short_texts_get_a_coherence_note_in_the_leaderboard(tmp_path, tiny_model_dir):
+    from harness.leaderboard import rank_configurations, table
+
+    results, sweep, corpora = _configurations(tmp_path, tiny_model_dir, """  reduce: [{method: pca, n_components: 4}]
+  cluster: [{method: kmeans, k: 3}]""")
+    labels = corpora["town_requests"].labels
+    found = configuration_evidence([{"npmi_mean": -0.5}] * 3, [labels] * 3, labels, resamples=0, seed=0)
+    results[0].metrics, results[0].tags = found.metrics(), found.tags()
+    ranking = rank_configurations(results, sweep, corpora)["town_requests"]
+    assert median_words(corpora["town_requests"].texts) < SHORT_TEXT_WORDS  # the synthetic requests are short
+    assert ranking.tags == {"harness.median_words": f"{ranking.median_words:g}", "harness.coherence": "not_meaningful"}
+    assert "note: npmi is not meaningful as a coherence level here" in table(ranking)
+
+
 def test_ties_for_clusterings_within_noise_and_none_for_a_clearly_better_one():
     labels = RNG.integers(0, 5, 600)
     good = _noisy(labels, 0.3, np.random.default_rng(1))
@@ -152,13 +293,254 @@ def test_ties_for_clusterings_within_noise_and_none_for_a_clearly_better_one():
     assert tied_with(dist["good"], dist["poor"])[0] is False
 
 
+def test_a_planted_seed_spread_widens_the_interval_and_ties_the_runner_up():
+    # Planted as in the issue's held-out corpus: one configuration whose seeds disagree (one good seed, three poor ones,
+    # ARI about 0.88 / 0.65 / 0.65 / 0.65) and one whose seeds agree (about 0.76 each), on 3,000 texts, so that the
+    # text-level spread is small. A bootstrap of texts alone calls the steady one the winner with a narrow interval and
+    # the other untied; resampling the seeds as well must widen the spread one's interval and tie the two.
+    labels = np.random.default_rng(0).integers(0, 5, 3000)
+    spread = [_noisy(labels, share, np.random.default_rng(10 + i)) for i, share in enumerate((0.07, 0.21, 0.21, 0.21))]
+    steady = [_noisy(labels, 0.14, np.random.default_rng(20 + i)) for i in range(4)]
+    seed_aris = [skm.adjusted_rand_score(labels, c) for c in spread]
+    assert max(seed_aris) - min(seed_aris) > 0.15  # the planted seed spread
+    found = {name: configuration_evidence([{"ari": skm.adjusted_rand_score(labels, c)} for c in seeds], seeds, labels,
+                                          resamples=400, seed=0)
+             for name, seeds in (("spread", spread), ("steady", steady))}
+    assert found["steady"].means["ari"] > found["spread"].means["ari"]  # the steady one leads on the mean
+    low, high = found["spread"].intervals["ari"]
+    assert high - low > 0.5 * (max(seed_aris) - min(seed_aris)), (low, high)  # the seeds' spread shows in the interval
+    tied, difference = tied_with(found["steady"].distributions["ari"], found["spread"].distributions["ari"])
+    assert tied, difference
+    assert found["spread"].scope == "seeds_and_texts" and found["spread"].tags() == {"harness.interval_scope": "seeds_and_texts"}
+
+
+def test_every_seed_of_a_resample_sees_the_same_texts():
+    # Two seeds with the same partition must give exactly the one-seed distribution (texts only, below 3 seeds), and
+    # three or four copies too (resampling identical seeds changes nothing): true only if every seed of a resample is
+    # scored on the same drawn texts. Drawing texts per seed would make the copies disagree. The copies carry other
+    # cluster ids (the same partition), so that they are scored as distinct clusterings.
+    labels = RNG.integers(0, 4, 400)
+    clusters = _noisy(labels, 0.4, np.random.default_rng(4))
+    one = bootstrap_distributions(labels, [clusters], resamples=150, seed=3)
+    for copies in (2, 3, 4):
+        many = bootstrap_distributions(labels, [clusters + 10 * i for i in range(copies)], resamples=150, seed=3)
+        for name in one:
+            np.testing.assert_allclose(many[name], one[name], rtol=0, atol=1e-14, err_msg=f"{copies} copies, {name}")
+
+
+def test_two_seed_interval_equals_scipy_paired_bootstrap_of_the_seed_mean():
+    # Reference: scipy.stats.bootstrap((labels, seed 1, seed 2), paired=True, method="percentile") of the mean ARI over
+    # the two seeds, same generator and seed: the texts-only bootstrap (fewer than 3 seeds) draws the same indices for
+    # both seeds, as scipy's paired resampling does.
+    labels = RNG.integers(0, 4, 250)
+    first, second = _noisy(labels, 0.3, np.random.default_rng(1)), _noisy(labels, 0.6, np.random.default_rng(2))
+    ours = percentile_interval(bootstrap_distributions(labels, [first, second], resamples=199, seed=5)["ari"])
+    reference = stats.bootstrap(
+        (labels, first, second), lambda y, a, b: (skm.adjusted_rand_score(y, a) + skm.adjusted_rand_score(y, b)) / 2,
+        paired=True, vectorized=False, n_resamples=199, method="percentile", confidence_level=0.95,
+        random_state=np.random.default_rng(5)).confidence_interval
+    assert ours == pytest.approx((reference.low, reference.high), rel=1e-9)
+
+
+def test_the_seed_draws_leave_the_text_draws_equal_to_scipy():
+    # Reference: scipy.stats.bootstrap on one clustering. Three identical seeds take the two-level path (seeds are
+    # resampled), yet the distribution must equal scipy's: the seed draws have a stream of their own.
+    labels = RNG.integers(0, 3, 200)
+    clusters = _noisy(labels, 0.5, np.random.default_rng(6))
+    copies = [clusters, clusters + 10, clusters + 20]  # one partition, three id sets: scored as three seeds
+    ours = percentile_interval(bootstrap_distributions(labels, copies, resamples=199, seed=8)["ami"])
+    reference = stats.bootstrap((labels, clusters), skm.adjusted_mutual_info_score, paired=True, vectorized=False,
+                                n_resamples=199, method="percentile", confidence_level=0.95,
+                                random_state=np.random.default_rng(8)).confidence_interval
+    assert ours == pytest.approx((reference.low, reference.high), rel=1e-9)
+
+
+def test_configurations_are_resampled_on_the_same_seed_and_text_draws():
+    # Two configurations that differ in one text of one seed must move together on every resample: the same seeds and
+    # the same texts drawn for both. Unpaired seed draws (seeds 1 and 3 differ by ~0.3 ARI) or unpaired text draws
+    # would make their per-resample difference as large as the spread itself.
+    labels = RNG.integers(0, 4, 500)
+    seeds = [_noisy(labels, share, np.random.default_rng(30 + i)) for i, share in enumerate((0.1, 0.3, 0.6))]
+    nudged = [c.copy() for c in seeds]
+    nudged[2][0] = (nudged[2][0] + 1) % 4
+    a = bootstrap_distributions(labels, seeds, resamples=300, seed=1)["ari"]
+    b = bootstrap_distributions(labels, nudged, resamples=300, seed=1)["ari"]
+    assert np.ptp(a) > 0.2  # the seed draws do move the score
+    assert np.abs(a - b).max() < 0.01
+    low, high = tied_with(a, b)[1]
+    assert high - low < 0.01
+
+
+def test_seed_weights_resample_seeds_from_three_on():
+    # Each row is one resample's weights over the seeds: multiplicities over S (a multinomial draw), summing to 1; below
+    # SEED_LEVEL_MINIMUM every seed weighs 1/S. Over many resamples each seed is drawn 1/S of the time.
+    assert SEED_LEVEL_MINIMUM == 3
+    np.testing.assert_array_equal(seed_weights(2, 5, 0), np.full((5, 2), 0.5))
+    weights = seed_weights(4, 20_000, 0)
+    np.testing.assert_allclose(weights.sum(axis=1), 1.0)
+    assert set(np.unique(weights * 4)) <= {0.0, 1.0, 2.0, 3.0, 4.0}
+    np.testing.assert_allclose(weights.mean(axis=0), 0.25, atol=0.01)
+    assert (weights == 0).any(axis=1).mean() > 0.8  # most resamples leave out at least one seed (1 - 4!/4^4 = 0.906)
+    assert not np.array_equal(seed_weights(4, 50, 0), seed_weights(4, 50, 1))
+
+
 def test_stability_and_seed_aggregation():
     labels = RNG.integers(0, 3, 100)
     assert stability_ari([labels, labels, labels]) == 1.0
     assert math.isnan(stability_ari([labels]))
     evidence = configuration_evidence([{"ari": 0.5}, {"ari": 0.7}], [labels, labels], labels, resamples=50, seed=0)
-    assert evidence.means["ari"] == pytest.approx(0.6) and evidence.stds["ari"] == pytest.approx(0.1)
+    assert evidence.means["ari"] == pytest.approx(0.6)
+    # The sample standard deviation (ddof = 1), as Python's statistics.stdev computes it: sqrt(0.02) = 0.1414...,
+    # not the population form (0.1).
+    assert evidence.stds["ari"] == pytest.approx(statistics.stdev([0.5, 0.7])) == pytest.approx(math.sqrt(0.02))
     assert evidence.metrics()["ari_ci_low"] == evidence.metrics()["ari_ci_high"] == 1.0  # both clusterings = labels
+    # Two seeds: the interval covers text sampling only and the verdict is provisional (the agreed MLflow tags).
+    assert evidence.tags() == {"harness.interval_scope": "texts_only", "harness.verdict": "provisional"}
+    assert evidence.metrics()["n_seeds"] == 2
+
+
+def test_seed_standard_deviation_is_the_sample_one_and_undefined_for_one_seed():
+    # Reference: statistics.stdev (n - 1 in the denominator); one seed has no spread to estimate: NaN, not 0.
+    labels = RNG.integers(0, 3, 60)
+    scores = [{"silhouette": 0.1}, {"silhouette": 0.4}, {"silhouette": 0.25}]
+    found = configuration_evidence(scores, [labels] * 3, labels, resamples=0, seed=0)
+    assert found.stds["silhouette"] == pytest.approx(statistics.stdev([0.1, 0.4, 0.25]), rel=1e-12)
+    single = configuration_evidence(scores[:1], [labels], labels, resamples=0, seed=0)
+    assert math.isnan(single.stds["silhouette"]) and single.means["silhouette"] == 0.1
+
+
+def _configurations(tmp_path, model_dir, pipelines: str, seeds: str = "[0, 1, 2]"):
+    """Real planned configurations (and the sweep and corpora) of a small labelled sweep, without running it."""
+    from harness.plan import configurations
+    from harness.runner import ConfigurationResult, TrialResult, loaded_corpora, prepared_sweep
+
+    prepared = prepared_sweep(write_sweep(tmp_path, f"""
+name: rows
+datasets: [{{source: synthetic, n_texts: 120, seed: 3}}]
+models: [{model_dir}]
+grid:
+  pooling: [mean]
+{pipelines}
+  seeds: {seeds}
+rank_by: silhouette
+"""))
+    results = [ConfigurationResult(trials=group, seeds=[TrialResult(t, "FINISHED") for t in group])
+               for group in configurations(prepared.trials)]
+    return results, prepared.sweep, loaded_corpora(prepared)
+
+
+def test_a_mean_over_fewer_valid_seeds_is_counted_and_flagged(tmp_path, tiny_model_dir):
+    # Silhouette NaN on two of three seeds: the configuration's mean rests on one seed. Its run must say so
+    # (silhouette_valid_seeds = 1 while n_seeds = 3), and where that mean tops the ranking the row carries a flag.
+    labels = RNG.integers(0, 3, 60)
+    thin = configuration_evidence([{"silhouette": float("nan")}, {"silhouette": float("nan")}, {"silhouette": 0.6}],
+                                  [labels] * 3, labels, resamples=0, seed=0)
+    full = configuration_evidence([{"silhouette": 0.5}, {"silhouette": 0.52}, {"silhouette": 0.48}],
+                                  [labels] * 3, labels, resamples=0, seed=0)
+    assert thin.metrics()["silhouette"] == 0.6 and thin.metrics()["silhouette_valid_seeds"] == 1.0
+    assert thin.metrics()["n_seeds"] == 3.0 and full.metrics()["silhouette_valid_seeds"] == 3.0
+
+    from harness.leaderboard import rank_configurations, table
+
+    results, sweep, corpora = _configurations(tmp_path, tiny_model_dir, """  reduce: [{method: pca, n_components: 4}]
+  cluster: [{method: kmeans, k: 3}, {method: kmeans, k: 4}]""")
+    for result, found in zip(results, (full, thin)):
+        result.metrics, result.tags = found.metrics(), found.tags()
+    ranking = rank_configurations(results, sweep, corpora)["town_requests"]
+    assert [row.configuration for row in ranking.rows] == [results[1], results[0]]  # ranked by the mean, as it is
+    assert ranking.rows[0].short_of_seeds and not ranking.rows[1].short_of_seeds
+    text = table(ranking)
+    assert "1/3!" in text.splitlines()[3] and "3/3" in text.splitlines()[4]
+    assert "rank on fewer seeds than they ran" in text
+
+
+def _registered_pipelines():
+    """Every registered reducer x clusterer, each with its default settings."""
+    from pydantic import TypeAdapter
+
+    from harness.cluster import CLUSTERERS, ClustererSettings
+    from harness.reduce import REDUCERS, ReducerSettings
+
+    reducers = [TypeAdapter(ReducerSettings).validate_python({"method": name}) for name in sorted(REDUCERS)]
+    clusterers = [TypeAdapter(ClustererSettings).validate_python({"method": name}) for name in sorted(CLUSTERERS)]
+    return [(r, c) for r in reducers for c in clusterers]
+
+
+@pytest.mark.parametrize("reducer, clusterer", _registered_pipelines(),
+                         ids=lambda s: s.method if hasattr(s, "method") else str(s))
+def test_seed_free_is_true_exactly_where_seeds_cannot_change_the_clustering(reducer, clusterer):
+    # The rule behind "stability not applicable", checked by fitting, not by reading the registry back: for every
+    # registered reducer x clusterer, a pipeline declared seed-free gives identical reductions and labels for every
+    # seed, and a pipeline declared seeded has a stage whose output the seed does change (on structureless points,
+    # where a seeded method has many equally good answers).
+    from harness.cluster import cluster_labels
+    from harness.reduce import reduced
+
+    points = np.random.default_rng(0).normal(size=(150, 60)).astype(np.float32)
+    outputs = {}
+    for seed in range(4):
+        vectors = reduced(points, reducer, seed)
+        outputs[seed] = (vectors, cluster_labels(vectors, clusterer, seed, 3))
+    same_reduction = all(np.array_equal(outputs[0][0], outputs[s][0]) for s in outputs)
+    same_labels = all(np.array_equal(outputs[0][1], outputs[s][1]) for s in outputs)
+    if seed_free(reducer, clusterer):
+        assert same_reduction and same_labels
+    else:
+        fixed = outputs[0][0]  # the clusterer alone, on one reduction
+        clusterer_varies = len({cluster_labels(fixed, clusterer, s, 3).tobytes() for s in range(4)}) > 1
+        assert not same_reduction or clusterer_varies
+
+
+def test_transform_steps_take_no_seed():
+    # seed_free looks at reducers and clusterers only: transform steps are called as (vectors, lengths, settings).
+    import inspect
+
+    from harness.transforms import TRANSFORMS
+
+    for name, step in TRANSFORMS.items():
+        assert "seed" not in inspect.signature(step).parameters and len(inspect.signature(step).parameters) == 3, name
+
+
+def test_seed_free_agrees_with_the_planner_stage_keys(tmp_path, tiny_model_dir):
+    # The planner shares a seed-free pipeline's stages across seeds (the seed leaves its keys); the stability rule must
+    # call exactly those pipelines seed-free, for every registered reducer x clusterer.
+    import yaml
+
+    pipelines = _registered_pipelines()
+    grid = yaml.safe_dump({"reduce": [r.as_params() for r in {r.method: r for r, _ in pipelines}.values()],
+                           "cluster": [c.as_params() for c in {c.method: c for _, c in pipelines}.values()]})
+    results, _, _ = _configurations(tmp_path, tiny_model_dir, "\n".join("  " + line for line in grid.splitlines()), "[0, 1]")
+    assert len(results) == len(pipelines)
+    for result in results:
+        first, second = result.trials
+        shared = first.stages["cluster"].key == second.stages["cluster"].key
+        assert shared == seed_free(first.reducer, first.clusterer), first.config_name
+
+
+def test_a_seed_free_pipeline_cannot_win_a_stability_ranking(tmp_path, tiny_model_dir):
+    # PCA + HDBSCAN gives one clustering for every seed: its stability_ari would be 1.0 by construction. It is not
+    # logged (tag harness.stability = not_applicable), and a ranking by stability puts the seeded pipeline first,
+    # with n/a shown for the other.
+    labels = RNG.integers(0, 3, 90)
+    wobbly = [_noisy(labels, 0.2, np.random.default_rng(i)) for i in range(3)]
+    from harness.leaderboard import rank_configurations, table
+
+    results, sweep, corpora = _configurations(tmp_path, tiny_model_dir, """  reduce: [{method: pca, n_components: 4}]
+  cluster: [{method: hdbscan, min_cluster_size: 5}, {method: kmeans, k: 3}]""")
+    sweep = sweep.model_copy(update={"rank_by": "stability_ari"})
+    for result in results:
+        free = seed_free(result.trials[0].reducer, result.trials[0].clusterer)
+        found = configuration_evidence([{"ari": 0.5}] * 3, [labels] * 3 if free else wobbly, labels, resamples=0,
+                                       seed=0, seed_free=free)
+        result.metrics, result.tags = found.metrics(), found.tags()
+    hdbscan, kmeans = results
+    assert "stability_ari" not in hdbscan.metrics and hdbscan.tags == {"harness.stability": "not_applicable"}
+    assert 0 < kmeans.metrics["stability_ari"] < 1 and "harness.stability" not in kmeans.tags
+    ranking = rank_configurations(results, sweep, corpora)["town_requests"]
+    assert ranking.winner.configuration is kmeans
+    lines = table(ranking).splitlines()
+    assert "hdbscan" in lines[4] and lines[4].split()[2] == "n/a"
+    assert any(line.startswith("note: stability_ari n/a") for line in lines)
 
 
 def test_length_leakage_of_planted_and_absent_length():
@@ -189,7 +571,8 @@ grid:
     results = tmp_path / "results"
     assert main(["run", str(sweep), "--results-dir", str(results), "--no-progress"]) == 0
     out = capsys.readouterr().out
-    assert "requests: ranked by silhouette (mean over seeds)" in out
+    assert "requests: ranked by silhouette (mean over seeds) - provisional verdict" in out
+    assert "fewer than 3 seeds; the verdict is provisional" in out  # two seeds
     _, parents, seeds = finished_runs(f"sqlite:///{results / 'mlflow.db'}", "unlabelled")
     configs = configuration_runs(f"sqlite:///{results / 'mlflow.db'}", "unlabelled")
     assert len(seeds) == 4 and len(configs) == 2
@@ -200,3 +583,7 @@ grid:
                 "length_eta2_pvalue", "length_leakage_r2", "npmi_mean"} <= run.data.metrics.keys()
         assert "ari" not in run.data.metrics
     assert all("stability_ari" in c.data.metrics for c in configs)
+    assert all(c.data.tags["harness.verdict"] == "provisional" and "harness.interval_scope" not in c.data.tags
+               for c in configs)  # no labels, no intervals: nothing to scope
+    assert all(c.data.tags["harness.coherence"] == "not_meaningful" and float(c.data.tags["harness.median_words"]) < 40
+               for c in configs)  # one-line requests: NPMI is not a coherence level

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
 from hypothesis import given, settings
@@ -13,6 +15,7 @@ from harness.metrics import (
     cluster_shape,
     external_scores,
     length_confound_index,
+    length_epsilon_squared,
     length_eta_squared,
     noise_aware_scores,
 )
@@ -61,35 +64,136 @@ def test_eta_squared_equals_one_way_anova():
     assert length_eta_squared(lengths, groups) == pytest.approx(f * (k - 1) / (f * (k - 1) + n - k), rel=1e-10)
 
 
-def test_length_index_clusters_are_length_bins_gives_near_one():
-    # Constructed case: topics independent of length; clusters are length deciles. k equal-share bins of a
-    # uniform variable explain 1 - 1/k^2 of its variance (0.99 for k = 10), so "near 1" here means > 0.95.
+def _epsilon_squared_by_hand(lengths: np.ndarray, groups: np.ndarray) -> float:
+    """Kelley's epsilon^2 (1935) written out from one-way ANOVA sums of squares: (SS_b - (k - 1) MS_w) / SS_t."""
+    log_len = np.log(lengths)
+    levels = np.unique(groups)
+    k, n = levels.size, log_len.size
+    ss_total = ((log_len - log_len.mean()) ** 2).sum()
+    ss_within = sum(((log_len[groups == g] - log_len[groups == g].mean()) ** 2).sum() for g in levels)
+    return (ss_total - ss_within - (k - 1) * ss_within / (n - k)) / ss_total
+
+
+def _lengths(rng, n: int) -> np.ndarray:
+    """Token counts shaped like real texts: log-normal, median about 20."""
+    return np.maximum(1, np.round(np.exp(rng.normal(3.0, 0.7, n)))).astype(int)
+
+
+@pytest.mark.parametrize("sizes", [(3, 2, 1), (2, 2, 2), (1, 1, 4), (4, 1, 1), (5, 1)])
+def test_eta_squared_expects_k_minus_1_over_n_minus_1_by_chance_and_epsilon_squared_zero(sizes):
+    # The rule the chance correction rests on, checked by enumerating every way of dealing 6 lengths to the groups
+    # (all 720 permutations): the mean eta^2 is exactly (k - 1) / (N - 1), whatever the group sizes, so the mean
+    # epsilon^2 = 1 - (1 - eta^2)(N - 1)/(N - k) is exactly 0.
+    from itertools import permutations
+
+    lengths = np.array([3, 5, 8, 13, 40, 90])
+    groups = np.repeat(np.arange(len(sizes)), sizes)
+    eta2 = [length_eta_squared(np.array(p), groups) for p in permutations(lengths)]
+    eps2 = [length_epsilon_squared(np.array(p), groups) for p in permutations(lengths)]
+    k, n = len(sizes), lengths.size
+    assert np.mean(eta2) == pytest.approx((k - 1) / (n - 1), abs=1e-12)
+    assert np.mean(eps2) == pytest.approx(0.0, abs=1e-12)
+
+
+def test_epsilon_squared_equals_anova_sums_of_squares_from_statsmodels_and_scipy():
+    # References: statsmodels' one-way ANOVA table (anova_lm of an OLS fit of log length on the groups as a factor)
+    # gives SS_between and SS_residual; Kelley's epsilon^2 = (SS_b - (k - 1) MS_w) / SS_total. scipy.stats.f_oneway
+    # gives F, and epsilon^2 = (k - 1)(F - 1) / ((k - 1) F + N - k) (the same quantity through F). Noise (-1) is a group.
+    import pandas as pd
+    import statsmodels.api as sm
+    from statsmodels.formula.api import ols
+
+    rng = np.random.default_rng(3)
+    lengths = _lengths(rng, 400)
+    groups = rng.integers(-1, 7, 400) + (lengths > 30)
+    frame = pd.DataFrame({"log_len": np.log(lengths), "group": groups})
+    table = sm.stats.anova_lm(ols("log_len ~ C(group)", data=frame).fit(), typ=1)
+    ss_b, ss_w = table.loc["C(group)", "sum_sq"], table.loc["Residual", "sum_sq"]
+    df_b, df_w = table.loc["C(group)", "df"], table.loc["Residual", "df"]
+    from_statsmodels = (ss_b - df_b * ss_w / df_w) / (ss_b + ss_w)
+    assert length_epsilon_squared(lengths, groups) == pytest.approx(from_statsmodels, rel=1e-10)
+    assert length_eta_squared(lengths, groups) == pytest.approx(ss_b / (ss_b + ss_w), rel=1e-10)
+    f = stats.f_oneway(*[np.log(lengths[groups == g]) for g in np.unique(groups)]).statistic
+    k, n = np.unique(groups).size, lengths.size
+    assert length_epsilon_squared(lengths, groups) == pytest.approx((k - 1) * (f - 1) / ((k - 1) * f + n - k), rel=1e-10)
+    assert length_epsilon_squared(lengths, groups) == pytest.approx(_epsilon_squared_by_hand(lengths, groups), rel=1e-10)
+
+
+@pytest.mark.parametrize("k", [6, 30, 100, 200])
+def test_length_index_of_random_clusters_is_zero_for_any_number_of_clusters(k):
+    # Acceptance (issue 13 item 7): clusters that ignore length, N = 1,200, mean over 20 draws: |index| < 0.02 for
+    # k in {6, 30, 100, 200}. Raw eta^2 gave 0.001, 0.020, 0.080 and 0.159 (its chance level (k - 1)/(N - 1)).
+    rng = np.random.default_rng(k)
+    values = []
+    for _ in range(20):
+        lengths = _lengths(rng, 1200)
+        values.append(length_confound_index(lengths, rng.integers(0, k, 1200), rng.integers(0, 6, 1200)))
+    assert abs(np.mean(values)) < 0.02, np.mean(values)
+
+
+def test_length_index_clusters_are_length_bins_stays_near_one():
+    # Acceptance: clusters = length bins still >= 0.9. Topics independent of length, clusters are length deciles;
+    # k equal-share bins of a uniform variable explain 1 - 1/k^2 of its variance (0.99 for k = 10), and the
+    # correction for 10 groups of 2,000 texts is tiny.
     lengths = RNG.integers(3, 61, 2000)
     labels = RNG.integers(0, 6, 2000)
     clusters = np.digitize(np.log(lengths), np.quantile(np.log(lengths), np.linspace(0.1, 0.9, 9)))
-    assert length_confound_index(lengths, clusters, labels) > 0.95
+    assert length_confound_index(lengths, clusters, labels) >= 0.9
+    many_bins = np.digitize(np.log(lengths), np.quantile(np.log(lengths), np.linspace(0.01, 0.99, 99)))
+    assert length_confound_index(lengths, many_bins, labels) >= 0.9  # 100 clusters that are length bins, too
 
 
 def test_length_index_clusters_independent_of_length_gives_near_zero():
     lengths = RNG.integers(3, 61, 2000)
     labels = RNG.integers(0, 6, 2000)
     clusters = RNG.integers(0, 6, 2000)
-    assert length_confound_index(lengths, clusters, labels) < 0.01
+    assert abs(length_confound_index(lengths, clusters, labels)) < 0.01
 
 
-def test_length_index_clusters_equal_labels_is_exactly_zero():
+@pytest.mark.parametrize("with_noise", [False, True])
+def test_length_index_clusters_equal_labels_is_exactly_zero(with_noise):
+    # Acceptance: clusters = labels give exactly 0, whatever the ids (renamed, or one class called -1 as noise is).
     lengths = RNG.integers(3, 61, 500)
     labels = (lengths > 30).astype(int) + RNG.integers(0, 2, 500) * 2  # labels themselves tied to length
-    assert length_confound_index(lengths, labels, labels) == 0.0
+    clusters = np.where(labels == 0, -1, labels + 7) if with_noise else labels + 7
+    assert length_confound_index(lengths, clusters, labels) == 0.0
 
 
 def test_length_index_discounts_the_labels_own_length_signal():
-    # The index is (eta2_c - eta2_y) / (1 - eta2_y): written out here from its definition.
+    # The index is (eps2_c - eps2_y) / (1 - eps2_y), each epsilon^2 written out here from ANOVA sums of squares.
     lengths = RNG.integers(3, 61, 1000)
     labels = (lengths > 30).astype(int)
     clusters = np.digitize(lengths, [15, 30, 45])
-    e_c, e_y = length_eta_squared(lengths, clusters), length_eta_squared(lengths, labels)
-    assert length_confound_index(lengths, clusters, labels) == pytest.approx((e_c - e_y) / (1 - e_y))
+    e_c, e_y = _epsilon_squared_by_hand(lengths, clusters), _epsilon_squared_by_hand(lengths, labels)
+    assert length_confound_index(lengths, clusters, labels) == pytest.approx((e_c - e_y) / (1 - e_y), rel=1e-10)
+    # Clusters that ignore length on labels that carry it: below 0, not clipped (less length than the topics).
+    assert length_confound_index(lengths, RNG.integers(0, 4, 1000), labels) < -0.5
+
+
+def test_noise_is_one_length_group_of_its_own():
+    # HDBSCAN leaves the short texts unclustered and splits the rest at random: the clusters say nothing about length
+    # among clustered texts, but which texts are noise is all about length. Noise counted as its own group sees it
+    # (reference: scipy.stats.f_oneway over the groups, noise included); dropping noise, or scattering it over
+    # singleton groups, would not.
+    rng = np.random.default_rng(5)
+    lengths = _lengths(rng, 1000)
+    clusters = np.where(lengths < np.median(lengths), -1, rng.integers(0, 4, 1000))
+    labels = rng.integers(0, 5, 1000)
+    log_len = np.log(lengths)
+    f = stats.f_oneway(*[log_len[clusters == g] for g in np.unique(clusters)]).statistic
+    assert length_eta_squared(lengths, clusters) == pytest.approx(f * 4 / (f * 4 + 1000 - 5), rel=1e-10)
+    kept = clusters != -1
+    assert length_eta_squared(lengths[kept], clusters[kept]) < 0.02  # without noise: no length signal at all
+    scores = trial_scores(clusters, lengths, labels)
+    assert scores["length_eta2_clusters"] > 0.5 and scores["length_confound_index"] > 0.5
+    assert scores["length_epsilon2_clusters"] == pytest.approx(_epsilon_squared_by_hand(lengths, clusters), rel=1e-10)
+
+
+def test_epsilon_squared_edge_cases():
+    lengths = np.array([3, 5, 8, 13])
+    assert length_epsilon_squared(lengths, np.zeros(4, int)) == 0.0  # one group
+    assert math.isnan(length_epsilon_squared(lengths, np.arange(4)))  # every text its own group: undefined
+    assert length_epsilon_squared(np.full(4, 7), np.array([0, 0, 1, 1])) == 0.0  # no length variance
 
 
 def test_unlabelled_scores_have_no_external_metrics():

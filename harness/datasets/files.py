@@ -65,7 +65,7 @@ def _column(frame: pd.DataFrame, column: str, key: str, path: Path) -> pd.Series
 
 
 def file_corpus(spec: FileSource) -> Corpus:
-    """Read, check and optionally subsample the file. Empty texts are refused, not dropped."""
+    """Read, check and optionally subsample the file. Empty texts and empty labels are refused, not dropped."""
     path = spec.path
     frame = _read_table(path, spec.format or SUFFIX_FORMATS[path.suffix.lower()])
     if frame.empty:
@@ -88,8 +88,15 @@ def file_corpus(spec: FileSource) -> Corpus:
     labels = label_names = None
     if spec.label_column is not None:
         raw_labels = _column(frame, spec.label_column, "label_column", path)
-        if raw_labels.isna().any():
-            raise DataError(f"{path}: label_column '{spec.label_column}': {int(raw_labels.isna().sum())} rows have no label")
+        # A CSV's empty cell reads as "" (missing values are not converted), JSON's null and Parquet's null as NaN;
+        # either would become a class of its own (named "" or "nan"), so both are refused, as empty texts are.
+        empty_labels = raw_labels.isna() | (raw_labels.astype(str).str.strip() == "")
+        if empty_labels.any():
+            first = int(np.flatnonzero(empty_labels.to_numpy())[0])
+            raise DataError(
+                f"{path}: label_column '{spec.label_column}': {int(empty_labels.sum())} of {len(frame)} rows have an "
+                f"empty label (first at row {first}); remove or fill them, or set label_column: null"
+            )
         names, labels = np.unique(raw_labels.astype(str).to_numpy(), return_inverse=True)
         if names.size < 2:
             raise DataError(f"{path}: label_column '{spec.label_column}': only one class ('{names[0]}'); scores need at least 2")

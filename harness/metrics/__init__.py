@@ -10,10 +10,12 @@ from harness.metrics._external import (
     noise_aware_scores,
     normalized_mutual_info,
 )
-from harness.metrics._contingency import PairCodes, scores_from_table
+from harness.metrics._contingency import PairCodes, scores_from_table, scores_from_tables
+from harness.metrics._expected_mi import expected_mutual_info
 from harness.metrics._internal import cluster_size_entropy, density_validity, silhouette_cosine
 from harness.metrics._length import (
     length_confound_index,
+    length_epsilon_squared,
     length_eta2_pvalue,
     length_eta_squared,
     length_leakage_r2,
@@ -29,6 +31,8 @@ __all__ = sorted(
         "length_eta2_pvalue",
         "length_leakage_r2",
         "scores_from_table",
+        "scores_from_tables",
+        "expected_mutual_info",
         "silhouette_cosine",
         "adjusted_mutual_info",
         "adjusted_rand",
@@ -36,6 +40,7 @@ __all__ = sorted(
         "external_scores",
         "homogeneity_completeness_v",
         "length_confound_index",
+        "length_epsilon_squared",
         "length_eta_squared",
         "length_scores",
         "noise_aware_scores",

@@ -19,26 +19,56 @@ def length_eta_squared(lengths: np.ndarray, groups: np.ndarray) -> float:
     return float(((means - log_len.mean()) ** 2).sum() / total)
 
 
-def length_confound_index(lengths: np.ndarray, clusters: np.ndarray, labels: np.ndarray) -> float:
-    """How far clusters separate texts by length beyond what the topics themselves do.
+def length_epsilon_squared(lengths: np.ndarray, groups: np.ndarray) -> float:
+    """eta^2 of log length corrected for chance: Kelley's epsilon^2 (Kelley, 1935, PNAS 21),
+    1 - (1 - eta^2) (N - 1) / (N - k), with k the number of groups present. NaN when every text is its own group.
 
-    max(0, eta2(L|clusters) - eta2(L|labels)) / (1 - eta2(L|labels)), with L = log length
-    and noise as its own group: 0 when clusters hold no more length information than the
-    labels, 1 when they split texts by length beyond topic.
+    Why this form. If lengths were dealt to the groups at random (group sizes fixed), the between-group sum of
+    squares of a group of size n_g has expectation SS_total (N - n_g) / (N (N - 1)) per text (sampling without
+    replacement), so E[eta^2] = (k - 1) / (N - 1) exactly, whatever the sizes: raw eta^2 grows with the number of
+    groups even when they ignore length (0.17 for 200 random groups of 1,200 texts). epsilon^2 equals
+    (eta^2 - E) / (1 - E), the chance correction ARI and AMI apply to their indices, so its expectation under
+    that null is exactly 0 and its maximum still 1. Hays's omega^2 (1963) has the same numerator over
+    SS_total + MS_within, a denominator that moves with the draw, so it is unbiased only approximately; epsilon^2
+    is chosen for the exact zero and because anyone can recompute it from eta^2, N and k.
+    """
+    lengths, groups = check_same_length(lengths, groups, names=("lengths", "groups"))
+    n, k = lengths.size, np.unique(groups).size
+    if k >= n:
+        return float("nan")
+    if k == 1 or np.ptp(np.log(check_positive(lengths, "lengths"))) == 0.0:
+        return 0.0  # one group, or every text of one length: nothing to explain, nothing to correct
+    return float(1.0 - (1.0 - length_eta_squared(lengths, groups)) * (n - 1) / (n - k))
+
+
+def length_confound_index(lengths: np.ndarray, clusters: np.ndarray, labels: np.ndarray) -> float:
+    """How far clusters separate texts by length beyond what the topics themselves do, corrected for chance.
+
+    (eps2(L|clusters) - eps2(L|labels)) / (1 - eps2(L|labels)), with L = log length and eps2 Kelley's epsilon^2
+    (``length_epsilon_squared``). Noise (HDBSCAN's -1) is one group of its own: which texts a clusterer leaves
+    unclustered is part of how it splits the corpus (all short texts left as noise is a length effect), it counts
+    once in k, and the chance correction holds for any partition, noise group included. The label term is
+    corrected the same way, on the same texts, so clusters equal to the labels score exactly 0 and clusters drawn
+    at random score 0 in expectation for any number of clusters. 1: clusters split texts by length beyond topic;
+    below 0: the clusters carry less length information than the labels (not clipped, so that the index stays
+    unbiased near 0, as ARI and AMI are not clipped). NaN when every text is its own cluster.
     """
     lengths, clusters, labels = check_same_length(lengths, clusters, labels, names=("lengths", "clusters", "labels"))
-    by_clusters = length_eta_squared(lengths, clusters)
-    by_labels = length_eta_squared(lengths, labels)
+    by_clusters = length_epsilon_squared(lengths, clusters)
+    by_labels = length_epsilon_squared(lengths, labels)
     if by_labels >= 1.0:
-        return 0.0
-    return float(max(0.0, by_clusters - by_labels) / (1.0 - by_labels))
+        return 0.0  # the labels fix every length: there is nothing left for clusters to separate
+    return float((by_clusters - by_labels) / (1.0 - by_labels))
 
 
 def length_scores(lengths: np.ndarray, clusters: np.ndarray, labels: np.ndarray | None) -> dict[str, float]:
-    """The length measures of one clustering; without labels, eta2 of the clusters only."""
-    scores = {"length_eta2_clusters": length_eta_squared(lengths, clusters)}
+    """The length measures of one clustering: raw eta^2 and chance-corrected epsilon^2 of the clusters (and of the
+    labels, with the index, when labelled)."""
+    scores = {"length_eta2_clusters": length_eta_squared(lengths, clusters),
+              "length_epsilon2_clusters": length_epsilon_squared(lengths, clusters)}
     if labels is not None:
         scores["length_eta2_labels"] = length_eta_squared(lengths, labels)
+        scores["length_epsilon2_labels"] = length_epsilon_squared(lengths, labels)
         scores["length_confound_index"] = length_confound_index(lengths, clusters, labels)
     return scores
 
