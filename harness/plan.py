@@ -75,6 +75,10 @@ class Trial:
     clusterer: Settings
     seed: int
     stages: dict[str, Stage] = field(compare=False)
+    # The pool and transform stages of the trial's OWN pooling. They differ from ``stages`` where the chain is
+    # computed from another pooling (mean_sqrt_len from mean); figures of the trial's own vectors
+    # (length leakage, silhouette) are measured on these.
+    own_stages: dict[str, Stage] = field(default_factory=dict, compare=False)
     key: str = ""
     config_key: str = ""  # the same for the seeds of one configuration
     equivalent_to: str | None = None  # key of an earlier trial that shares every stage
@@ -197,13 +201,28 @@ def scale_invariant_path(chain: list[Settings], reducer: Settings) -> bool:
     return invariant is not None and invariant(reducer)
 
 
-def computed_pooling(pooling: str, chain: list[Settings], reducer: Settings) -> str:
+def mean_scaled_per_text(model: ModelSettings) -> bool:
+    """Whether this model's mean_sqrt_len vector of a text is its mean vector times a positive factor.
+
+    Not under ``long_texts: chunk_mean`` (windows of different lengths are averaged, each with
+    its own factor) nor for static vectors with ``remove_first_component`` (the component is
+    removed from each pooling's vectors separately). tests/test_equivalences.py computes both
+    sides of every pair this lets the planner merge.
+    """
+    if model.family in ("sentence_transformer", "transformer"):
+        return model.long_texts == "truncate"
+    if model.family == "static":
+        return not model.remove_first_component
+    return False
+
+
+def computed_pooling(pooling: str, chain: list[Settings], reducer: Settings, model: ModelSettings) -> str:
     """The pooling whose output a trial's downstream stages are computed from.
 
-    mean and mean_sqrt_len differ by a positive factor per row; on a scale-invariant
-    path they give the same clusters, so both are computed from mean.
+    Where mean and mean_sqrt_len differ by a positive factor per text, a scale-invariant
+    path gives them the same clusters, so both are computed from mean.
     """
-    if pooling in MEAN_SCALED and scale_invariant_path(chain, reducer):
+    if pooling in MEAN_SCALED and mean_scaled_per_text(model) and scale_invariant_path(chain, reducer):
         return "mean"
     return pooling
 
@@ -217,7 +236,7 @@ def trial_stages(
         "max_length": model.max_length, "long_texts": model.long_texts, "backend": model.backend,
         **family_settings(model),
     })
-    pool = pool_stage(encode.key, layers, computed_pooling(pooling, chain, reducer), dtype)
+    pool = pool_stage(encode.key, layers, computed_pooling(pooling, chain, reducer, model), dtype)
     transform = make_stage("transform", pool.key, {"chain": [step.as_params() for step in chain]})
     reduce_settings = reducer.as_params()
     if reduce_settings["method"] in SEEDED_REDUCERS:
@@ -228,6 +247,14 @@ def trial_stages(
         cluster_settings["seed"] = seed
     cluster = make_stage("cluster", reduce.key, cluster_settings)
     return {"encode": encode, "pool": pool, "transform": transform, "reduce": reduce, "cluster": cluster}
+
+
+def own_stages(stages: dict[str, Stage], layers: LayerChoice, pooling: str) -> dict[str, Stage]:
+    """The pool and transform stages of a trial's own pooling (the same stages when it is computed from them)."""
+    if stages["pool"].settings["pooling"] == pooling:
+        return {"pool": stages["pool"], "transform": stages["transform"]}
+    pool = pool_stage(stages["encode"].key, layers, pooling, stages["pool"].settings["dtype"])
+    return {"pool": pool, "transform": make_stage("transform", pool.key, stages["transform"].settings)}
 
 
 def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str, ResolvedModel]) -> list[Trial]:
@@ -253,7 +280,7 @@ def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str,
             trial = Trial(
                 dataset=name, model=model, resolved_model=resolved, layers=layers, pooling=pooling,
                 normalize=normalize, transform=tuple(transform), reducer=reducer, clusterer=clusterer, seed=seed,
-                stages=stages,
+                stages=stages, own_stages=own_stages(stages, layers, pooling),
             )
             identity = {"dataset": dataset_keys[name], "weights": resolved.weights_digest}
             trials.append(replace(trial, key=settings_key({**identity, **trial.params}),
@@ -291,9 +318,17 @@ def configurations(trials: list[Trial]) -> list[list[Trial]]:
     return list(groups.values())
 
 
+def needed_stages(trials: list[Trial], kind: str) -> dict[str, Trial]:
+    """Distinct stages of a kind the trials need, each with a trial that needs it (own pooled variants included)."""
+    needed = {t.stages[kind].key: t for t in trials}
+    if kind in ("pool", "transform"):
+        needed.update({t.own_stages[kind].key: t for t in trials if t.own_stages[kind].key not in needed})
+    return needed
+
+
 def stage_counts(trials: list[Trial]) -> dict[str, int]:
     """Distinct stages of each kind the trials need (encode = forward passes)."""
-    return {kind: len({t.stages[kind].key for t in trials}) for kind in STAGE_KINDS}
+    return {kind: len(needed_stages(trials, kind)) for kind in STAGE_KINDS}
 
 
 @dataclass(frozen=True)
@@ -314,10 +349,11 @@ def stage_work(trials: list[Trial], is_cached) -> list[StageWork]:
     """
     work = []
     for kind in STAGE_KINDS:
-        stages = {t.stages[kind].key: t for t in trials}
+        stages = needed_stages(trials, kind)
         if kind == "encode":
             cached = sum(
-                all(is_cached("pool", t.stages["pool"].key) for t in trials if t.stages["encode"].key == key)
+                all(is_cached("pool", t.stages["pool"].key) and is_cached("pool", t.own_stages["pool"].key)
+                    for t in trials if t.stages["encode"].key == key)
                 and is_cached("encode", key)
                 for key in stages
             )

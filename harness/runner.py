@@ -204,9 +204,11 @@ def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings
     clusters = executor.clustered(trial)
     counts = executor.token_counts(trial)
     scores = trial_scores(clusters, counts, corpus.labels)
-    scores.update(label_free_scores(clusters, counts, executor.pooled(trial), executor.reduced(trial), seed=trial.seed,
-                                    permutations=evidence.permutations, max_points=evidence.max_points))
-    scores["length_leakage_r2"] = executor.length_leakage(trial)
+    # Figures of the trial's own vectors come from its own pooling, also where its clusters are computed from another.
+    scores.update(label_free_scores(clusters, counts, executor.pooled(trial, own=True), executor.reduced(trial),
+                                    seed=trial.seed, permutations=evidence.permutations, max_points=evidence.max_points))
+    scores["length_leakage_r2"] = executor.length_leakage(trial, "transform")
+    scores["length_leakage_r2_pooled"] = executor.length_leakage(trial, "pool")
     table, scores["npmi_mean"] = described_clusters(executor.term_counts(trial), clusters, counts, top=evidence.top_terms)
     scores["truncated_fraction"] = executor.truncated_fraction(trial)
     if trial.model.family == "static":

@@ -11,6 +11,7 @@ import time
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from harness.cache import CacheWarning, StageCache
@@ -84,8 +85,8 @@ def test_equivalent_trials_are_computed_once_and_tagged(tmp_path, tiny_model_dir
     sweep = write_sweep(tmp_path, SWEEP.format(model=tiny_model_dir, cluster=CLUSTER_A))
     prepared = prepared_sweep(sweep)
     by_name = {t.name: t for t in prepared.trials}
-    twin = by_name[f"town_requests/{tiny_model_dir.name}/last/mean_sqrt_len/l2/umap4/hdbscan8/s0"]
-    original = by_name[f"town_requests/{tiny_model_dir.name}/last/mean/l2/umap4/hdbscan8/s0"]
+    twin = by_name[f"town_requests/{tiny_model_dir.name}/last/mean_sqrt_len/l2/umap4/kmeanslabels/s0"]
+    original = by_name[f"town_requests/{tiny_model_dir.name}/last/mean/l2/umap4/kmeanslabels/s0"]
     assert twin.equivalent_to == original.key and twin.stages == original.stages
 
     # The equivalence itself: after L2 normalisation mean and mean_sqrt_len pooled vectors agree to 1e-6.
@@ -102,10 +103,35 @@ def test_equivalent_trials_are_computed_once_and_tagged(tmp_path, tiny_model_dir
     results = tmp_path / "results"
     result = run_sweep_file(sweep, results)
     assert result.work["umap_fits"] == 6  # 8 pooled variants, but mean_sqrt_len reuses mean's reduction twice
-    _, _, children = finished_runs(result.tracking_uri, "cached")
+    client, _, children = finished_runs(result.tracking_uri, "cached")
     runs = {c.data.tags["harness.trial_key"]: c for c in children}
     assert runs[twin.key].data.tags["harness.equivalent_to"] == original.key
-    assert runs[twin.key].data.metrics["ari"] == runs[original.key].data.metrics["ari"]
+    twin_metrics, original_metrics = runs[twin.key].data.metrics, runs[original.key].data.metrics
+    assert twin_metrics.keys() == original_metrics.keys()
+    # Every figure of the shared clustering is the same number; the twin's own figures are measured on its own
+    # vectors (mean_sqrt_len pooled), checked here against a recomputation from its own pooling.
+    own_vectors = {"length_leakage_r2", "length_leakage_r2_pooled", "silhouette"}
+    timings = {"encode_seconds", "reduce_seconds", "cluster_seconds"}
+    for name in sorted(twin_metrics.keys() - own_vectors - timings):
+        assert twin_metrics[name] == original_metrics[name] or (np.isnan(twin_metrics[name]) and np.isnan(original_metrics[name])), name
+    from harness.encode import pooled_variants, token_counts
+    from harness.metrics import length_leakage_r2, silhouette_cosine
+    from harness.models import loaded_encoder, resolve_model
+
+    texts = loaded_corpora(prepared)["town_requests"].texts
+    encoder = loaded_encoder(resolve_model(str(tiny_model_dir)), None, False)
+    pooled = pooled_variants(encoder, texts, [("last", "mean"), ("last", "mean_sqrt_len")], batch_size=64)
+    counts = np.maximum(token_counts(encoder, texts), 1)
+    for trial, pooling in ((twin, "mean_sqrt_len"), (original, "mean")):
+        metrics = runs[trial.key].data.metrics
+        own = pooled[("last", pooling)]
+        assert metrics["length_leakage_r2"] == pytest.approx(length_leakage_r2(l2_normalized(own), counts), abs=1e-6)
+        assert metrics["length_leakage_r2_pooled"] == pytest.approx(length_leakage_r2(own, counts), abs=1e-6)
+    assert twin_metrics["length_leakage_r2_pooled"] != pytest.approx(original_metrics["length_leakage_r2_pooled"], abs=1e-3)
+    assert twin_metrics["silhouette"] == pytest.approx(original_metrics["silhouette"], abs=1e-6)  # cosine: scale-free
+    clusters = pd.read_parquet(client.download_artifacts(runs[twin.key].info.run_id, "assignments.parquet", str(tmp_path))).cluster
+    assert twin_metrics["silhouette"] == pytest.approx(
+        silhouette_cosine(pooled[("last", "mean_sqrt_len")], clusters.to_numpy(), max_points=5000, seed=0), abs=1e-9)
 
 
 def _put_same_key(root: str, start, seed: int) -> None:
