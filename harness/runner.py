@@ -37,13 +37,14 @@ ProgressFactory = Callable[..., Any]
 
 @dataclass
 class PreparedSweep:
-    """A parsed sweep with its models resolved and its trials planned; no data loaded."""
+    """A parsed sweep with its models resolved, its data loaded and its trials planned (keyed by the data's content)."""
 
     path: Path
     sweep: Sweep
     models: dict[str, ResolvedModel]
     dataset_keys: dict[str, str]
     trials: list[Trial]
+    corpora: dict[str, Corpus] = field(default_factory=dict, repr=False)
 
 
 @dataclass
@@ -95,7 +96,12 @@ class SweepResult:
 
 
 def prepared_sweep(path: str | Path) -> PreparedSweep:
-    """Parse the sweep, resolve its models and plan its trials."""
+    """Parse the sweep, resolve its models, load its data and plan its trials.
+
+    The data are loaded here because every stage key starts from the dataset's content
+    (``dataset_key``): a key made before the data are read could not see a changed file,
+    mirror or route.
+    """
     path = Path(path)
     sweep = load_sweep(path)
     models = {}
@@ -104,15 +110,13 @@ def prepared_sweep(path: str | Path) -> PreparedSweep:
             models[spec.label] = resolve_family_model(spec)
         except HarnessError as err:
             raise sweep_error_at(path, ["models", index, "name"], str(err)) from None
-    first_model = models[sweep.models[0].label]
-    keys = {
-        dataset_name(spec): dataset_key(spec, first_model.weights_digest if needs_tokenizer(spec) else None)
-        for spec in sweep.datasets
-    }
-    return PreparedSweep(path=path, sweep=sweep, models=models, dataset_keys=keys, trials=planned_trials(sweep, keys, models))
+    corpora = _loaded(path, sweep, models)
+    keys = {name: dataset_key(corpus) for name, corpus in corpora.items()}
+    return PreparedSweep(path=path, sweep=sweep, models=models, dataset_keys=keys,
+                         trials=planned_trials(sweep, keys, models), corpora=corpora)
 
 
-def loaded_corpora(prepared: PreparedSweep) -> dict[str, Corpus]:
+def _loaded(path: Path, sweep: Sweep, models: dict[str, ResolvedModel]) -> dict[str, Corpus]:
     """Load every dataset; a data problem is reported at the sweep entry that names the data.
 
     Sources that balance lengths measure them with the tokenizer of the sweep's first model.
@@ -121,15 +125,20 @@ def loaded_corpora(prepared: PreparedSweep) -> dict[str, Corpus]:
 
     corpora = {}
     count_tokens = None
-    for index, spec in enumerate(prepared.sweep.datasets):
-        first = prepared.models[prepared.sweep.models[0].label]
+    for index, spec in enumerate(sweep.datasets):
+        first = models[sweep.models[0].label]
         if needs_tokenizer(spec) and count_tokens is None and first.family in ("sentence_transformer", "transformer"):
             count_tokens = tokenizer_counter(first.folder)
         try:
             corpora[dataset_name(spec)] = loaded_corpus(spec, count_tokens)
         except HarnessError as err:
-            raise sweep_error_at(prepared.path, ["datasets", index], str(err)) from None
+            raise sweep_error_at(path, ["datasets", index], str(err)) from None
     return corpora
+
+
+def loaded_corpora(prepared: PreparedSweep) -> dict[str, Corpus]:
+    """The sweep's corpora, as loaded (once) when it was prepared."""
+    return prepared.corpora
 
 
 def check_against_data(prepared: PreparedSweep, corpora: dict[str, Corpus]) -> None:

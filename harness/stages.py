@@ -22,6 +22,7 @@ from harness.cache import StageCache
 from harness.cluster import cluster_labels
 from harness.datasets import Corpus
 from harness.encode import pooled_variants, token_counts, truncated_fraction
+from harness.keys import settings_key
 from harness.models import LoadedEncoder, loaded_encoder
 from harness.plan import Trial, pool_stage
 from harness.reduce import reduced
@@ -84,7 +85,9 @@ class StageExecutor:
                 from harness.onnx_backend import onnx_encoder
 
                 root = self.cache.root if self.cache is not None else Path(tempfile.mkdtemp(prefix="harness-onnx-"))
-                folder = root / "onnx" / f"{trial.resolved_model.weights_digest}-{trial.resolved_model.family}"
+                # One export per encode key's model part: weights, model files, opset and exporting libraries.
+                export = settings_key({k: trial.stages["encode"].settings.get(k) for k in ("weights", "model_files", "export")})
+                folder = root / "onnx" / f"{trial.resolved_model.weights_digest}-{trial.resolved_model.family}-{export}"
                 encoder = onnx_encoder(encoder, folder, int8=spec.backend == "onnx_int8")
             self._encoders[cache_key] = encoder
             self.work["model_loads"] += 1
