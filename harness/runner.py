@@ -54,6 +54,7 @@ class TrialResult:
     scores: dict[str, float] = field(default_factory=dict)
     error: Optional[str] = None
     run_id: Optional[str] = None
+    clusters: Optional[np.ndarray] = field(default=None, repr=False)  # the labels every figure of the run is from
 
 
 @dataclass
@@ -272,8 +273,9 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
     try:
         for trial in configuration:
             if trial.key in done:
-                run = done[trial.key]
-                result.seeds.append(TrialResult(trial, "REUSED", dict(run.data.metrics), run_id=run.info.run_id))
+                run, clusters = done[trial.key]
+                result.seeds.append(TrialResult(trial, "REUSED", dict(run.data.metrics), run_id=run.info.run_id,
+                                                clusters=clusters))
                 continue
             current = tracker.start_run(trial.name, config_run, "trial", params[trial.key], _trial_tags(trial, corpus),
                                         trial_key=trial.key)
@@ -283,7 +285,7 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
                 scores, table, clusters, counts = run_trial(executor, trial, corpus, evidence)
                 _log_trial(tracker, current, trial, corpus, scores, table, clusters, counts)
                 tracker.end(current, "FINISHED")
-                result.seeds.append(TrialResult(trial, "FINISHED", scores, run_id=current))
+                result.seeds.append(TrialResult(trial, "FINISHED", scores, run_id=current, clusters=clusters))
                 crash_point("between_trials")
                 if not result.descriptions:
                     result.descriptions = table
@@ -299,7 +301,9 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
             current = None
             on_trial()
         if result.complete:
-            found = configuration_evidence([r.scores for r in result.seeds], [executor.clustered(t) for t in configuration],
+            # Means, intervals and stability from the same labels: each seed's own (a reused seed's from its run's
+            # assignments.parquet, which its logged scores were computed from), never a recomputation.
+            found = configuration_evidence([r.scores for r in result.seeds], [r.clusters for r in result.seeds],
                                            corpus.labels, resamples=evidence.resamples, seed=evidence.seed,
                                            level=evidence.level)
             result.metrics, result.distributions = found.metrics(), found.distributions
@@ -314,6 +318,26 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
         tracker.end(config_run, "KILLED")
         raise
     return result
+
+
+def _reusable_runs(tracker, trials: list[Trial], corpora: dict[str, Corpus]) -> dict[str, tuple[Any, np.ndarray]]:
+    """FINISHED runs of these trials with the cluster labels of their own assignments.parquet, by trial key.
+
+    A run whose assignments are missing, or do not list this corpus's texts in order, is not reused: its
+    trial runs again rather than mixing its logged scores with labels from elsewhere.
+    """
+    finished = tracker.finished_trials()
+    reusable = {}
+    for trial in trials:
+        run = finished.get(trial.key)
+        if run is None:
+            continue
+        table = tracker.run_table(run.info.run_id, "assignments.parquet")
+        ids = corpora[trial.dataset].ids
+        if table is not None and len(table) == len(ids) and np.array_equal(table["id"].astype(str).to_numpy(),
+                                                                           np.asarray(ids).astype(str)):
+            reusable[trial.key] = (run, table["cluster"].to_numpy(np.int64))
+    return reusable
 
 
 def execute_sweep(
@@ -341,7 +365,7 @@ def execute_sweep(
     sweep = prepared.sweep
     tracker = SweepTracker(tracking_uri, results_dir / "artifacts", sweep.name)
     killed = tracker.mark_orphans_killed()
-    done = tracker.finished_trials() if resume else {}
+    done = _reusable_runs(tracker, prepared.trials, corpora) if resume else {}
     pending = [t for t in prepared.trials if t.key not in done]
     grid = sweep.grid.as_params()
     parent = tracker.start_run(sweep.name, None, "sweep",

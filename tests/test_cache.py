@@ -228,3 +228,53 @@ def test_float16_storage_is_a_separate_key_and_close_to_float32(tmp_path, tiny_m
     pooled_half = StageExecutor(loaded_corpora(half), half.trials, cache).pooled(half.trials[0])
     assert cache.get("pool", half.trials[0].stages["pool"].key)[0].dtype == np.float16
     assert np.allclose(pooled_half, pooled_full, rtol=1e-3, atol=1e-3)
+
+
+def test_a_resumed_configuration_takes_every_figure_from_the_seeds_own_labels(tmp_path, tiny_model_dir, monkeypatch):
+    # After a cache prune, a recomputation can disagree with the stored run (here the clusterer's output moved);
+    # the reused seeds' means come from their runs, so the intervals and the stability must come from the labels
+    # those runs logged too, not from the recomputation: every figure of a configuration from the same labels.
+    import harness.cluster
+    from sklearn.metrics import adjusted_rand_score
+
+    from harness.evidence import bootstrap_distributions
+
+    sweep = write_sweep(tmp_path, f"""
+name: resumed
+datasets:
+  - {{source: synthetic, n_texts: 150, topic_share: 0.6, seed: 2}}
+models: [{tiny_model_dir}]
+grid:
+  pooling: [mean]
+  reduce:
+    - {{method: pca, n_components: 5}}
+  cluster:
+    - {{method: kmeans, k: labels}}
+  seeds: [0, 1]
+evidence: {{resamples: 200, permutations: 19}}
+""")
+    results = tmp_path / "results"
+    first = run_sweep_file(sweep, results)
+    assert [r.status for r in first.results] == ["FINISHED", "FINISHED"]
+
+    assert main(["cache", "prune", "--older-than", "0", "--cache-dir", str(results / "cache")]) == 0
+    moved = lambda vectors, settings, seed, n_classes: np.arange(len(vectors)) % n_classes  # noqa: E731
+    monkeypatch.setitem(harness.cluster.CLUSTERERS, "kmeans", moved)
+    second = run_sweep_file(sweep, results)
+    assert [r.status for r in second.results] == ["REUSED", "REUSED"]
+
+    client, _, seed_runs = finished_runs(second.tracking_uri, "resumed")
+    corpus_labels = loaded_corpora(prepared_sweep(sweep))["town_requests"].labels
+    logged = [pd.read_parquet(client.download_artifacts(r.info.run_id, "assignments.parquet", str(tmp_path / r.info.run_id)))
+              for r in sorted(seed_runs, key=lambda r: int(r.data.params["seed"]))]
+    clusters = [table.cluster.to_numpy() for table in logged]
+    (configuration,) = second.configurations
+    metrics = configuration.metrics
+    # The point estimate: the mean of the seeds' ARI, recomputed here from their own assignments (scikit-learn).
+    assert metrics["ari"] == pytest.approx(np.mean([adjusted_rand_score(corpus_labels, c) for c in clusters]), abs=1e-12)
+    # The interval: the bootstrap of those same labels. (Whether it contains the estimate is not a consistency check:
+    # resampling with replacement duplicates texts, and duplicates agree on both partitions, so the bootstrap ARI of
+    # a near-chance clustering sits above the plain ARI.)
+    expected = bootstrap_distributions(corpus_labels, clusters, resamples=200, seed=0)
+    assert np.array_equal(configuration.distributions["ari"], expected["ari"])
+    assert metrics["stability_ari"] == pytest.approx(adjusted_rand_score(clusters[0], clusters[1]), abs=1e-12)
