@@ -102,6 +102,7 @@ class Trial:
     # computed from another pooling (mean_sqrt_len from mean); figures of the trial's own vectors
     # (length leakage, silhouette) are measured on these.
     own_stages: dict[str, Stage] = field(default_factory=dict, compare=False)
+    model_label: str = ""  # the model as named in run names: the shortest tail of its label that no other model shares
     key: str = ""
     config_key: str = ""  # the same for the seeds of one configuration
     equivalent_to: str | None = None  # key of an earlier trial that shares every stage
@@ -134,10 +135,10 @@ class Trial:
 
     @property
     def config_name(self) -> str:
-        return (
-            f"{self.dataset}/{self.model.label.rsplit('/', 1)[-1]}/{self.layers}/{self.pooling}/"
-            f"{chain_label(self.steps)}/{_short(self.reducer)}/{_short(self.clusterer)}"
-        )
+        """dataset/model/layers/pooling/transform/reducer/clusterer, every setting that differs shown (see _short)."""
+        transform = chain_label(list(self.transform)) + ("" if self.normalize == "none" else f"+{self.normalize}")
+        model = self.model_label or self.model.label.rsplit("/", 1)[-1]
+        return f"{self.dataset}/{model}/{self.layers}/{self.pooling}/{transform}/{_short(self.reducer)}/{_short(self.clusterer)}"
 
     @property
     def name(self) -> str:
@@ -165,15 +166,37 @@ def sweep_params(sweep: Sweep) -> dict[str, Any]:
     return flat
 
 
+# The setting shown right after a method's name (umap5, kmeans6, hdbscan15) and short names for the others.
+TELLING = {"umap": "n_components", "pca": "n_components", "kmeans": "k", "hdbscan": "min_cluster_size"}
+ABBREVIATIONS = {"n_neighbors": "nn", "min_dist": "md", "min_samples": "ms", "n_init": "ninit", "n_components": "nc"}
+VALUE_ONLY = frozenset({"metric", "cluster_selection_method"})  # values that name themselves (euclidean, leaf)
+
+
 def _short(settings: Settings) -> str:
-    """A method and the settings that tell its variants apart, e.g. umap5 or hdbscan15leaf."""
+    """A method, its telling setting, and every other setting that differs from its default, so that two different
+    settings never share a name: umap5, umap5-nn10-euclidean, hdbscan15-ms5-leaf, kmeanslabels-ninit3."""
     params = settings.as_params()
     method = params.pop("method")
-    telling = {"umap": ("n_components",), "pca": ("n_components",), "kmeans": ("k",), "hdbscan": ("min_cluster_size",)}
-    suffix = "".join(str(params[k]) for k in telling.get(method, ()) if k in params)
-    if params.get("cluster_selection_method") == "leaf":
-        suffix += "leaf"
-    return f"{method}{suffix}"
+    telling = TELLING.get(method)
+    name = method + (str(params.pop(telling)) if telling in params else "")
+    defaults = {k: f.get_default(call_default_factory=True) for k, f in type(settings).model_fields.items()}
+    for key, value in params.items():
+        if value != defaults.get(key):
+            name += f"-{value}" if key in VALUE_ONLY else f"-{ABBREVIATIONS.get(key, key)}{value}"
+    return name
+
+
+def distinct_model_labels(labels: list[str]) -> dict[str, str]:
+    """Each model label's shortest tail of path parts that no other label of the sweep ends with (org/name -> name)."""
+    parts = {label: label.split("/") for label in labels}
+    shown = {}
+    for label, pieces in parts.items():
+        for size in range(1, len(pieces) + 1):
+            tail = "/".join(pieces[-size:])
+            if not any(other != label and ("/".join(p[-size:]) == tail) for other, p in parts.items()):
+                break
+        shown[label] = tail.replace("/", "--")  # names are split on "/" into their axes
+    return shown
 
 
 def dataset_key(corpus: Corpus) -> str:
@@ -308,6 +331,7 @@ def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str,
     """The cartesian product datasets x models x grid axes, in a stable order."""
     grid = sweep.grid
     shared = sweep_params(sweep)
+    shown = distinct_model_labels([m.label for m in sweep.models])
     trials = []
     for spec, model in itertools.product(sweep.datasets, sweep.models):
         name = dataset_name(spec)
@@ -329,6 +353,7 @@ def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str,
                 dataset=name, model=model, resolved_model=resolved, layers=layers, pooling=pooling,
                 normalize=normalize, transform=tuple(transform), reducer=reducer, clusterer=clusterer, seed=seed,
                 stages=stages, own_stages=own_stages(stages, layers, pooling), sweep_params=shared,
+                model_label=shown[model.label],
             )
             identity = trial_identity(trial)
             trials.append(replace(trial, key=settings_key({**identity, "params": trial.params}),
