@@ -133,6 +133,10 @@ def caveats(ordered: list[ConfigurationRecord], metric: str) -> list[str]:
     if winner.metrics.get("truncated_fraction", 0.0) > MANY_TRUNCATED:
         notes.append(f"{winner.metrics['truncated_fraction']:.0%} of texts were longer than the model's maximum length "
                      "and were cut; consider long_texts: chunk_mean.")
+    if winner.metrics.get("split_fraction", 0.0) > MANY_TRUNCATED:  # long_texts: chunk_mean: nothing cut
+        notes.append(f"{winner.metrics['split_fraction']:.0%} of texts were longer than the model's maximum length and "
+                     f"were split into windows ({winner.metrics.get('windows_per_text_mean', float('nan')):.1f} per text "
+                     "on average) whose vectors were averaged; nothing was cut.")
     seeds = winner.metrics.get("n_seeds", 1.0)
     if seeds < FEW_SEEDS:
         notes.append(f"Only {seeds:.0f} seed(s) per configuration: stability across seeds is not established "

@@ -220,7 +220,7 @@ def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings
     scores["length_leakage_r2"] = executor.length_leakage(trial, "transform")
     scores["length_leakage_r2_pooled"] = executor.length_leakage(trial, "pool")
     table, scores["npmi_mean"] = described_clusters(executor.term_counts(trial), clusters, counts, top=evidence.top_terms)
-    scores["truncated_fraction"] = executor.truncated_fraction(trial)
+    scores.update(executor.long_text_info(trial))
     if trial.model.family == "static":
         scores["oov_fraction"] = executor.encode_info(trial).get("oov_fraction", float("nan"))
     scores.update(executor.stage_seconds(trial))

@@ -21,7 +21,7 @@ import numpy as np
 from harness.cache import StageCache
 from harness.cluster import cluster_labels
 from harness.datasets import Corpus
-from harness.encode import pooled_variants, token_counts, truncated_fraction
+from harness.encode import long_text_info, pooled_variants, token_counts
 from harness.keys import settings_key
 from harness.models import LoadedEncoder, loaded_encoder
 from harness.plan import Trial, pool_stage
@@ -112,7 +112,7 @@ class StageExecutor:
         else:
             counts = token_counts(encoder, corpus.texts)
             self._keep("encode", encode.key, counts, {
-                "settings": encode.settings, "truncated_fraction": truncated_fraction(counts, encoder),
+                "settings": encode.settings, **long_text_info(counts, encoder, trial.model.long_texts),
                 "seconds": time.perf_counter() - started,
             })
         if not missing:
@@ -173,9 +173,11 @@ class StageExecutor:
             self._encode(trial)
         return self._outputs[key]
 
-    def truncated_fraction(self, trial: Trial) -> float:
-        self.token_counts(trial)
-        return float(self._info[trial.stages["encode"].key]["truncated_fraction"])
+    def long_text_info(self, trial: Trial) -> dict[str, float]:
+        """truncated_fraction, and under chunk_mean windows_per_text_mean and split_fraction (see encode.long_text_info)."""
+        info = self.encode_info(trial)
+        names = ("truncated_fraction", "windows_per_text_mean", "split_fraction")
+        return {name: float(info[name]) for name in names if name in info}
 
     def pooled(self, trial: Trial, own: bool = False) -> np.ndarray:
         """The pooled vectors the trial's chain is computed from; with ``own``, those of the trial's own pooling."""
