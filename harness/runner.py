@@ -122,13 +122,13 @@ def _loaded(path: Path, sweep: Sweep, models: dict[str, ResolvedModel]) -> dict[
 
     Sources that balance lengths measure them with the tokenizer of the sweep's first model.
     """
-    from harness.datasets.card import tokenizer_counter
-
     corpora = {}
     count_tokens = None
     for index, spec in enumerate(sweep.datasets):
         first = models[sweep.models[0].label]
         if needs_tokenizer(spec) and count_tokens is None and first.family in ("sentence_transformer", "transformer"):
+            from harness.datasets.card import tokenizer_counter  # imports scikit-learn: only when lengths are balanced
+
             count_tokens = tokenizer_counter(first.folder)
         try:
             corpora[dataset_name(spec)] = loaded_corpus(spec, count_tokens)
