@@ -85,8 +85,8 @@ def test_equivalent_trials_are_computed_once_and_tagged(tmp_path, tiny_model_dir
     sweep = write_sweep(tmp_path, SWEEP.format(model=tiny_model_dir, cluster=CLUSTER_A))
     prepared = prepared_sweep(sweep)
     by_name = {t.name: t for t in prepared.trials}
-    twin = by_name[f"town_requests/{tiny_model_dir.name}/last/mean_sqrt_len/l2/umap4/kmeanslabels/s0"]
-    original = by_name[f"town_requests/{tiny_model_dir.name}/last/mean/l2/umap4/kmeanslabels/s0"]
+    twin = by_name[f"town_requests/{tiny_model_dir.name}/last/mean_sqrt_len/none+l2/umap4-nn10/kmeanslabels/s0"]
+    original = by_name[f"town_requests/{tiny_model_dir.name}/last/mean/none+l2/umap4-nn10/kmeanslabels/s0"]
     assert twin.equivalent_to == original.key and twin.stages == original.stages
 
     # The equivalence itself: after L2 normalisation mean and mean_sqrt_len pooled vectors agree to 1e-6.
