@@ -18,7 +18,6 @@ import pytest
 
 from harness.cluster import cluster_labels
 from harness.datasets import loaded_corpus
-from harness.datasets.synthetic import SyntheticSource
 from harness.encode import pooled_variants, token_counts
 from harness.lexical import tfidf_svd
 from harness.models import loaded_encoder, loaded_word_vectors

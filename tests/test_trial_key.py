@@ -68,7 +68,6 @@ evidence: {{resamples: 20, permutations: 19}}
 # cover every dataset source, model family, reducer, clusterer and transform step. A field added later fails
 # here until it changes the key or is listed in harness.plan.RESULT_NEUTRAL with its reason.
 
-import itertools  # noqa: E402
 import shutil  # noqa: E402
 import types  # noqa: E402
 import typing  # noqa: E402
