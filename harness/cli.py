@@ -61,8 +61,9 @@ def command_plan(args: argparse.Namespace) -> int:
         extra = f"  ({', '.join(f'{m} {n}' for m, n in by_method.items())})" if work.kind == "reduce" else ""
         print(f"{STAGE_LABELS[work.kind]:<16} {work.needed:>6} {work.cached:>6} {work.to_run:>6}{extra}")
     if equivalent:
-        print("\nmean and mean_sqrt_len differ by a positive factor per text: after l2 normalisation or a cosine UMAP")
-        print("they give the same clusters, and seed-free stages give the same result for every seed.")
+        print("\nmean and mean_sqrt_len differ by a positive factor per text (under long_texts: truncate, and for static")
+        print("vectors without remove_first_component): after l2 normalisation or a cosine UMAP they give the same")
+        print("clusters; seed-free stages give the same result for every seed.")
     return 0
 
 

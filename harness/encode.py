@@ -112,6 +112,22 @@ def pooled_variants(
 
 
 def truncated_fraction(counts: np.ndarray, encoder: LoadedEncoder) -> float:
-    """Share of texts longer than the model sees (special tokens included)."""
+    """Share of texts longer than the model sees (special tokens included): cut under long_texts: truncate."""
     specials = encoder.tokenizer.num_special_tokens_to_add(pair=False)
     return float(np.mean(counts + specials > encoder.max_length))
+
+
+def windows_per_text(counts: np.ndarray, encoder: LoadedEncoder) -> np.ndarray:
+    """How many windows each text is split into under long_texts: chunk_mean (at least one; see ``_windows``)."""
+    room = encoder.max_length - encoder.tokenizer.num_special_tokens_to_add(pair=False)
+    return np.maximum(1, -(-np.asarray(counts) // room))
+
+
+def long_text_info(counts: np.ndarray, encoder: LoadedEncoder, long_texts: str) -> dict[str, float]:
+    """What happened to texts longer than the model sees: cut (truncate), or split into windows (chunk_mean, where
+    nothing is cut, so the truncated fraction is 0)."""
+    if long_texts == "chunk_mean":
+        windows = windows_per_text(counts, encoder)
+        return {"truncated_fraction": 0.0, "windows_per_text_mean": float(windows.mean()),
+                "split_fraction": float(np.mean(windows > 1))}
+    return {"truncated_fraction": truncated_fraction(counts, encoder)}

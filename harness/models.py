@@ -85,6 +85,28 @@ def weights_digest(folder: Path) -> str:
     return _folder_digest(folder, stamp)
 
 
+# Files besides the weights that change what a model computes: its config (max_seq_length lives in
+# sentence_bert_config.json), tokenizer files, module settings (1_Pooling/config.json) and any remote code.
+MODEL_FILE_SUFFIXES = (".json", ".txt", ".model", ".py", ".tiktoken")
+
+
+def model_files_digest(folder: Path) -> str:
+    """SHA-256 (short) of a model folder's configuration, tokenizer and code files (everything but the weights)."""
+    files = sorted(p for p in folder.rglob("*") if p.is_file() and p.suffix in MODEL_FILE_SUFFIXES)
+    stamp = tuple((str(p), p.stat().st_size, p.stat().st_mtime_ns) for p in files)
+    return _files_digest(folder, stamp)
+
+
+@lru_cache(maxsize=32)
+def _files_digest(folder: Path, stamp: tuple) -> str:
+    digest = hashlib.sha256()
+    for name, _, _ in stamp:
+        path = Path(name)
+        digest.update(path.relative_to(folder).as_posix().encode())
+        digest.update(hashlib.sha256(path.read_bytes()).digest())
+    return digest.hexdigest()[:16]
+
+
 def _hub_offline() -> bool:
     return os.environ.get("HF_HUB_OFFLINE", "").lower() in ("1", "true", "yes", "on")
 

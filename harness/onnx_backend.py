@@ -12,6 +12,21 @@ from pathlib import Path
 from types import SimpleNamespace
 
 OPSET = 17
+EXPORT_LIBRARIES = ("onnx", "onnxruntime", "torch")  # what the exported graph and its run depend on
+
+
+def export_settings() -> dict:
+    """What an exported graph depends on besides the model: the opset and the versions of the exporting and running
+    libraries (part of the encode key of an ONNX backend, and of the export folder's name)."""
+    from importlib import metadata
+
+    versions = {}
+    for name in EXPORT_LIBRARIES:
+        try:
+            versions[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            versions[name] = "absent"
+    return {"opset": OPSET, **versions}
 
 
 def _wrapper(transformer, with_token_types: bool):

@@ -8,37 +8,59 @@ compute it, so trials sharing a prefix share those stages' outputs.
 
 from __future__ import annotations
 
-import hashlib
 import itertools
 from dataclasses import dataclass, field, replace
 from functools import lru_cache
 from importlib import metadata
-from pathlib import Path
 from typing import Any
+
+import numpy as np
 
 from harness._settings import Settings
 from harness.cluster import SEEDED_CLUSTERERS
-from harness.datasets import dataset_name
-from harness.keys import chained_key, settings_key
+from harness.datasets import Corpus, dataset_name
+from harness.keys import array_digest, chained_key, settings_key
 from harness.layers import LayerChoice
 from harness.models import ResolvedModel
 from harness.lexical import LEXICAL_POOLING
 from harness.pooling import MEAN_SCALED
 from harness.static_vectors import STATIC_POOLINGS
 from harness.reduce import SCALE_INVARIANT_REDUCERS, SEEDED_REDUCERS
-from harness.sweep import ModelSettings, Sweep
+from harness.sweep import FAMILY_KEYS, ModelSettings, Sweep
 from harness.transforms import NORMALIZATIONS, SCALE_REMOVING, chain_label
 
 STAGE_KINDS = ("encode", "pool", "transform", "reduce", "cluster")
 
-# The libraries whose versions enter each stage's key.
+# The libraries whose versions enter each stage's key ("score": the scores of a seed run, in its trial key).
 STAGE_LIBRARIES: dict[str, tuple[str, ...]] = {
-    "encode": ("torch", "transformers", "sentence-transformers"),
+    "encode": ("torch", "transformers", "sentence-transformers", "tokenizers"),
     "pool": ("torch",),
     "transform": ("numpy",),
     "reduce": ("umap-learn", "scikit-learn", "numba"),
     "cluster": ("hdbscan", "scikit-learn"),
+    "score": ("scikit-learn", "scipy", "numpy", "pandas", "hdbscan"),
 }
+
+# Settings that cannot change any number a seed run logs, each with the reason. Every other field of the
+# typed settings (the Sweep and everything nested in it) enters the trial key: through the dataset's content
+# (dataset_key), a stage key, or the trial's params. tests/test_trial_key.py walks every field of those
+# settings models and fails for one that changes no trial key unless it is listed here.
+RESULT_NEUTRAL: dict[str, str] = {
+    "Sweep.name": "names the MLflow experiment; finished trials are looked up in that experiment only",
+    "Sweep.question": "free text shown in the report",
+    "Sweep.rank_by": "orders configurations; the ranking is recomputed on every run",
+    "EvidenceSettings.resamples": "configuration-level intervals and ties, recomputed on every run from the "
+                                  "seeds' labels; no seed run's figure depends on it",
+    "EvidenceSettings.level": "as resamples: configuration-level, recomputed on every run",
+    "EvidenceSettings.seed": "as resamples: configuration-level, recomputed on every run",
+    "ModelSettings.batch_size": "how many texts share a forward pass; padding is masked out, so the vectors agree "
+                                "to float rounding (and the pooled-vector cache holds one of them)",
+    "FileSource.format": "how the file is parsed; the corpus read is keyed by its content",
+    "FileSource.max_chars": "a refusal threshold: a corpus that loads is the same under any value",
+}
+
+# Model fields that enter by content rather than by value: the files they name are in the weights digest.
+MODEL_FIELDS_BY_CONTENT = frozenset({"vectors", "vocabulary"})
 
 
 @lru_cache(maxsize=None)
@@ -75,6 +97,12 @@ class Trial:
     clusterer: Settings
     seed: int
     stages: dict[str, Stage] = field(compare=False)
+    sweep_params: dict[str, Any] = field(default_factory=dict, compare=False)  # sweep-wide settings that change scores
+    # The pool and transform stages of the trial's OWN pooling. They differ from ``stages`` where the chain is
+    # computed from another pooling (mean_sqrt_len from mean); figures of the trial's own vectors
+    # (length leakage, silhouette) are measured on these.
+    own_stages: dict[str, Stage] = field(default_factory=dict, compare=False)
+    model_label: str = ""  # the model as named in run names: the shortest tail of its label that no other model shares
     key: str = ""
     config_key: str = ""  # the same for the seeds of one configuration
     equivalent_to: str | None = None  # key of an earlier trial that shares every stage
@@ -84,11 +112,7 @@ class Trial:
         """Flat, consistently named settings: the MLflow params of the trial's run."""
         flat = {
             "dataset": self.dataset,
-            "model": self.model.name,
-            "family": self.model.family,
-            "backend": self.model.backend,
-            "max_length": self.model.max_length if self.model.max_length is not None else "model_default",
-            "long_texts": self.model.long_texts,
+            **model_params(self.model),
             "layers": self.layers,
             "pooling": self.pooling,
             "normalize": self.normalize,
@@ -97,6 +121,7 @@ class Trial:
         }
         flat.update({f"reduce.{k}": v for k, v in self.reducer.as_params().items()})
         flat.update({f"cluster.{k}": v for k, v in self.clusterer.as_params().items()})
+        flat.update(self.sweep_params)
         return flat
 
     @property
@@ -110,45 +135,83 @@ class Trial:
 
     @property
     def config_name(self) -> str:
-        return (
-            f"{self.dataset}/{self.model.label.rsplit('/', 1)[-1]}/{self.layers}/{self.pooling}/"
-            f"{chain_label(self.steps)}/{_short(self.reducer)}/{_short(self.clusterer)}"
-        )
+        """dataset/model/layers/pooling/transform/reducer/clusterer, every setting that differs shown (see _short)."""
+        transform = chain_label(list(self.transform)) + ("" if self.normalize == "none" else f"+{self.normalize}")
+        model = self.model_label or self.model.label.rsplit("/", 1)[-1]
+        return f"{self.dataset}/{model}/{self.layers}/{self.pooling}/{transform}/{_short(self.reducer)}/{_short(self.clusterer)}"
 
     @property
     def name(self) -> str:
         return f"{self.config_name}/s{self.seed}"
 
 
+def model_params(model: ModelSettings) -> dict[str, Any]:
+    """Every result-changing field of a model entry, by name (``model`` for its name); a family's own fields only
+    for that family. Files it names enter by content (the weights digest), not by path."""
+    flat: dict[str, Any] = {"model": model.name}
+    for name, value in model.as_params().items():
+        if name == "name" or name in MODEL_FIELDS_BY_CONTENT or f"ModelSettings.{name}" in RESULT_NEUTRAL:
+            continue
+        if any(name in keys and family != model.family for family, keys in FAMILY_KEYS.items()):
+            continue
+        flat[name] = ("model_default" if name == "max_length" else "default") if value is None else value
+    return flat
+
+
+def sweep_params(sweep: Sweep) -> dict[str, Any]:
+    """Sweep-wide settings that change a seed run's figures: the storage dtype and the evidence settings used per seed."""
+    flat: dict[str, Any] = {"storage_dtype": sweep.storage_dtype}
+    flat.update({f"evidence.{k}": v for k, v in sweep.evidence.as_params().items()
+                 if f"EvidenceSettings.{k}" not in RESULT_NEUTRAL})
+    return flat
+
+
+# The setting shown right after a method's name (umap5, kmeans6, hdbscan15) and short names for the others.
+TELLING = {"umap": "n_components", "pca": "n_components", "kmeans": "k", "hdbscan": "min_cluster_size"}
+ABBREVIATIONS = {"n_neighbors": "nn", "min_dist": "md", "min_samples": "ms", "n_init": "ninit", "n_components": "nc"}
+VALUE_ONLY = frozenset({"metric", "cluster_selection_method"})  # values that name themselves (euclidean, leaf)
+
+
 def _short(settings: Settings) -> str:
-    """A method and the settings that tell its variants apart, e.g. umap5 or hdbscan15leaf."""
+    """A method, its telling setting, and every other setting that differs from its default, so that two different
+    settings never share a name: umap5, umap5-nn10-euclidean, hdbscan15-ms5-leaf, kmeanslabels-ninit3."""
     params = settings.as_params()
     method = params.pop("method")
-    telling = {"umap": ("n_components",), "pca": ("n_components",), "kmeans": ("k",), "hdbscan": ("min_cluster_size",)}
-    suffix = "".join(str(params[k]) for k in telling.get(method, ()) if k in params)
-    if params.get("cluster_selection_method") == "leaf":
-        suffix += "leaf"
-    return f"{method}{suffix}"
+    telling = TELLING.get(method)
+    name = method + (str(params.pop(telling)) if telling in params else "")
+    defaults = {k: f.get_default(call_default_factory=True) for k, f in type(settings).model_fields.items()}
+    for key, value in params.items():
+        if value != defaults.get(key):
+            name += f"-{value}" if key in VALUE_ONLY else f"-{ABBREVIATIONS.get(key, key)}{value}"
+    return name
 
 
-def dataset_key(spec: Settings, tokenizer_weights: str | None = None) -> str:
-    """Key of a dataset entry: its settings, the bytes of a file it reads, and the tokenizer it balances lengths with."""
-    settings = spec.as_params()
-    if tokenizer_weights is not None:
-        settings["length_tokenizer"] = tokenizer_weights
-    path = getattr(spec, "path", None)
-    if isinstance(path, Path):
-        settings["file_sha256"] = _file_digest(path, path.stat().st_size, path.stat().st_mtime_ns)
-    return settings_key(settings)
+def distinct_model_labels(labels: list[str]) -> dict[str, str]:
+    """Each model label's shortest tail of path parts that no other label of the sweep ends with (org/name -> name)."""
+    parts = {label: label.split("/") for label in labels}
+    shown = {}
+    for label, pieces in parts.items():
+        for size in range(1, len(pieces) + 1):
+            tail = "/".join(pieces[-size:])
+            if not any(other != label and ("/".join(p[-size:]) == tail) for other, p in parts.items()):
+                break
+        shown[label] = tail.replace("/", "--")  # names are split on "/" into their axes
+    return shown
 
 
-@lru_cache(maxsize=64)
-def _file_digest(path: Path, size: int, mtime_ns: int) -> str:
-    digest = hashlib.sha256()
-    with path.open("rb") as handle:
-        for block in iter(lambda: handle.read(1 << 22), b""):
-            digest.update(block)
-    return digest.hexdigest()
+def dataset_key(corpus: Corpus) -> str:
+    """Key of a loaded dataset: its content (texts in order, gold labels, ids, label names), never its settings.
+
+    Whatever produced the corpus (a file's bytes, a mirror folder named by the sweep or by
+    HARNESS_DATA_DIR, the network route, sampling, length balancing with some tokenizer, the
+    loader's own code) acts on the result only through this content, so no change to any of
+    them can leave a stale key, and two entries that load the same corpus share their stages.
+    """
+    return settings_key({
+        "fingerprint": corpus.fingerprint,
+        "ids": array_digest(np.asarray(corpus.ids).astype(str)),
+        "label_names": list(corpus.label_names) if corpus.label_names is not None else None,
+    })
 
 
 def make_stage(kind: str, parent: str | None, settings: dict[str, Any]) -> Stage:
@@ -162,11 +225,22 @@ FAMILY_POOLINGS: dict[str, tuple[str, ...] | None] = {
 }
 
 
-def family_settings(model: ModelSettings) -> dict[str, Any]:
+def family_settings(model: ModelSettings, resolved: ResolvedModel) -> dict[str, Any]:
+    """The encode settings of a family beyond the weights: for transformers, the folder's config, tokenizer and
+    code files (and, for an ONNX backend, the opset and exporting libraries); a family's own settings otherwise."""
     if model.family == "static":
         return {"sif_a": model.sif_a, "remove_first_component": model.remove_first_component}
     if model.family == "lexical":
         return {"dimensions": model.dimensions}
+    if model.family in ("sentence_transformer", "transformer"):
+        from harness.models import model_files_digest
+
+        settings: dict[str, Any] = {"model_files": model_files_digest(resolved.folder)}
+        if model.backend != "torch":
+            from harness.onnx_backend import export_settings
+
+            settings["export"] = export_settings()
+        return settings
     return {}
 
 
@@ -197,13 +271,28 @@ def scale_invariant_path(chain: list[Settings], reducer: Settings) -> bool:
     return invariant is not None and invariant(reducer)
 
 
-def computed_pooling(pooling: str, chain: list[Settings], reducer: Settings) -> str:
+def mean_scaled_per_text(model: ModelSettings) -> bool:
+    """Whether this model's mean_sqrt_len vector of a text is its mean vector times a positive factor.
+
+    Not under ``long_texts: chunk_mean`` (windows of different lengths are averaged, each with
+    its own factor) nor for static vectors with ``remove_first_component`` (the component is
+    removed from each pooling's vectors separately). tests/test_equivalences.py computes both
+    sides of every pair this lets the planner merge.
+    """
+    if model.family in ("sentence_transformer", "transformer"):
+        return model.long_texts == "truncate"
+    if model.family == "static":
+        return not model.remove_first_component
+    return False
+
+
+def computed_pooling(pooling: str, chain: list[Settings], reducer: Settings, model: ModelSettings) -> str:
     """The pooling whose output a trial's downstream stages are computed from.
 
-    mean and mean_sqrt_len differ by a positive factor per row; on a scale-invariant
-    path they give the same clusters, so both are computed from mean.
+    Where mean and mean_sqrt_len differ by a positive factor per text, a scale-invariant
+    path gives them the same clusters, so both are computed from mean.
     """
-    if pooling in MEAN_SCALED and scale_invariant_path(chain, reducer):
+    if pooling in MEAN_SCALED and mean_scaled_per_text(model) and scale_invariant_path(chain, reducer):
         return "mean"
     return pooling
 
@@ -215,9 +304,9 @@ def trial_stages(
     encode = make_stage("encode", dataset_key_, {
         "model": resolved.name, "family": model.family, "weights": resolved.weights_digest,
         "max_length": model.max_length, "long_texts": model.long_texts, "backend": model.backend,
-        **family_settings(model),
+        "trust_remote_code": model.trust_remote_code, **family_settings(model, resolved),
     })
-    pool = pool_stage(encode.key, layers, computed_pooling(pooling, chain, reducer), dtype)
+    pool = pool_stage(encode.key, layers, computed_pooling(pooling, chain, reducer, model), dtype)
     transform = make_stage("transform", pool.key, {"chain": [step.as_params() for step in chain]})
     reduce_settings = reducer.as_params()
     if reduce_settings["method"] in SEEDED_REDUCERS:
@@ -230,9 +319,19 @@ def trial_stages(
     return {"encode": encode, "pool": pool, "transform": transform, "reduce": reduce, "cluster": cluster}
 
 
+def own_stages(stages: dict[str, Stage], layers: LayerChoice, pooling: str) -> dict[str, Stage]:
+    """The pool and transform stages of a trial's own pooling (the same stages when it is computed from them)."""
+    if stages["pool"].settings["pooling"] == pooling:
+        return {"pool": stages["pool"], "transform": stages["transform"]}
+    pool = pool_stage(stages["encode"].key, layers, pooling, stages["pool"].settings["dtype"])
+    return {"pool": pool, "transform": make_stage("transform", pool.key, stages["transform"].settings)}
+
+
 def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str, ResolvedModel]) -> list[Trial]:
     """The cartesian product datasets x models x grid axes, in a stable order."""
     grid = sweep.grid
+    shared = sweep_params(sweep)
+    shown = distinct_model_labels([m.label for m in sweep.models])
     trials = []
     for spec, model in itertools.product(sweep.datasets, sweep.models):
         name = dataset_name(spec)
@@ -253,12 +352,26 @@ def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str,
             trial = Trial(
                 dataset=name, model=model, resolved_model=resolved, layers=layers, pooling=pooling,
                 normalize=normalize, transform=tuple(transform), reducer=reducer, clusterer=clusterer, seed=seed,
-                stages=stages,
+                stages=stages, own_stages=own_stages(stages, layers, pooling), sweep_params=shared,
+                model_label=shown[model.label],
             )
-            identity = {"dataset": dataset_keys[name], "weights": resolved.weights_digest}
-            trials.append(replace(trial, key=settings_key({**identity, **trial.params}),
-                                  config_key=settings_key({**identity, **trial.config_params})))
+            identity = trial_identity(trial)
+            trials.append(replace(trial, key=settings_key({**identity, "params": trial.params}),
+                                  config_key=settings_key({**identity, "params": trial.config_params})))
     return _marked_equivalents(trials)
+
+
+def trial_identity(trial: Trial) -> dict[str, Any]:
+    """What, besides its params, a trial's results depend on: the stage chains of its own vectors and of the
+    vectors its clusters are computed from (which hold the data's content, the model's files, every stage's
+    settings and library versions up to the transform), and the libraries of reduction, clustering and scoring."""
+    from harness import __version__
+
+    return {
+        "own_vectors": trial.own_stages["transform"].key,
+        "clustered_vectors": trial.stages["transform"].key,
+        "versions": {"harness": __version__, **{kind: library_versions(kind) for kind in ("reduce", "cluster", "score")}},
+    }
 
 
 def _marked_equivalents(trials: list[Trial]) -> list[Trial]:
@@ -291,9 +404,17 @@ def configurations(trials: list[Trial]) -> list[list[Trial]]:
     return list(groups.values())
 
 
+def needed_stages(trials: list[Trial], kind: str) -> dict[str, Trial]:
+    """Distinct stages of a kind the trials need, each with a trial that needs it (own pooled variants included)."""
+    needed = {t.stages[kind].key: t for t in trials}
+    if kind in ("pool", "transform"):
+        needed.update({t.own_stages[kind].key: t for t in trials if t.own_stages[kind].key not in needed})
+    return needed
+
+
 def stage_counts(trials: list[Trial]) -> dict[str, int]:
     """Distinct stages of each kind the trials need (encode = forward passes)."""
-    return {kind: len({t.stages[kind].key for t in trials}) for kind in STAGE_KINDS}
+    return {kind: len(needed_stages(trials, kind)) for kind in STAGE_KINDS}
 
 
 @dataclass(frozen=True)
@@ -314,10 +435,11 @@ def stage_work(trials: list[Trial], is_cached) -> list[StageWork]:
     """
     work = []
     for kind in STAGE_KINDS:
-        stages = {t.stages[kind].key: t for t in trials}
+        stages = needed_stages(trials, kind)
         if kind == "encode":
             cached = sum(
-                all(is_cached("pool", t.stages["pool"].key) for t in trials if t.stages["encode"].key == key)
+                all(is_cached("pool", t.stages["pool"].key) and is_cached("pool", t.own_stages["pool"].key)
+                    for t in trials if t.stages["encode"].key == key)
                 and is_cached("encode", key)
                 for key in stages
             )

@@ -18,8 +18,12 @@ import numpy as np
 
 from harness.readback import ConfigurationRecord, SweepRecord
 
-# Axes of the grid as segments of a configuration's name: dataset/model/layers/pooling/transform/reduce/cluster.
-AXES = {"model": 1, "layers": 2, "pooling": 3, "transform": 4, "reduce": 5, "cluster": 6}
+# Axes of the grid, as the params of a configuration run that set them (reduce.* and cluster.* by prefix; the
+# model axis is every other param but the dataset and the sweep-wide ones). Grouping by settings, not by name
+# segments, keeps apart options that a name could shorten alike.
+AXES = ("model", "layers", "pooling", "transform", "reduce", "cluster")
+AXIS_PARAMS = {"layers": ("layers",), "pooling": ("pooling",), "transform": ("transform", "normalize")}
+NOT_MODEL = frozenset({"dataset", "seed", "storage_dtype"})
 LOW_COVERAGE, HIGH_LENGTH_INDEX, MANY_TRUNCATED, FEW_SEEDS = 0.8, 0.2, 0.05, 3
 
 
@@ -40,8 +44,25 @@ def ranked(configurations: list[ConfigurationRecord], metric: str) -> list[Confi
     return sorted(configurations, key=key)
 
 
-def axis_option(configuration: ConfigurationRecord, axis: str) -> str:
-    return configuration.name.split("/")[AXES[axis]]
+def axis_settings(params: dict[str, str], axis: str) -> dict[str, str]:
+    """The params of a configuration that belong to one axis of the grid."""
+    if axis in AXIS_PARAMS:
+        return {k: params.get(k, "") for k in AXIS_PARAMS[axis]}
+    if axis in ("reduce", "cluster"):
+        return {k: v for k, v in params.items() if k.startswith(f"{axis}.")}
+    taken = {k for names in AXIS_PARAMS.values() for k in names}
+    return {k: v for k, v in params.items()
+            if k not in NOT_MODEL and k not in taken and not k.startswith(("reduce.", "cluster.", "evidence."))}
+
+
+def axis_option(configuration: ConfigurationRecord, axis: str, shown: Optional[set[str]] = None) -> str:
+    """A readable label of the configuration's option on an axis: the settings in ``shown`` (those that vary), a bare
+    value when only one does."""
+    settings = axis_settings(configuration.params, axis)
+    keys = [k for k in settings if shown is None or k in shown] or list(settings)
+    if len(keys) == 1:
+        return str(settings[keys[0]])
+    return ", ".join(f"{k.split('.', 1)[-1]}={settings[k]}" for k in keys)
 
 
 @dataclass(frozen=True)
@@ -58,11 +79,13 @@ def main_effects(configurations: list[ConfigurationRecord], metric: str) -> dict
     with a normal-approximation 95 % interval (mean +- 1.96 standard errors over configurations)."""
     effects: dict[str, list[Effect]] = {}
     for axis in AXES:
+        options = [axis_settings(c.params, axis) for c in configurations]
+        varying = {k for k in set().union(*options) if len({str(o.get(k)) for o in options}) > 1} if options else set()
         groups: dict[str, list[float]] = {}
         for c in configurations:
             value = c.metrics.get(metric, float("nan"))
             if not math.isnan(value):
-                groups.setdefault(axis_option(c, axis), []).append(value)
+                groups.setdefault(axis_option(c, axis, varying), []).append(value)
         if len(groups) < 2:
             continue
         rows = []
@@ -110,6 +133,10 @@ def caveats(ordered: list[ConfigurationRecord], metric: str) -> list[str]:
     if winner.metrics.get("truncated_fraction", 0.0) > MANY_TRUNCATED:
         notes.append(f"{winner.metrics['truncated_fraction']:.0%} of texts were longer than the model's maximum length "
                      "and were cut; consider long_texts: chunk_mean.")
+    if winner.metrics.get("split_fraction", 0.0) > MANY_TRUNCATED:  # long_texts: chunk_mean: nothing cut
+        notes.append(f"{winner.metrics['split_fraction']:.0%} of texts were longer than the model's maximum length and "
+                     f"were split into windows ({winner.metrics.get('windows_per_text_mean', float('nan')):.1f} per text "
+                     "on average) whose vectors were averaged; nothing was cut.")
     seeds = winner.metrics.get("n_seeds", 1.0)
     if seeds < FEW_SEEDS:
         notes.append(f"Only {seeds:.0f} seed(s) per configuration: stability across seeds is not established "

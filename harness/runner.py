@@ -37,13 +37,14 @@ ProgressFactory = Callable[..., Any]
 
 @dataclass
 class PreparedSweep:
-    """A parsed sweep with its models resolved and its trials planned; no data loaded."""
+    """A parsed sweep with its models resolved, its data loaded and its trials planned (keyed by the data's content)."""
 
     path: Path
     sweep: Sweep
     models: dict[str, ResolvedModel]
     dataset_keys: dict[str, str]
     trials: list[Trial]
+    corpora: dict[str, Corpus] = field(default_factory=dict, repr=False)
 
 
 @dataclass
@@ -53,6 +54,7 @@ class TrialResult:
     scores: dict[str, float] = field(default_factory=dict)
     error: Optional[str] = None
     run_id: Optional[str] = None
+    clusters: Optional[np.ndarray] = field(default=None, repr=False)  # the labels every figure of the run is from
 
 
 @dataclass
@@ -96,7 +98,12 @@ class SweepResult:
 
 
 def prepared_sweep(path: str | Path) -> PreparedSweep:
-    """Parse the sweep, resolve its models and plan its trials."""
+    """Parse the sweep, resolve its models, load its data and plan its trials.
+
+    The data are loaded here because every stage key starts from the dataset's content
+    (``dataset_key``): a key made before the data are read could not see a changed file,
+    mirror or route.
+    """
     path = Path(path)
     sweep = load_sweep(path)
     models = {}
@@ -105,32 +112,35 @@ def prepared_sweep(path: str | Path) -> PreparedSweep:
             models[spec.label] = resolve_family_model(spec)
         except HarnessError as err:
             raise sweep_error_at(path, ["models", index, "name"], str(err)) from None
-    first_model = models[sweep.models[0].label]
-    keys = {
-        dataset_name(spec): dataset_key(spec, first_model.weights_digest if needs_tokenizer(spec) else None)
-        for spec in sweep.datasets
-    }
-    return PreparedSweep(path=path, sweep=sweep, models=models, dataset_keys=keys, trials=planned_trials(sweep, keys, models))
+    corpora = _loaded(path, sweep, models)
+    keys = {name: dataset_key(corpus) for name, corpus in corpora.items()}
+    return PreparedSweep(path=path, sweep=sweep, models=models, dataset_keys=keys,
+                         trials=planned_trials(sweep, keys, models), corpora=corpora)
 
 
-def loaded_corpora(prepared: PreparedSweep) -> dict[str, Corpus]:
+def _loaded(path: Path, sweep: Sweep, models: dict[str, ResolvedModel]) -> dict[str, Corpus]:
     """Load every dataset; a data problem is reported at the sweep entry that names the data.
 
     Sources that balance lengths measure them with the tokenizer of the sweep's first model.
     """
-    from harness.datasets.card import tokenizer_counter
-
     corpora = {}
     count_tokens = None
-    for index, spec in enumerate(prepared.sweep.datasets):
-        first = prepared.models[prepared.sweep.models[0].label]
+    for index, spec in enumerate(sweep.datasets):
+        first = models[sweep.models[0].label]
         if needs_tokenizer(spec) and count_tokens is None and first.family in ("sentence_transformer", "transformer"):
+            from harness.datasets.card import tokenizer_counter  # imports scikit-learn: only when lengths are balanced
+
             count_tokens = tokenizer_counter(first.folder)
         try:
             corpora[dataset_name(spec)] = loaded_corpus(spec, count_tokens)
         except HarnessError as err:
-            raise sweep_error_at(prepared.path, ["datasets", index], str(err)) from None
+            raise sweep_error_at(path, ["datasets", index], str(err)) from None
     return corpora
+
+
+def loaded_corpora(prepared: PreparedSweep) -> dict[str, Corpus]:
+    """The sweep's corpora, as loaded (once) when it was prepared."""
+    return prepared.corpora
 
 
 def check_against_data(prepared: PreparedSweep, corpora: dict[str, Corpus]) -> None:
@@ -205,11 +215,13 @@ def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings
     clusters = executor.clustered(trial)
     counts = executor.token_counts(trial)
     scores = trial_scores(clusters, counts, corpus.labels)
-    scores.update(label_free_scores(clusters, counts, executor.pooled(trial), executor.reduced(trial), seed=trial.seed,
-                                    permutations=evidence.permutations, max_points=evidence.max_points))
-    scores["length_leakage_r2"] = executor.length_leakage(trial)
+    # Figures of the trial's own vectors come from its own pooling, also where its clusters are computed from another.
+    scores.update(label_free_scores(clusters, counts, executor.pooled(trial, own=True), executor.reduced(trial),
+                                    seed=trial.seed, permutations=evidence.permutations, max_points=evidence.max_points))
+    scores["length_leakage_r2"] = executor.length_leakage(trial, "transform")
+    scores["length_leakage_r2_pooled"] = executor.length_leakage(trial, "pool")
     table, scores["npmi_mean"] = described_clusters(executor.term_counts(trial), clusters, counts, top=evidence.top_terms)
-    scores["truncated_fraction"] = executor.truncated_fraction(trial)
+    scores.update(executor.long_text_info(trial))
     if trial.model.family == "static":
         scores["oov_fraction"] = executor.encode_info(trial).get("oov_fraction", float("nan"))
     scores.update(executor.stage_seconds(trial))
@@ -262,8 +274,9 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
     try:
         for trial in configuration:
             if trial.key in done:
-                run = done[trial.key]
-                result.seeds.append(TrialResult(trial, "REUSED", dict(run.data.metrics), run_id=run.info.run_id))
+                run, clusters = done[trial.key]
+                result.seeds.append(TrialResult(trial, "REUSED", dict(run.data.metrics), run_id=run.info.run_id,
+                                                clusters=clusters))
                 continue
             current = tracker.start_run(trial.name, config_run, "trial", params[trial.key], _trial_tags(trial, corpus),
                                         trial_key=trial.key)
@@ -273,7 +286,7 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
                 scores, table, clusters, counts = run_trial(executor, trial, corpus, evidence)
                 _log_trial(tracker, current, trial, corpus, scores, table, clusters, counts)
                 tracker.end(current, "FINISHED")
-                result.seeds.append(TrialResult(trial, "FINISHED", scores, run_id=current))
+                result.seeds.append(TrialResult(trial, "FINISHED", scores, run_id=current, clusters=clusters))
                 crash_point("between_trials")
                 if not result.descriptions:
                     result.descriptions = table
@@ -289,7 +302,9 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
             current = None
             on_trial()
         if result.complete:
-            found = configuration_evidence([r.scores for r in result.seeds], [executor.clustered(t) for t in configuration],
+            # Means, intervals and stability from the same labels: each seed's own (a reused seed's from its run's
+            # assignments.parquet, which its logged scores were computed from), never a recomputation.
+            found = configuration_evidence([r.scores for r in result.seeds], [r.clusters for r in result.seeds],
                                            corpus.labels, resamples=evidence.resamples, seed=evidence.seed,
                                            level=evidence.level, seed_free=seed_free(first.reducer, first.clusterer))
             result.metrics, result.distributions, result.tags = found.metrics(), found.distributions, found.tags()
@@ -303,6 +318,26 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
         tracker.end(config_run, "KILLED")
         raise
     return result
+
+
+def _reusable_runs(tracker, trials: list[Trial], corpora: dict[str, Corpus]) -> dict[str, tuple[Any, np.ndarray]]:
+    """FINISHED runs of these trials with the cluster labels of their own assignments.parquet, by trial key.
+
+    A run whose assignments are missing, or do not list this corpus's texts in order, is not reused: its
+    trial runs again rather than mixing its logged scores with labels from elsewhere.
+    """
+    finished = tracker.finished_trials()
+    reusable = {}
+    for trial in trials:
+        run = finished.get(trial.key)
+        if run is None:
+            continue
+        table = tracker.run_table(run.info.run_id, "assignments.parquet")
+        ids = corpora[trial.dataset].ids
+        if table is not None and len(table) == len(ids) and np.array_equal(table["id"].astype(str).to_numpy(),
+                                                                           np.asarray(ids).astype(str)):
+            reusable[trial.key] = (run, table["cluster"].to_numpy(np.int64))
+    return reusable
 
 
 def execute_sweep(
@@ -330,7 +365,7 @@ def execute_sweep(
     sweep = prepared.sweep
     tracker = SweepTracker(tracking_uri, results_dir / "artifacts", sweep.name)
     killed = tracker.mark_orphans_killed()
-    done = tracker.finished_trials() if resume else {}
+    done = _reusable_runs(tracker, prepared.trials, corpora) if resume else {}
     pending = [t for t in prepared.trials if t.key not in done]
     grid = sweep.grid.as_params()
     parent = tracker.start_run(sweep.name, None, "sweep",

@@ -21,7 +21,8 @@ import numpy as np
 from harness.cache import StageCache
 from harness.cluster import cluster_labels
 from harness.datasets import Corpus
-from harness.encode import pooled_variants, token_counts, truncated_fraction
+from harness.encode import long_text_info, pooled_variants, token_counts
+from harness.keys import settings_key
 from harness.models import LoadedEncoder, loaded_encoder
 from harness.plan import Trial, pool_stage
 from harness.reduce import reduced
@@ -48,8 +49,9 @@ class StageExecutor:
         self._variants: dict[str, set] = defaultdict(set)
         self._encode_progress = encode_progress
         self._derived: dict[tuple, Any] = {}
-        for trial in trials:
-            self._variants[trial.stages["encode"].key].add((trial.layers, trial.stages["pool"].settings["pooling"]))
+        for trial in trials:  # the pooling the chain is computed from, and the trial's own (one forward pass serves both)
+            for pool in (trial.stages["pool"], trial.own_stages["pool"]):
+                self._variants[trial.stages["encode"].key].add((trial.layers, pool.settings["pooling"]))
 
     # -- storage -------------------------------------------------------------------------------------------
     def _held(self, kind: str, key: str) -> bool:
@@ -83,7 +85,9 @@ class StageExecutor:
                 from harness.onnx_backend import onnx_encoder
 
                 root = self.cache.root if self.cache is not None else Path(tempfile.mkdtemp(prefix="harness-onnx-"))
-                folder = root / "onnx" / f"{trial.resolved_model.weights_digest}-{trial.resolved_model.family}"
+                # One export per encode key's model part: weights, model files, opset and exporting libraries.
+                export = settings_key({k: trial.stages["encode"].settings.get(k) for k in ("weights", "model_files", "export")})
+                folder = root / "onnx" / f"{trial.resolved_model.weights_digest}-{trial.resolved_model.family}-{export}"
                 encoder = onnx_encoder(encoder, folder, int8=spec.backend == "onnx_int8")
             self._encoders[cache_key] = encoder
             self.work["model_loads"] += 1
@@ -108,7 +112,7 @@ class StageExecutor:
         else:
             counts = token_counts(encoder, corpus.texts)
             self._keep("encode", encode.key, counts, {
-                "settings": encode.settings, "truncated_fraction": truncated_fraction(counts, encoder),
+                "settings": encode.settings, **long_text_info(counts, encoder, trial.model.long_texts),
                 "seconds": time.perf_counter() - started,
             })
         if not missing:
@@ -169,12 +173,15 @@ class StageExecutor:
             self._encode(trial)
         return self._outputs[key]
 
-    def truncated_fraction(self, trial: Trial) -> float:
-        self.token_counts(trial)
-        return float(self._info[trial.stages["encode"].key]["truncated_fraction"])
+    def long_text_info(self, trial: Trial) -> dict[str, float]:
+        """truncated_fraction, and under chunk_mean windows_per_text_mean and split_fraction (see encode.long_text_info)."""
+        info = self.encode_info(trial)
+        names = ("truncated_fraction", "windows_per_text_mean", "split_fraction")
+        return {name: float(info[name]) for name in names if name in info}
 
-    def pooled(self, trial: Trial) -> np.ndarray:
-        key = trial.stages["pool"].key
+    def pooled(self, trial: Trial, own: bool = False) -> np.ndarray:
+        """The pooled vectors the trial's chain is computed from; with ``own``, those of the trial's own pooling."""
+        key = (trial.own_stages if own else trial.stages)["pool"].key
         if not self._held("pool", key):
             self._encode(trial)
         return np.asarray(self._outputs[key], dtype=np.float32)
@@ -195,9 +202,9 @@ class StageExecutor:
         self._keep(kind, stage.key, array, {"settings": stage.settings, "seconds": seconds, "computed_on": "dask"})
 
     def _computed(self, trial: Trial, kind: str, counter: str, inputs: Callable[[], tuple],
-                  compute: Callable[..., np.ndarray]) -> np.ndarray:
+                  compute: Callable[..., np.ndarray], stage=None) -> np.ndarray:
         """The stage's output; when computed, its inputs are fetched first so that only its own work is timed."""
-        stage = trial.stages[kind]
+        stage = stage or trial.stages[kind]
         if not self._held(kind, stage.key):
             arguments = inputs()
             started = time.perf_counter()
@@ -208,9 +215,12 @@ class StageExecutor:
             self._keep(kind, stage.key, array, {"settings": stage.settings, "seconds": seconds})
         return self._outputs[stage.key]
 
-    def transformed(self, trial: Trial) -> np.ndarray:
-        return self._computed(trial, "transform", "transforms", lambda: (self.pooled(trial), self.token_counts(trial)),
-                              lambda pooled, counts: transformed(pooled, counts, trial.steps))
+    def transformed(self, trial: Trial, own: bool = False) -> np.ndarray:
+        """The vectors the trial's reducer sees; with ``own``, the same chain applied to the trial's own pooling."""
+        stage = (trial.own_stages if own else trial.stages)["transform"]
+        return self._computed(trial, "transform", "transforms",
+                              lambda: (self.pooled(trial, own), self.token_counts(trial)),
+                              lambda pooled, counts: transformed(pooled, counts, trial.steps), stage=stage)
 
     def reduced(self, trial: Trial) -> np.ndarray:
         return self._computed(trial, "reduce", f"{trial.reducer.method}_fits", lambda: (self.transformed(trial),),
@@ -232,12 +242,14 @@ class StageExecutor:
 
         return self._memo(("terms", trial.dataset), lambda: term_counts(self.corpora[trial.dataset].texts))
 
-    def length_leakage(self, trial: Trial, seed: int = 0) -> float:
-        """Cross-validated R^2 of log length from the pooled vectors, once per pooled variant."""
+    def length_leakage(self, trial: Trial, kind: str = "transform", seed: int = 0) -> float:
+        """Cross-validated R^2 of log length from the trial's own vectors: after its transform (the vectors that are
+        reduced) or, with ``kind="pool"``, as pooled. Once per stage key."""
         from harness.metrics import length_leakage_r2
 
-        return self._memo(("leakage", trial.stages["pool"].key, seed), lambda: length_leakage_r2(
-            self.pooled(trial), np.maximum(self.token_counts(trial), 1), seed=seed))
+        vectors = self.transformed if kind == "transform" else self.pooled
+        return self._memo(("leakage", trial.own_stages[kind].key, seed), lambda: length_leakage_r2(
+            vectors(trial, own=True), np.maximum(self.token_counts(trial), 1), seed=seed))
 
     def stage_seconds(self, trial: Trial) -> dict[str, float]:
         """Seconds each of the trial's stages took when it was computed (shared or cached stages count in full)."""

@@ -104,6 +104,16 @@ class SweepTracker:
             by_key[run.data.tags[TRIAL_KEY_TAG]] = run
         return by_key
 
+    def run_table(self, run_id: str, name: str):
+        """A Parquet artifact of a run as a DataFrame, or None when it is missing or unreadable."""
+        import pandas as pd
+
+        with tempfile.TemporaryDirectory() as folder:
+            try:
+                return pd.read_parquet(self.client.download_artifacts(run_id, name, folder))
+            except Exception:  # a missing or broken artifact: the caller runs the trial again
+                return None
+
     def mark_orphans_killed(self) -> int:
         """Mark KILLED the runs left RUNNING by a process of this host that no longer exists."""
         marked = 0

@@ -11,6 +11,7 @@ import time
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from harness.cache import CacheWarning, StageCache
@@ -84,8 +85,8 @@ def test_equivalent_trials_are_computed_once_and_tagged(tmp_path, tiny_model_dir
     sweep = write_sweep(tmp_path, SWEEP.format(model=tiny_model_dir, cluster=CLUSTER_A))
     prepared = prepared_sweep(sweep)
     by_name = {t.name: t for t in prepared.trials}
-    twin = by_name[f"town_requests/{tiny_model_dir.name}/last/mean_sqrt_len/l2/umap4/hdbscan8/s0"]
-    original = by_name[f"town_requests/{tiny_model_dir.name}/last/mean/l2/umap4/hdbscan8/s0"]
+    twin = by_name[f"town_requests/{tiny_model_dir.name}/last/mean_sqrt_len/none+l2/umap4-nn10/kmeanslabels/s0"]
+    original = by_name[f"town_requests/{tiny_model_dir.name}/last/mean/none+l2/umap4-nn10/kmeanslabels/s0"]
     assert twin.equivalent_to == original.key and twin.stages == original.stages
 
     # The equivalence itself: after L2 normalisation mean and mean_sqrt_len pooled vectors agree to 1e-6.
@@ -102,10 +103,35 @@ def test_equivalent_trials_are_computed_once_and_tagged(tmp_path, tiny_model_dir
     results = tmp_path / "results"
     result = run_sweep_file(sweep, results)
     assert result.work["umap_fits"] == 6  # 8 pooled variants, but mean_sqrt_len reuses mean's reduction twice
-    _, _, children = finished_runs(result.tracking_uri, "cached")
+    client, _, children = finished_runs(result.tracking_uri, "cached")
     runs = {c.data.tags["harness.trial_key"]: c for c in children}
     assert runs[twin.key].data.tags["harness.equivalent_to"] == original.key
-    assert runs[twin.key].data.metrics["ari"] == runs[original.key].data.metrics["ari"]
+    twin_metrics, original_metrics = runs[twin.key].data.metrics, runs[original.key].data.metrics
+    assert twin_metrics.keys() == original_metrics.keys()
+    # Every figure of the shared clustering is the same number; the twin's own figures are measured on its own
+    # vectors (mean_sqrt_len pooled), checked here against a recomputation from its own pooling.
+    own_vectors = {"length_leakage_r2", "length_leakage_r2_pooled", "silhouette"}
+    timings = {"encode_seconds", "reduce_seconds", "cluster_seconds"}
+    for name in sorted(twin_metrics.keys() - own_vectors - timings):
+        assert twin_metrics[name] == original_metrics[name] or (np.isnan(twin_metrics[name]) and np.isnan(original_metrics[name])), name
+    from harness.encode import pooled_variants, token_counts
+    from harness.metrics import length_leakage_r2, silhouette_cosine
+    from harness.models import loaded_encoder, resolve_model
+
+    texts = loaded_corpora(prepared)["town_requests"].texts
+    encoder = loaded_encoder(resolve_model(str(tiny_model_dir)), None, False)
+    pooled = pooled_variants(encoder, texts, [("last", "mean"), ("last", "mean_sqrt_len")], batch_size=64)
+    counts = np.maximum(token_counts(encoder, texts), 1)
+    for trial, pooling in ((twin, "mean_sqrt_len"), (original, "mean")):
+        metrics = runs[trial.key].data.metrics
+        own = pooled[("last", pooling)]
+        assert metrics["length_leakage_r2"] == pytest.approx(length_leakage_r2(l2_normalized(own), counts), abs=1e-6)
+        assert metrics["length_leakage_r2_pooled"] == pytest.approx(length_leakage_r2(own, counts), abs=1e-6)
+    assert twin_metrics["length_leakage_r2_pooled"] != pytest.approx(original_metrics["length_leakage_r2_pooled"], abs=1e-3)
+    assert twin_metrics["silhouette"] == pytest.approx(original_metrics["silhouette"], abs=1e-6)  # cosine: scale-free
+    clusters = pd.read_parquet(client.download_artifacts(runs[twin.key].info.run_id, "assignments.parquet", str(tmp_path))).cluster
+    assert twin_metrics["silhouette"] == pytest.approx(
+        silhouette_cosine(pooled[("last", "mean_sqrt_len")], clusters.to_numpy(), max_points=5000, seed=0), abs=1e-9)
 
 
 def _put_same_key(root: str, start, seed: int) -> None:
@@ -202,3 +228,53 @@ def test_float16_storage_is_a_separate_key_and_close_to_float32(tmp_path, tiny_m
     pooled_half = StageExecutor(loaded_corpora(half), half.trials, cache).pooled(half.trials[0])
     assert cache.get("pool", half.trials[0].stages["pool"].key)[0].dtype == np.float16
     assert np.allclose(pooled_half, pooled_full, rtol=1e-3, atol=1e-3)
+
+
+def test_a_resumed_configuration_takes_every_figure_from_the_seeds_own_labels(tmp_path, tiny_model_dir, monkeypatch):
+    # After a cache prune, a recomputation can disagree with the stored run (here the clusterer's output moved);
+    # the reused seeds' means come from their runs, so the intervals and the stability must come from the labels
+    # those runs logged too, not from the recomputation: every figure of a configuration from the same labels.
+    import harness.cluster
+    from sklearn.metrics import adjusted_rand_score
+
+    from harness.evidence import bootstrap_distributions
+
+    sweep = write_sweep(tmp_path, f"""
+name: resumed
+datasets:
+  - {{source: synthetic, n_texts: 150, topic_share: 0.6, seed: 2}}
+models: [{tiny_model_dir}]
+grid:
+  pooling: [mean]
+  reduce:
+    - {{method: pca, n_components: 5}}
+  cluster:
+    - {{method: kmeans, k: labels}}
+  seeds: [0, 1]
+evidence: {{resamples: 200, permutations: 19}}
+""")
+    results = tmp_path / "results"
+    first = run_sweep_file(sweep, results)
+    assert [r.status for r in first.results] == ["FINISHED", "FINISHED"]
+
+    assert main(["cache", "prune", "--older-than", "0", "--cache-dir", str(results / "cache")]) == 0
+    moved = lambda vectors, settings, seed, n_classes: np.arange(len(vectors)) % n_classes  # noqa: E731
+    monkeypatch.setitem(harness.cluster.CLUSTERERS, "kmeans", moved)
+    second = run_sweep_file(sweep, results)
+    assert [r.status for r in second.results] == ["REUSED", "REUSED"]
+
+    client, _, seed_runs = finished_runs(second.tracking_uri, "resumed")
+    corpus_labels = loaded_corpora(prepared_sweep(sweep))["town_requests"].labels
+    logged = [pd.read_parquet(client.download_artifacts(r.info.run_id, "assignments.parquet", str(tmp_path / r.info.run_id)))
+              for r in sorted(seed_runs, key=lambda r: int(r.data.params["seed"]))]
+    clusters = [table.cluster.to_numpy() for table in logged]
+    (configuration,) = second.configurations
+    metrics = configuration.metrics
+    # The point estimate: the mean of the seeds' ARI, recomputed here from their own assignments (scikit-learn).
+    assert metrics["ari"] == pytest.approx(np.mean([adjusted_rand_score(corpus_labels, c) for c in clusters]), abs=1e-12)
+    # The interval: the bootstrap of those same labels. (Whether it contains the estimate is not a consistency check:
+    # resampling with replacement duplicates texts, and duplicates agree on both partitions, so the bootstrap ARI of
+    # a near-chance clustering sits above the plain ARI.)
+    expected = bootstrap_distributions(corpus_labels, clusters, resamples=200, seed=0)
+    assert np.array_equal(configuration.distributions["ari"], expected["ari"])
+    assert metrics["stability_ari"] == pytest.approx(adjusted_rand_score(clusters[0], clusters[1]), abs=1e-12)

@@ -82,7 +82,10 @@ def tiny_roberta_dir(tmp_path_factory):
     bpe = ByteLevelBPETokenizer()
     bpe.train_from_iterator(corpus.texts, vocab_size=400, special_tokens=["<s>", "<pad>", "</s>", "<unk>", "<mask>"])
     bpe.save_model(str(folder))
-    tokenizer = RobertaTokenizerFast(vocab_file=str(folder / "vocab.json"), merges_file=str(folder / "merges.txt"))
+    # transformers 5 takes the files as vocab= / merges=; given as vocab_file= / merges_file= it silently builds a
+    # tokenizer of the 5 special tokens only, which turns every text into nothing.
+    tokenizer = RobertaTokenizerFast(vocab=str(folder / "vocab.json"), merges=str(folder / "merges.txt"))
+    assert tokenizer.vocab_size == 400 and len(tokenizer("bins missed", add_special_tokens=False)["input_ids"]) > 1
     tokenizer.save_pretrained(folder)
     torch.manual_seed(0)
     config = RobertaConfig(vocab_size=tokenizer.vocab_size, hidden_size=32, num_hidden_layers=2, num_attention_heads=2,
@@ -100,6 +103,72 @@ def test_a_tiny_roberta_loads_raw_with_its_own_special_tokens(tiny_roberta_dir):
     texts = ["pothole " * 200, "bins missed"]
     chunked = pooled_variants(encoder, texts, [("last", "mean"), (1, "cls")], batch_size=4, long_texts="chunk_mean")
     assert chunked[("last", "mean")].shape == (2, 32) and np.isfinite(chunked[(1, "cls")]).all()
+
+
+def test_chunk_mean_equals_a_window_average_made_by_hand(tiny_roberta_dir):
+    # By hand: the text's token ids cut into pieces of (max length - 2), each wrapped in <s> ... </s> and run through
+    # the model on its own (no padding), pooled, then the window vectors averaged with equal weight. Texts of several
+    # windows of unequal length, in an order that the length sort reorders.
+    import torch
+
+    model = resolve_family_model(ModelSettings(name=str(tiny_roberta_dir), family="transformer"))
+    encoder = loaded_encoder(model, 12, False)  # room for 10 tokens per window
+    texts = ["bins " * 7 + "missed again", "pothole on the high street " * 9, "lamp", "the " * 31 + "end"]
+    variants = [("last", "mean"), (1, "cls"), ("last", "max")]
+    chunked = pooled_variants(encoder, texts, variants, batch_size=2, long_texts="chunk_mean")
+    start, end = special_wrapping(encoder.tokenizer)
+    for row, text in enumerate(texts):
+        ids = encoder.tokenizer(text, add_special_tokens=False)["input_ids"]
+        windows = [ids[i : i + 10] for i in range(0, len(ids), 10)]
+        assert len(windows) == max(1, -(-len(ids) // 10))
+        per_window = {variant: [] for variant in variants}
+        for window in windows:
+            with torch.inference_mode():
+                states = encoder.transformer(input_ids=torch.tensor([start + window + end]),
+                                             output_hidden_states=True).hidden_states
+            per_window[("last", "mean")].append(states[-1][0].mean(dim=0).numpy())
+            per_window[(1, "cls")].append(states[1][0, 0].numpy())
+            per_window[("last", "max")].append(states[-1][0].max(dim=0).values.numpy())
+        for variant in variants:
+            assert np.abs(chunked[variant][row] - np.mean(per_window[variant], axis=0)).max() <= 1e-5, (row, variant)
+
+
+def test_chunk_mean_reports_windows_per_text_and_claims_no_truncation(tmp_path, tiny_model_dir):
+    # Under chunk_mean nothing is cut: truncated_fraction is 0, and the run reports how texts were split instead;
+    # the report's caveat follows (no "were cut").
+    from harness.encode import token_counts
+    from harness.readback import ConfigurationRecord
+    from harness.report import caveats
+    from harness.runner import loaded_corpora, prepared_sweep
+
+    from conftest import configuration_runs
+
+    sweep = write_sweep(tmp_path, f"""
+name: windows
+datasets:
+  - {{source: synthetic, n_texts: 120, min_words: 5, max_words: 40, seed: 3}}
+models:
+  - {{name: {tiny_model_dir}, max_length: 16, long_texts: chunk_mean}}
+grid:
+  pooling: [mean]
+  reduce:
+    - {{method: pca, n_components: 5}}
+  cluster:
+    - {{method: kmeans, k: labels}}
+evidence: {{resamples: 20, permutations: 19}}
+""")
+    result = run_sweep_file(sweep, tmp_path / "results")
+    (run,) = finished_runs(result.tracking_uri, "windows")[2]
+    texts = loaded_corpora(prepared_sweep(sweep))["town_requests"].texts
+    counts = token_counts(loaded_encoder(resolve_model(str(tiny_model_dir)), 16, False), texts)
+    windows = np.maximum(1, np.ceil(counts / 14))  # 16 less [CLS] and [SEP]
+    assert run.data.metrics["truncated_fraction"] == 0.0
+    assert run.data.metrics["windows_per_text_mean"] == pytest.approx(windows.mean(), abs=1e-12)
+    assert run.data.metrics["split_fraction"] == pytest.approx(np.mean(windows > 1), abs=1e-12) and windows.max() > 1
+    (configuration,) = configuration_runs(result.tracking_uri, "windows")
+    record = ConfigurationRecord("id", "windows", dict(configuration.data.params), dict(configuration.data.metrics), {})
+    notes = " ".join(caveats([record], "ari"))
+    assert "were cut" not in notes and "split into windows" in notes
 
 
 def test_every_family_runs_in_one_sweep(tmp_path, tiny_model_dir, tiny_roberta_dir):

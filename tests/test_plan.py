@@ -74,3 +74,51 @@ def test_plan_command_counts_work_without_running(tmp_path, capsys):
     assert "forward passes        1      0      1" in out
     assert "reductions           18      0     18  (pca 6, umap 12)" in out
     assert not (tmp_path / "results").exists()
+
+
+def test_every_configuration_and_run_has_its_own_name(tmp_path, tiny_model_dir):
+    # Variants generated from the settings models: every reducer and clusterer with each of its fields changed in
+    # turn (each value of a Literal), transform: l2 vs normalize: l2, and two models whose folders share a name.
+    # Distinct configurations (keys) must have distinct names, and distinct trials distinct run names.
+    import shutil
+    import typing
+
+    import yaml
+
+    from harness.sweep import GridSettings
+    from test_trial_key import _discriminator, _generic_changes, _union_members
+
+    def variants(annotation) -> list[dict]:
+        out = []
+        for cls in _union_members(annotation):
+            method = _discriminator(cls)
+            base = {method: typing.get_args(cls.model_fields[method].annotation)[0]}
+            out.append(base)
+            instance = cls(**base)
+            for name, field in cls.model_fields.items():
+                if name != method:
+                    for value in _generic_changes(field.annotation, getattr(instance, name)):
+                        out.append({**base, name: value})
+        return [dict(t) for t in {tuple(sorted(v.items())) for v in out}]  # distinct
+
+    reducers, clusterers = variants(GridSettings.model_fields["reduce"].annotation), variants(GridSettings.model_fields["cluster"].annotation)
+    assert {"umap", "pca", "none"} <= {r["method"] for r in reducers} and len(reducers) > 8
+    for parent in ("team_a", "team_b"):
+        shutil.copytree(tiny_model_dir, tmp_path / parent / "encoder")
+    sweep = {
+        "name": "names",
+        "datasets": [{"source": "synthetic", "n_texts": 60}],
+        "models": [str(tmp_path / "team_a" / "encoder"), str(tmp_path / "team_b" / "encoder"),
+                   {"name": str(tmp_path / "team_a" / "encoder"), "family": "transformer"}],
+        "grid": {"pooling": ["mean"], "transform": ["none", "l2", [{"method": "whiten", "k": 8}]], "normalize": ["none", "l2"],
+                 "reduce": reducers, "cluster": clusterers, "seeds": [0, 1]},
+    }
+    path = tmp_path / "names.yaml"
+    path.write_text(yaml.safe_dump(sweep))
+    trials = prepared_sweep(path).trials
+    configurations = {t.config_key: t.config_name for t in trials}
+    assert len(set(configurations.values())) == len(configurations) == 3 * 3 * 2 * len(reducers) * len(clusterers)
+    assert len({t.name for t in trials}) == len({t.key for t in trials}) == len(trials)
+    names = set(configurations.values())
+    assert any("/l2/" in n for n in names) and any("/none+l2/" in n for n in names)  # transform l2, normalize l2
+    assert any("/team_a--encoder/" in n for n in names) and any("/team_b--encoder/" in n for n in names)

@@ -118,3 +118,19 @@ def test_batches_sorted_by_length_restore_order():
 def test_token_counts_exclude_special_tokens(tiny_model_dir):
     encoder = loaded_encoder(resolve_model(str(tiny_model_dir)), None, False)
     assert token_counts(encoder, ["hello world"]).tolist() == [2]
+
+
+@pytest.mark.parametrize("long_texts", ["truncate", "chunk_mean"])
+def test_outputs_are_put_back_in_the_texts_order(tiny_model_dir, long_texts):
+    # Texts are batched longest first; each row of the output must be the vector of the text at that position:
+    # the same as encoding that text alone. The texts' lengths are out of order on purpose, and batches of 2 mix them.
+    encoder = loaded_encoder(resolve_model(str(tiny_model_dir)), 16, False)
+    texts = [TEXTS[1], TEXTS[3], TEXTS[2], TEXTS[0], "Lamp out on the corner of the square by the church"]
+    lengths = token_counts(encoder, texts)
+    assert list(np.argsort(-lengths, kind="stable")) != list(range(len(texts)))  # the sort does reorder them
+    variants = [("last", "mean"), (1, "cls")]
+    together = pooled_variants(encoder, texts, variants, batch_size=2, long_texts=long_texts)
+    for row, text in enumerate(texts):
+        alone = pooled_variants(encoder, [text], variants, batch_size=1, long_texts=long_texts)
+        for variant in variants:
+            assert np.abs(together[variant][row] - alone[variant][0]).max() <= 1e-5, (row, variant)

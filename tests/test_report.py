@@ -55,11 +55,33 @@ def _browser(playwright):
     return playwright.chromium.launch(executable_path=CHROMIUM, headless=True, args=CHROMIUM_FLAGS)
 
 
+def test_main_effects_group_by_settings_not_by_name_segments():
+    # Two UMAP metrics and two normalisations under names that read alike (as names once did): "which choice
+    # matters" must still see two options on each axis, because it groups by the configuration's params.
+    from harness.readback import ConfigurationRecord
+
+    def config(metric, transform, normalize, ari):
+        params = {"dataset": "d", "model": "m", "layers": "last", "pooling": "mean", "transform": transform,
+                  "normalize": normalize, "reduce.method": "umap", "reduce.n_components": "5", "reduce.metric": metric,
+                  "cluster.method": "kmeans", "cluster.k": "labels"}
+        return ConfigurationRecord("id", "d/m/last/mean/l2/umap5/kmeanslabels", params, {"ari": ari}, {})
+
+    records = [config("cosine", "l2", "none", 0.8), config("euclidean", "l2", "none", 0.4),
+               config("cosine", "none", "l2", 0.7), config("euclidean", "none", "l2", 0.3)]
+    effects = main_effects(records, "ari")
+    assert {e.option: round(e.mean, 6) for e in effects["reduce"]} == {"cosine": 0.75, "euclidean": 0.35}
+    assert {e.option: round(e.mean, 6) for e in effects["transform"]} == {
+        "transform=l2, normalize=none": 0.6, "transform=none, normalize=l2": 0.5}
+    assert "pooling" not in effects and "model" not in effects  # one option each
+
+
 def test_main_effects_and_pareto_front_on_hand_made_numbers():
     from harness.readback import ConfigurationRecord
 
     def config(name, ari):
-        return ConfigurationRecord("id", f"d/m/last/{name}/none/pca8/kmeanslabels", {}, {"ari": ari}, {})
+        params = {"dataset": "d", "model": "m", "layers": "last", "pooling": name, "transform": "none", "normalize": "none",
+                  "reduce.method": "pca", "reduce.n_components": "8", "cluster.method": "kmeans", "cluster.k": "labels"}
+        return ConfigurationRecord("id", f"d/m/last/{name}/none/pca8/kmeanslabels", params, {"ari": ari}, {})
 
     effects = main_effects([config("mean", 0.6), config("mean", 0.8), config("max", 0.2), config("max", 0.4)], "ari")
     (mean, maximum) = effects["pooling"]

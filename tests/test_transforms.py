@@ -80,10 +80,16 @@ def test_chains_parse_plan_and_share_work(tmp_path, tiny_model_dir):
     names = {t.params["transform"] for t in prepared.trials}
     assert names == {"none", "l2", "center>remove_length>l2", "whiten8", "all_but_the_top2>l2"}
     by_name = {t.name: t for t in prepared.trials}
+    assert len(by_name) == len(prepared.trials)  # every trial has its own name
     model = tiny_model_dir.name
-    # transform l2 + normalize none is the same chain as transform none + normalize l2: computed once.
-    assert by_name[f"town_requests/{model}/last/mean/l2/pca5/kmeanslabels/s0"].stages["cluster"].key == \
-        by_name[f"town_requests/{model}/last/mean/l2/pca5/kmeanslabels/s0"].stages["cluster"].key
+    # transform l2 + normalize none is the same chain as transform none + normalize l2: two configurations, two
+    # names, computed once.
+    as_transform = by_name[f"town_requests/{model}/last/mean/l2/pca5/kmeanslabels/s0"]
+    as_normalize = by_name[f"town_requests/{model}/last/mean/none+l2/pca5/kmeanslabels/s0"]
+    assert (as_transform.transform, as_transform.normalize) != (as_normalize.transform, as_normalize.normalize)
+    assert as_transform.key != as_normalize.key and as_transform.config_key != as_normalize.config_key
+    assert as_transform.stages["cluster"].key == as_normalize.stages["cluster"].key
+    assert as_normalize.equivalent_to == as_transform.key or as_transform.equivalent_to == as_normalize.key
     l2_first = [t for t in prepared.trials if t.steps and t.steps[0].method == "l2" and t.pooling == "mean_sqrt_len"]
     assert l2_first and all(t.equivalent_to for t in l2_first)  # after l2, mean_sqrt_len is mean
     centred_first = [t for t in prepared.trials if t.steps and t.steps[0].method == "center" and t.pooling == "mean_sqrt_len"]

@@ -109,17 +109,22 @@ def length_eta2_pvalue(lengths: np.ndarray, groups: np.ndarray, *, permutations:
 
 
 def length_leakage_r2(vectors: np.ndarray, lengths: np.ndarray, *, folds: int = 5, seed: int = 0, alpha: float = 1.0) -> float:
-    """Cross-validated R^2 of a ridge regression predicting log length from the vectors.
+    """Cross-validated R^2 of a ridge regression predicting log length from the standardised vectors.
 
-    How much length the embedding itself encodes, whatever the clustering. Folds are
-    shuffled with ``seed``; the score is the mean R^2 over folds.
+    How much length the vectors themselves encode, whatever the clustering. Each feature is
+    standardised (on the training folds) before the ridge, so that the penalty ``alpha`` weighs
+    the same at any scale of the vectors and R^2 does not depend on it. Folds are shuffled with
+    ``seed``; the score is the mean R^2 over folds.
     """
     from sklearn.linear_model import Ridge
     from sklearn.model_selection import KFold, cross_val_score
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
 
     (lengths,) = check_same_length(lengths, names=("lengths",))
     if vectors.shape[0] != lengths.size:
         raise ValueError(f"The 'vectors' parameter must have one row per length. Got {vectors.shape[0]} rows for {lengths.size} lengths instead.")
     target = np.log(check_positive(lengths, "lengths"))
     splitter = KFold(n_splits=folds, shuffle=True, random_state=seed)
-    return float(cross_val_score(Ridge(alpha=alpha), vectors, target, cv=splitter, scoring="r2").mean())
+    model = make_pipeline(StandardScaler(), Ridge(alpha=alpha))
+    return float(cross_val_score(model, np.asarray(vectors, dtype=np.float64), target, cv=splitter, scoring="r2").mean())
