@@ -168,6 +168,23 @@ def command_datasets(args: argparse.Namespace) -> int:
     return 0
 
 
+def command_datasets_mirror(args: argparse.Namespace) -> int:
+    from harness.datasets.mirror import MANIFEST, build_mirror
+    from harness.datasets.public import DATA_DIR_VARIABLE, MIRROR_FILES
+
+    _quiet_libraries()
+    out = Path(args.out).expanduser().resolve()
+    names = list(dict.fromkeys(args.names)) or list(MIRROR_FILES)
+    manifest = build_mirror(out, names, progress=lambda message: print(message, file=sys.stderr, flush=True))
+    for name in names:
+        entry = manifest["datasets"][name]
+        splits = ", ".join(f"{s} {n:,}" for s, n in entry["rows_per_split"].items())
+        print(f"{name}: {entry['rows']:,} rows ({splits}) from {entry['route']} -> {out / entry['file']}  sha256 {entry['sha256']}")
+    print(f"manifest: {out / MANIFEST}")
+    print(f"copy the folder where it is needed and set {DATA_DIR_VARIABLE}={out}")
+    return 0
+
+
 def _tracking_uri(args: argparse.Namespace) -> str:
     from harness.tracking import default_tracking_uri
 
@@ -248,6 +265,16 @@ def parser() -> argparse.ArgumentParser:
     datasets.add_argument("--model", default="sentence-transformers/all-MiniLM-L6-v2", help="whose tokenizer measures lengths")
     datasets.add_argument("--json", action="store_true", help="print the cards as JSON")
     datasets.set_defaults(handler=command_datasets)
+    datasets_commands = datasets.add_subparsers(dest="datasets_command", metavar="{mirror}")
+    mirror = datasets_commands.add_parser(
+        "mirror", help="build an offline mirror (Parquet files + manifest) from the public routes",
+        description="Fetch the public datasets through their usual routes (needs a network) and write the Parquet "
+                    "files the loaders read, with manifest.json (rows, SHA-256). Copy the folder to machines without "
+                    "a network and set HARNESS_DATA_DIR to it. Nothing is written unless every dataset was fetched.")
+    mirror.add_argument("--out", required=True, metavar="DIR", help="the mirror folder to write (created if missing)")
+    mirror.add_argument("names", nargs="*", metavar="NAME",
+                        help="datasets to mirror: twenty_newsgroups, ag_news (default: all)")
+    mirror.set_defaults(handler=command_datasets_mirror)
 
     def finished_sweep_command(name: str, help_text: str, handler) -> argparse.ArgumentParser:
         command = commands.add_parser(name, help=help_text)
