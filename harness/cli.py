@@ -220,11 +220,21 @@ def command_ui(args: argparse.Namespace) -> int:
     store = results / "mlflow.db"
     if not store.is_file():
         raise HarnessError(f"{store}: no tracking store yet; run a sweep first (harness run SWEEP)")
+    from harness.runs_view import runs_page_link
+    from harness.tracking import sweep_experiments
+
+    _quiet_libraries()
+    base = f"http://{'127.0.0.1' if args.host in ('0.0.0.0', '::') else args.host}:{args.port}"
+    sweeps = sweep_experiments(f"sqlite:///{store}")
     environment = {**os.environ, "MLFLOW_SERVER_ENABLE_JOB_EXECUTION": "false"}
     command = [sys.executable, "-m", "mlflow", "server", "--backend-store-uri", f"sqlite:///{store}",
                "--default-artifact-root", (results / "artifacts").as_uri(), "--host", args.host,
                "--port", str(args.port), "--workers", "1"]
-    print(f"MLflow UI on http://{args.host}:{args.port}  (Ctrl-C stops it)", flush=True)
+    print(f"MLflow UI on {base}  (Ctrl-C stops it); each sweep's configurations, best first:", flush=True)
+    for name, experiment_id in sweeps:
+        print(f"  {name}: {runs_page_link(base, experiment_id)}", flush=True)
+    if not sweeps:
+        print("  (no sweep in this store yet)", flush=True)
     try:
         return subprocess.call(command, env=environment)
     except KeyboardInterrupt:
