@@ -7,7 +7,7 @@ VENV ?= .venv
 PY := $(VENV)/bin/python
 PIP := $(PY) -m pip --disable-pip-version-check
 
-.PHONY: demo test test-fast test-slow bench plan clean
+.PHONY: demo test test-fast test-slow bench plan clean docs
 
 $(VENV)/.installed: pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -43,3 +43,9 @@ clean:
 
 bench: $(VENV)/.installed
 	HF_HUB_OFFLINE=1 $(PY) benchmarks/run.py
+
+# The sweep's JSON Schema and the README's key reference, regenerated from the typed settings.
+docs: $(VENV)/.installed
+	$(VENV)/bin/harness schema > schemas/sweep.schema.json
+	$(PY) -c "from pathlib import Path; from harness.schema import readme_with_key_reference as ref; \
+		p = Path('README.md'); p.write_text(ref(p.read_text()))"

@@ -185,6 +185,13 @@ def command_datasets_mirror(args: argparse.Namespace) -> int:
     return 0
 
 
+def command_schema(args: argparse.Namespace) -> int:
+    from harness.schema import key_reference_markdown, schema_text
+
+    sys.stdout.write(key_reference_markdown() if args.markdown else schema_text())
+    return 0
+
+
 def _tracking_uri(args: argparse.Namespace) -> str:
     from harness.tracking import default_tracking_uri
 
@@ -285,6 +292,12 @@ def parser() -> argparse.ArgumentParser:
     mirror.add_argument("names", nargs="*", metavar="NAME",
                         help="datasets to mirror: twenty_newsgroups, ag_news (default: all)")
     mirror.set_defaults(handler=command_datasets_mirror)
+
+    schema = commands.add_parser("schema", help="print the JSON Schema of a sweep file (for editors and validators)",
+                                 description="Print the JSON Schema (draft 2020-12) of a sweep file, generated from the "
+                                             "typed settings harness validates with.")
+    schema.add_argument("--markdown", action="store_true", help="print the key reference table instead (as in the README)")
+    schema.set_defaults(handler=command_schema)
 
     def finished_sweep_command(name: str, help_text: str, handler) -> argparse.ArgumentParser:
         command = commands.add_parser(name, help=help_text)
