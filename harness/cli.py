@@ -220,6 +220,20 @@ def command_cite(args: argparse.Namespace) -> int:
     return 0
 
 
+def command_export(args: argparse.Namespace) -> int:
+    from harness.export import configuration_table, export_format, exported_record, write_table
+
+    _quiet_libraries()
+    target = Path(args.to)
+    export_format(target)  # a wrong suffix is refused before MLflow is read
+    record = exported_record(_tracking_uri(args), args.sweep, args.run_id)
+    table = configuration_table(record)
+    write_table(table, target)
+    print(f"{len(table)} configurations of sweep '{record.name}' (run {record.run_id}), {len(table.columns)} columns "
+          f"-> {target}")
+    return 0
+
+
 def command_ui(args: argparse.Namespace) -> int:
     import subprocess
 
@@ -310,6 +324,18 @@ def parser() -> argparse.ArgumentParser:
     report = finished_sweep_command("report", "write the HTML and Markdown report of a finished sweep", command_report)
     report.add_argument("--no-map", action="store_true", help="leave out the 2-D map of the winner's clusters")
     finished_sweep_command("cite", "write a citation card for the winner, with the command that reproduces it", command_cite)
+
+    export = commands.add_parser(
+        "export", help="write one row per configuration of a finished sweep to CSV or Parquet",
+        description="One row per configuration and dataset: the settings as columns, every score of the configuration "
+                    "run (mean over seeds, standard deviation, interval, valid seeds), rank, tie flag, length measures, "
+                    "stage seconds, and the evidence tags.")
+    export.add_argument("sweep", help="the sweep's name (its newest finished run unless --run-id says which)")
+    export.add_argument("--run-id", default=None, metavar="ID", help="a sweep run of this sweep (default: the newest finished one)")
+    export.add_argument("--to", required=True, metavar="FILE", help="the file to write: FILE.csv or FILE.parquet")
+    export.add_argument("--results-dir", default=str(DEFAULT_RESULTS), help="where the MLflow store lives (default: results)")
+    export.add_argument("--tracking-uri", default=None, help="MLflow tracking URI (default: sqlite:///RESULTS_DIR/mlflow.db)")
+    export.set_defaults(handler=command_export)
 
     ui = commands.add_parser("ui", help="start the MLflow UI on the results store")
     _add_store_options(ui)
