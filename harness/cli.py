@@ -66,9 +66,22 @@ def command_plan(args: argparse.Namespace) -> int:
     return 0
 
 
+def next_steps(sweep_name: str, args: argparse.Namespace) -> str:
+    """What to do after a run, as commands that work from here (the results folder named when it is not the default)."""
+    where = "" if Path(args.results_dir) == DEFAULT_RESULTS else f" --results-dir {args.results_dir}"
+    uri = f" --tracking-uri {args.tracking_uri}" if args.tracking_uri else ""
+    steps = [(f"harness report {sweep_name}{where}{uri}", "the HTML report"),
+             (f"harness ui{where}" if not uri else f"open {args.tracking_uri}", "browse and compare the runs"),
+             (f"harness cite {sweep_name}{where}{uri}", "a citation card for the winner"),
+             (f"harness export {sweep_name} --to {sweep_name}.csv{where}{uri}", "one row per configuration")]
+    width = max(len(command) for command, _ in steps)
+    return "next:\n" + "\n".join(f"  {command:<{width}}  {what}" for command, what in steps)
+
+
 def command_run(args: argparse.Namespace) -> int:
     from harness.leaderboard import descriptions_table, table
     from harness.runner import run_sweep_file
+    from harness.sweep import load_sweep
 
     _quiet_libraries()
     progress = encode_progress = None
@@ -101,6 +114,7 @@ def command_run(args: argparse.Namespace) -> int:
     work = ", ".join(f"{k} {v}" for k, v in sorted(result.work.items())) or "none"
     print(f"{len(result.results) - reused} trials run, {reused} reused from earlier runs; work done: {work}")
     print(f"MLflow: {result.tracking_uri}  (sweep run {result.parent_run_id})")
+    print(next_steps(load_sweep(args.sweep).name, args))
     if result.failed:
         print(f"{len(result.failed)} of {len(result.results)} trials failed:", file=sys.stderr)
         for failed in result.failed:
@@ -262,15 +276,39 @@ def command_ui(args: argparse.Namespace) -> int:
         return 0
 
 
-def _add_store_options(command: argparse.ArgumentParser) -> None:
+def _add_results_option(command: argparse.ArgumentParser) -> None:
     command.add_argument("--results-dir", default=str(DEFAULT_RESULTS),
                          help="where the MLflow store, artifacts and cache live (default: results)")
+
+
+def _add_store_options(command: argparse.ArgumentParser) -> None:
+    """For the commands that read or write the stage cache."""
+    _add_results_option(command)
     command.add_argument("--cache-dir", default=None, help="stage cache folder (default: RESULTS_DIR/cache)")
 
 
+_EXAMPLES = (
+    ("harness plan experiments/demo.yaml", "list the trials and the work they need"),
+    ("harness run experiments/demo.yaml", "run them, log to MLflow, print the leaderboard"),
+    ("harness report demo", "HTML and Markdown report of the newest run"),
+    ("harness ui", "browse the runs in MLflow (prints a link per sweep)"),
+    ("harness export demo --to demo.csv", "one row per configuration"),
+    ("harness datasets mirror --out ~/harness-data", "offline copy of the public datasets"),
+    ("harness schema > sweep.schema.json", "JSON Schema for your editor"),
+)
+EXAMPLES = "examples:\n" + "\n".join(f"  {c:<46} {w}" for c, w in _EXAMPLES) + """
+
+'harness COMMAND --help' describes each command."""
+
+
 def parser() -> argparse.ArgumentParser:
-    top = argparse.ArgumentParser(prog="harness", description="Score sentence-embedding setups for topic discovery.")
-    commands = top.add_subparsers(dest="command", required=True)
+    from harness import __version__
+
+    top = argparse.ArgumentParser(prog="harness", description="Score sentence-embedding setups for topic discovery.",
+                                  epilog=EXAMPLES, formatter_class=argparse.RawDescriptionHelpFormatter)
+    top.add_argument("--version", action="version", version=f"harness {__version__}",
+                     help="print the version and exit")
+    commands = top.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     run = commands.add_parser("run", help="run every trial of a sweep and log it to MLflow")
     run.add_argument("sweep", help="the sweep file (YAML)")
@@ -281,7 +319,7 @@ def parser() -> argparse.ArgumentParser:
                      help="run trials again even where the experiment has a FINISHED run with the same key")
     run.add_argument("--no-progress", action="store_true", help="no progress bars")
     run.add_argument("--executor", choices=("local", "dask"), default="local",
-                     help="where reductions and clusterings run: this process, or a Dask cluster")
+                     help="where reductions and clusterings run: local, this process (the default), or dask, a Dask cluster")
     run.add_argument("--scheduler", default=None, metavar="tcp://HOST:PORT",
                      help="an existing Dask scheduler (default with --executor dask: a 2-worker LocalCluster on 127.0.0.1)")
     run.set_defaults(handler=command_run)
@@ -293,7 +331,8 @@ def parser() -> argparse.ArgumentParser:
 
     datasets = commands.add_parser("datasets", help="cards of the built-in datasets that can be reached now")
     datasets.add_argument("--data-dir", default=None, help="a mirror folder of Parquet files (default: $HARNESS_DATA_DIR)")
-    datasets.add_argument("--model", default="sentence-transformers/all-MiniLM-L6-v2", help="whose tokenizer measures lengths")
+    datasets.add_argument("--model", default="sentence-transformers/all-MiniLM-L6-v2",
+                          help="whose tokenizer measures lengths (default: sentence-transformers/all-MiniLM-L6-v2)")
     datasets.add_argument("--json", action="store_true", help="print the cards as JSON")
     datasets.set_defaults(handler=command_datasets)
     datasets_commands = datasets.add_subparsers(dest="datasets_command", metavar="{mirror}")
@@ -316,7 +355,7 @@ def parser() -> argparse.ArgumentParser:
     def finished_sweep_command(name: str, help_text: str, handler) -> argparse.ArgumentParser:
         command = commands.add_parser(name, help=help_text)
         command.add_argument("sweep", help="a sweep name (its newest run) or a sweep run id")
-        _add_store_options(command)
+        _add_results_option(command)  # the stage cache is the one the sweep run recorded
         command.add_argument("--tracking-uri", default=None, help="MLflow tracking URI (default: sqlite:///RESULTS_DIR/mlflow.db)")
         command.set_defaults(handler=handler)
         return command
@@ -337,10 +376,10 @@ def parser() -> argparse.ArgumentParser:
     export.add_argument("--tracking-uri", default=None, help="MLflow tracking URI (default: sqlite:///RESULTS_DIR/mlflow.db)")
     export.set_defaults(handler=command_export)
 
-    ui = commands.add_parser("ui", help="start the MLflow UI on the results store")
-    _add_store_options(ui)
+    ui = commands.add_parser("ui", help="start the MLflow UI on the results store and print a link per sweep")
+    _add_results_option(ui)
     ui.add_argument("--host", default="127.0.0.1", help="address to bind (default: 127.0.0.1, this machine only)")
-    ui.add_argument("--port", type=int, default=5000)
+    ui.add_argument("--port", type=int, default=5000, help="port to listen on (default: 5000)")
     ui.set_defaults(handler=command_ui)
 
     cache = commands.add_parser("cache", help="inspect or prune the stage cache")
@@ -349,7 +388,8 @@ def parser() -> argparse.ArgumentParser:
     _add_store_options(info)
     info.set_defaults(handler=command_cache_info)
     prune = cache_commands.add_parser("prune", help="remove entries not used for some days")
-    prune.add_argument("--older-than", type=float, required=True, metavar="DAYS")
+    prune.add_argument("--older-than", type=float, required=True, metavar="DAYS",
+                       help="remove entries not used for more than DAYS days (0 empties the cache)")
     _add_store_options(prune)
     prune.set_defaults(handler=command_cache_prune)
     return top
