@@ -6,13 +6,15 @@ PYTHON ?= python3.11
 VENV ?= .venv
 PY := $(VENV)/bin/python
 PIP := $(PY) -m pip --disable-pip-version-check
+# A PyTorch wheel index for torch alone, e.g. https://download.pytorch.org/whl/cpu where the default is a CUDA build.
+TORCH_INDEX ?=
 
 .PHONY: demo test test-fast test-slow bench plan clean docs
 
 $(VENV)/.installed: pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	# torch first, pinned: the CPU build on this machine (an unpinned torch pulls a CUDA build of several GB).
-	$(PIP) install torch==2.13.0
+	$(PIP) install torch==2.13.0 $(if $(TORCH_INDEX),--index-url $(TORCH_INDEX))
 	$(PIP) install -e .
 	touch $@
 
