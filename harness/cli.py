@@ -22,10 +22,14 @@ def _quiet_libraries() -> None:
     os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
     os.environ.setdefault("MLFLOW_LOGGING_LEVEL", "WARNING")
     os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
+    # huggingface_hub and datasets log each retry of an unreachable hub, and set their loggers' levels from these
+    # variables when first imported; the one-line error says why the route failed.
+    os.environ.setdefault("HF_HUB_VERBOSITY", "error")
+    os.environ.setdefault("DATASETS_VERBOSITY", "error")
     import logging
     import warnings
 
-    for name in ("mlflow", "alembic", "transformers", "sentence_transformers", "numba"):
+    for name in ("mlflow", "alembic", "transformers", "sentence_transformers", "numba", "huggingface_hub", "datasets"):
         logging.getLogger(name).setLevel(logging.ERROR)
     warnings.filterwarnings("ignore", category=FutureWarning)
     warnings.filterwarnings("ignore", category=DeprecationWarning)

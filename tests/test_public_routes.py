@@ -103,6 +103,29 @@ def test_an_unreachable_hub_is_reported_as_unreachable_not_offline():
     assert reason.startswith("cannot reach the Hugging Face hub") and "offline mode" not in reason
 
 
+def test_a_run_without_network_or_mirror_fails_with_one_line_naming_both(tmp_path):
+    # What a user on a fresh clone without a network sees: nothing of the library's retry chatter, one line.
+    sweep = write_sweep(tmp_path, """
+name: no_network
+datasets:
+  - {source: ag_news}
+models: [sentence-transformers/all-MiniLM-L6-v2]
+grid:
+  pooling: [mean]
+  cluster:
+    - {method: kmeans, k: labels}
+""")
+    script = ("import sys, time\ntime.sleep = lambda seconds: None\nfrom harness.cli import main\n"
+              f"sys.exit(main(['run', {str(sweep)!r}, '--results-dir', {str(tmp_path / 'results')!r}]))")
+    environment = {k: v for k, v in os.environ.items() if k not in ("HF_HUB_OFFLINE", "HF_DATASETS_OFFLINE", "HARNESS_DATA_DIR")}
+    environment.update({"PYTHONPATH": str(REPO), "HF_ENDPOINT": f"http://127.0.0.1:{free_port()}"})
+    done = subprocess.run([sys.executable, "-c", script], env=environment, capture_output=True, text=True, timeout=300)
+    assert done.returncode == 2
+    (line,) = done.stderr.strip().splitlines()
+    assert "no mirror (HARNESS_DATA_DIR is not set" in line and "cannot reach the Hugging Face hub" in line
+    assert "harness datasets mirror --out DIR ag_news" in line and not (tmp_path / "results").exists()
+
+
 @pytest.mark.parametrize("status", [401, 404, 500])
 def test_an_http_error_names_its_status(answering_server, status):
     reason = _route_reason("ag_news", "", {"HF_ENDPOINT": answering_server(status)})
