@@ -6,13 +6,15 @@ PYTHON ?= python3.11
 VENV ?= .venv
 PY := $(VENV)/bin/python
 PIP := $(PY) -m pip --disable-pip-version-check
+# A PyTorch wheel index for torch alone, e.g. https://download.pytorch.org/whl/cpu where the default is a CUDA build.
+TORCH_INDEX ?=
 
-.PHONY: demo test test-fast test-slow bench plan clean
+.PHONY: demo test test-fast test-slow bench plan clean docs
 
 $(VENV)/.installed: pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	# torch first, pinned: the CPU build on this machine (an unpinned torch pulls a CUDA build of several GB).
-	$(PIP) install torch==2.13.0
+	$(PIP) install torch==2.13.0 $(if $(TORCH_INDEX),--index-url $(TORCH_INDEX))
 	$(PIP) install -e .
 	touch $@
 
@@ -43,3 +45,9 @@ clean:
 
 bench: $(VENV)/.installed
 	HF_HUB_OFFLINE=1 $(PY) benchmarks/run.py
+
+# The sweep's JSON Schema and the README's key reference, regenerated from the typed settings.
+docs: $(VENV)/.installed
+	$(VENV)/bin/harness schema > schemas/sweep.schema.json
+	$(PY) -c "from pathlib import Path; from harness.schema import readme_with_key_reference as ref; \
+		p = Path('README.md'); p.write_text(ref(p.read_text()))"

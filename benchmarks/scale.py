@@ -1,6 +1,6 @@
 """Run a large sweep and record the wall time and peak RSS of its stages.
 
-    HARNESS_DATA_DIR=../shared/datasets python benchmarks/scale.py experiments/synthetic_100k.yaml
+    HARNESS_DATA_DIR=DIR python benchmarks/scale.py experiments/synthetic_100k.yaml
 
 Wrap it in ``/usr/bin/time -v`` for the whole process's peak RSS. Stage figures are
 merged into results/benchmarks.json under "scale" -> sweep name.

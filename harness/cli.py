@@ -22,10 +22,14 @@ def _quiet_libraries() -> None:
     os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
     os.environ.setdefault("MLFLOW_LOGGING_LEVEL", "WARNING")
     os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
+    # huggingface_hub and datasets log each retry of an unreachable hub, and set their loggers' levels from these
+    # variables when first imported; the one-line error says why the route failed.
+    os.environ.setdefault("HF_HUB_VERBOSITY", "error")
+    os.environ.setdefault("DATASETS_VERBOSITY", "error")
     import logging
     import warnings
 
-    for name in ("mlflow", "alembic", "transformers", "sentence_transformers", "numba"):
+    for name in ("mlflow", "alembic", "transformers", "sentence_transformers", "numba", "huggingface_hub", "datasets"):
         logging.getLogger(name).setLevel(logging.ERROR)
     warnings.filterwarnings("ignore", category=FutureWarning)
     warnings.filterwarnings("ignore", category=DeprecationWarning)
@@ -67,9 +71,22 @@ def command_plan(args: argparse.Namespace) -> int:
     return 0
 
 
+def next_steps(sweep_name: str, args: argparse.Namespace) -> str:
+    """What to do after a run, as commands that work from here (the results folder named when it is not the default)."""
+    where = "" if Path(args.results_dir) == DEFAULT_RESULTS else f" --results-dir {args.results_dir}"
+    uri = f" --tracking-uri {args.tracking_uri}" if args.tracking_uri else ""
+    steps = [(f"harness report {sweep_name}{where}{uri}", "the HTML report"),
+             (f"harness ui{where}" if not uri else f"open {args.tracking_uri}", "browse and compare the runs"),
+             (f"harness cite {sweep_name}{where}{uri}", "a citation card for the winner"),
+             (f"harness export {sweep_name} --to {sweep_name}.csv{where}{uri}", "one row per configuration")]
+    width = max(len(command) for command, _ in steps)
+    return "next:\n" + "\n".join(f"  {command:<{width}}  {what}" for command, what in steps)
+
+
 def command_run(args: argparse.Namespace) -> int:
     from harness.leaderboard import descriptions_table, table
     from harness.runner import run_sweep_file
+    from harness.sweep import load_sweep
 
     _quiet_libraries()
     progress = encode_progress = None
@@ -102,6 +119,7 @@ def command_run(args: argparse.Namespace) -> int:
     work = ", ".join(f"{k} {v}" for k, v in sorted(result.work.items())) or "none"
     print(f"{len(result.results) - reused} trials run, {reused} reused from earlier runs; work done: {work}")
     print(f"MLflow: {result.tracking_uri}  (sweep run {result.parent_run_id})")
+    print(next_steps(load_sweep(args.sweep).name, args))
     if result.failed:
         print(f"{len(result.failed)} of {len(result.results)} trials failed:", file=sys.stderr)
         for failed in result.failed:
@@ -169,6 +187,30 @@ def command_datasets(args: argparse.Namespace) -> int:
     return 0
 
 
+def command_datasets_mirror(args: argparse.Namespace) -> int:
+    from harness.datasets.mirror import MANIFEST, build_mirror
+    from harness.datasets.public import DATA_DIR_VARIABLE, MIRROR_FILES
+
+    _quiet_libraries()
+    out = Path(args.out).expanduser().resolve()
+    names = list(dict.fromkeys(args.names)) or list(MIRROR_FILES)
+    manifest = build_mirror(out, names, progress=lambda message: print(message, file=sys.stderr, flush=True))
+    for name in names:
+        entry = manifest["datasets"][name]
+        splits = ", ".join(f"{s} {n:,}" for s, n in entry["rows_per_split"].items())
+        print(f"{name}: {entry['rows']:,} rows ({splits}) from {entry['route']} -> {out / entry['file']}  sha256 {entry['sha256']}")
+    print(f"manifest: {out / MANIFEST}")
+    print(f"copy the folder where it is needed and set {DATA_DIR_VARIABLE}={out}")
+    return 0
+
+
+def command_schema(args: argparse.Namespace) -> int:
+    from harness.schema import key_reference_markdown, schema_text
+
+    sys.stdout.write(key_reference_markdown() if args.markdown else schema_text())
+    return 0
+
+
 def _tracking_uri(args: argparse.Namespace) -> str:
     from harness.tracking import default_tracking_uri
 
@@ -197,6 +239,20 @@ def command_cite(args: argparse.Namespace) -> int:
     return 0
 
 
+def command_export(args: argparse.Namespace) -> int:
+    from harness.export import configuration_table, export_format, exported_record, write_table
+
+    _quiet_libraries()
+    target = Path(args.to)
+    export_format(target)  # a wrong suffix is refused before MLflow is read
+    record = exported_record(_tracking_uri(args), args.sweep, args.run_id)
+    table = configuration_table(record)
+    write_table(table, target)
+    print(f"{len(table)} configurations of sweep '{record.name}' (run {record.run_id}), {len(table.columns)} columns "
+          f"-> {target}")
+    return 0
+
+
 def command_ui(args: argparse.Namespace) -> int:
     import subprocess
 
@@ -204,26 +260,60 @@ def command_ui(args: argparse.Namespace) -> int:
     store = results / "mlflow.db"
     if not store.is_file():
         raise HarnessError(f"{store}: no tracking store yet; run a sweep first (harness run SWEEP)")
+    from harness.runs_view import runs_page_link
+    from harness.tracking import sweep_experiments
+
+    _quiet_libraries()
+    base = f"http://{'127.0.0.1' if args.host in ('0.0.0.0', '::') else args.host}:{args.port}"
+    sweeps = sweep_experiments(f"sqlite:///{store}")
     environment = {**os.environ, "MLFLOW_SERVER_ENABLE_JOB_EXECUTION": "false"}
     command = [sys.executable, "-m", "mlflow", "server", "--backend-store-uri", f"sqlite:///{store}",
                "--default-artifact-root", (results / "artifacts").as_uri(), "--host", args.host,
                "--port", str(args.port), "--workers", "1"]
-    print(f"MLflow UI on http://{args.host}:{args.port}  (Ctrl-C stops it)", flush=True)
+    print(f"MLflow UI on {base}  (Ctrl-C stops it); each sweep's configurations, best first:", flush=True)
+    for name, experiment_id in sweeps:
+        print(f"  {name}: {runs_page_link(base, experiment_id)}", flush=True)
+    if not sweeps:
+        print("  (no sweep in this store yet)", flush=True)
     try:
         return subprocess.call(command, env=environment)
     except KeyboardInterrupt:
         return 0
 
 
-def _add_store_options(command: argparse.ArgumentParser) -> None:
+def _add_results_option(command: argparse.ArgumentParser) -> None:
     command.add_argument("--results-dir", default=str(DEFAULT_RESULTS),
                          help="where the MLflow store, artifacts and cache live (default: results)")
+
+
+def _add_store_options(command: argparse.ArgumentParser) -> None:
+    """For the commands that read or write the stage cache."""
+    _add_results_option(command)
     command.add_argument("--cache-dir", default=None, help="stage cache folder (default: RESULTS_DIR/cache)")
 
 
+_EXAMPLES = (
+    ("harness plan experiments/demo.yaml", "list the trials and the work they need"),
+    ("harness run experiments/demo.yaml", "run them, log to MLflow, print the leaderboard"),
+    ("harness report demo", "HTML and Markdown report of the newest run"),
+    ("harness ui", "browse the runs in MLflow (prints a link per sweep)"),
+    ("harness export demo --to demo.csv", "one row per configuration"),
+    ("harness datasets mirror --out ~/harness-data", "offline copy of the public datasets"),
+    ("harness schema > sweep.schema.json", "JSON Schema for your editor"),
+)
+EXAMPLES = "examples:\n" + "\n".join(f"  {c:<46} {w}" for c, w in _EXAMPLES) + """
+
+'harness COMMAND --help' describes each command."""
+
+
 def parser() -> argparse.ArgumentParser:
-    top = argparse.ArgumentParser(prog="harness", description="Score sentence-embedding setups for topic discovery.")
-    commands = top.add_subparsers(dest="command", required=True)
+    from harness import __version__
+
+    top = argparse.ArgumentParser(prog="harness", description="Score sentence-embedding setups for topic discovery.",
+                                  epilog=EXAMPLES, formatter_class=argparse.RawDescriptionHelpFormatter)
+    top.add_argument("--version", action="version", version=f"harness {__version__}",
+                     help="print the version and exit")
+    commands = top.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     run = commands.add_parser("run", help="run every trial of a sweep and log it to MLflow")
     run.add_argument("sweep", help="the sweep file (YAML)")
@@ -234,7 +324,7 @@ def parser() -> argparse.ArgumentParser:
                      help="run trials again even where the experiment has a FINISHED run with the same key")
     run.add_argument("--no-progress", action="store_true", help="no progress bars")
     run.add_argument("--executor", choices=("local", "dask"), default="local",
-                     help="where reductions and clusterings run: this process, or a Dask cluster")
+                     help="where reductions and clusterings run: local, this process (the default), or dask, a Dask cluster")
     run.add_argument("--scheduler", default=None, metavar="tcp://HOST:PORT",
                      help="an existing Dask scheduler (default with --executor dask: a 2-worker LocalCluster on 127.0.0.1)")
     run.set_defaults(handler=command_run)
@@ -246,14 +336,31 @@ def parser() -> argparse.ArgumentParser:
 
     datasets = commands.add_parser("datasets", help="cards of the built-in datasets that can be reached now")
     datasets.add_argument("--data-dir", default=None, help="a mirror folder of Parquet files (default: $HARNESS_DATA_DIR)")
-    datasets.add_argument("--model", default="sentence-transformers/all-MiniLM-L6-v2", help="whose tokenizer measures lengths")
+    datasets.add_argument("--model", default="sentence-transformers/all-MiniLM-L6-v2",
+                          help="whose tokenizer measures lengths (default: sentence-transformers/all-MiniLM-L6-v2)")
     datasets.add_argument("--json", action="store_true", help="print the cards as JSON")
     datasets.set_defaults(handler=command_datasets)
+    datasets_commands = datasets.add_subparsers(dest="datasets_command", metavar="{mirror}")
+    mirror = datasets_commands.add_parser(
+        "mirror", help="build an offline mirror (Parquet files + manifest) from the public routes",
+        description="Fetch the public datasets through their usual routes (needs a network) and write the Parquet "
+                    "files the loaders read, with manifest.json (rows, SHA-256). Copy the folder to machines without "
+                    "a network and set HARNESS_DATA_DIR to it. Nothing is written unless every dataset was fetched.")
+    mirror.add_argument("--out", required=True, metavar="DIR", help="the mirror folder to write (created if missing)")
+    mirror.add_argument("names", nargs="*", metavar="NAME",
+                        help="datasets to mirror: twenty_newsgroups, ag_news (default: all)")
+    mirror.set_defaults(handler=command_datasets_mirror)
+
+    schema = commands.add_parser("schema", help="print the JSON Schema of a sweep file (for editors and validators)",
+                                 description="Print the JSON Schema (draft 2020-12) of a sweep file, generated from the "
+                                             "typed settings harness validates with.")
+    schema.add_argument("--markdown", action="store_true", help="print the key reference table instead (as in the README)")
+    schema.set_defaults(handler=command_schema)
 
     def finished_sweep_command(name: str, help_text: str, handler) -> argparse.ArgumentParser:
         command = commands.add_parser(name, help=help_text)
         command.add_argument("sweep", help="a sweep name (its newest run) or a sweep run id")
-        _add_store_options(command)
+        _add_results_option(command)  # the stage cache is the one the sweep run recorded
         command.add_argument("--tracking-uri", default=None, help="MLflow tracking URI (default: sqlite:///RESULTS_DIR/mlflow.db)")
         command.set_defaults(handler=handler)
         return command
@@ -262,10 +369,22 @@ def parser() -> argparse.ArgumentParser:
     report.add_argument("--no-map", action="store_true", help="leave out the 2-D map of the winner's clusters")
     finished_sweep_command("cite", "write a citation card for the winner, with the command that reproduces it", command_cite)
 
-    ui = commands.add_parser("ui", help="start the MLflow UI on the results store")
-    _add_store_options(ui)
+    export = commands.add_parser(
+        "export", help="write one row per configuration of a finished sweep to CSV or Parquet",
+        description="One row per configuration and dataset: the settings as columns, every score of the configuration "
+                    "run (mean over seeds, standard deviation, interval, valid seeds), rank, tie flag, length measures, "
+                    "stage seconds, and the evidence tags.")
+    export.add_argument("sweep", help="the sweep's name (its newest finished run unless --run-id says which)")
+    export.add_argument("--run-id", default=None, metavar="ID", help="a sweep run of this sweep (default: the newest finished one)")
+    export.add_argument("--to", required=True, metavar="FILE", help="the file to write: FILE.csv or FILE.parquet")
+    export.add_argument("--results-dir", default=str(DEFAULT_RESULTS), help="where the MLflow store lives (default: results)")
+    export.add_argument("--tracking-uri", default=None, help="MLflow tracking URI (default: sqlite:///RESULTS_DIR/mlflow.db)")
+    export.set_defaults(handler=command_export)
+
+    ui = commands.add_parser("ui", help="start the MLflow UI on the results store and print a link per sweep")
+    _add_results_option(ui)
     ui.add_argument("--host", default="127.0.0.1", help="address to bind (default: 127.0.0.1, this machine only)")
-    ui.add_argument("--port", type=int, default=5000)
+    ui.add_argument("--port", type=int, default=5000, help="port to listen on (default: 5000)")
     ui.set_defaults(handler=command_ui)
 
     cache = commands.add_parser("cache", help="inspect or prune the stage cache")
@@ -274,7 +393,8 @@ def parser() -> argparse.ArgumentParser:
     _add_store_options(info)
     info.set_defaults(handler=command_cache_info)
     prune = cache_commands.add_parser("prune", help="remove entries not used for some days")
-    prune.add_argument("--older-than", type=float, required=True, metavar="DAYS")
+    prune.add_argument("--older-than", type=float, required=True, metavar="DAYS",
+                       help="remove entries not used for more than DAYS days (0 empties the cache)")
     _add_store_options(prune)
     prune.set_defaults(handler=command_cache_prune)
     return top

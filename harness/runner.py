@@ -357,7 +357,7 @@ def execute_sweep(
     With a Dask client, the reductions and clusterings are computed on its cluster first.
     """
     from harness.cache import StageCache
-    from harness.leaderboard import rank_configurations, table as leaderboard_table
+    from harness.leaderboard import rank_configurations, ranking_metric, table as leaderboard_table
     from harness.plan import configurations
     from harness.stages import StageExecutor
     from harness.tracking import SweepTracker
@@ -376,6 +376,7 @@ def execute_sweep(
          "harness.cache_dir": str(cache_dir.resolve()) if cache_dir else "",
          "harness.question": sweep.question, "harness.reused_trials": str(len(prepared.trials) - len(pending)),
          "harness.orphans_marked_killed": str(killed)})
+    tracker.show_ranking(parent, sorted({ranking_metric(sweep.rank_by, c.labels is not None) for c in corpora.values()}))
     executor = StageExecutor(corpora, prepared.trials, StageCache(cache_dir) if cache_dir else None, encode_progress)
     params = aligned_params(prepared.trials)
     if dask_client is not None:

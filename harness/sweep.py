@@ -119,9 +119,15 @@ def _registered(registry: dict, what: str) -> AfterValidator:
     return AfterValidator(check)
 
 
-PoolingName = Annotated[str, _registered(POOLINGS, "a pooling")]
-LayerName = Annotated[Union[int, str], _registered(LAYER_SELECTIONS, "a layer selection (or an integer index)")]
-NormalizationName = Annotated[str, _registered(NORMALIZATIONS, "a normalisation")]
+def _names_of(registry: dict) -> Any:
+    """The registry's names as the JSON Schema's enum, read when the schema is generated (registries can grow)."""
+    return Field(json_schema_extra=lambda schema: schema.update(enum=sorted(registry)))
+
+
+PoolingName = Annotated[str, _registered(POOLINGS, "a pooling"), _names_of(POOLINGS)]
+LayerName = Annotated[Union[int, Annotated[str, _names_of(LAYER_SELECTIONS)]],
+                      _registered(LAYER_SELECTIONS, "a layer selection (or an integer index)")]
+NormalizationName = Annotated[str, _registered(NORMALIZATIONS, "a normalisation"), _names_of(NORMALIZATIONS)]
 
 
 def _chain_shorthand(value: Any) -> Any:
@@ -133,7 +139,8 @@ def _chain_shorthand(value: Any) -> Any:
     return value
 
 
-TransformChain = Annotated[list[TransformStep], BeforeValidator(_chain_shorthand)]
+TransformChain = Annotated[list[TransformStep], BeforeValidator(
+    _chain_shorthand, json_schema_input_type=Union[Literal["none"], None, TransformStep, list[TransformStep]])]
 
 
 class GridSettings(Settings):
@@ -168,11 +175,11 @@ class Sweep(Settings):
     datasets: list[DatasetSettings] = Field(min_length=1)
     models: list[ModelSettings] = Field(min_length=1)
     grid: GridSettings
-    rank_by: Optional[str] = None  # default: ari with labels, silhouette without
+    rank_by: Optional[Annotated[str, Field(json_schema_extra={"enum": list(RANKING_METRICS)})]] = None  # default: ari with labels, silhouette without
     evidence: EvidenceSettings = Field(default_factory=EvidenceSettings)
     storage_dtype: Literal["float32", "float16"] = "float32"  # how pooled vectors are kept in the cache
 
-    @field_validator("models", mode="before")
+    @field_validator("models", mode="before", json_schema_input_type=list[Union[str, ModelSettings]])
     @classmethod
     def _model_shorthand(cls, values: Any) -> Any:
         if isinstance(values, list):

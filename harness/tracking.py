@@ -15,6 +15,7 @@ from pathlib import Path
 from typing import Any, Iterable
 
 from harness.errors import HarnessError
+from harness.runs_view import EXPERIMENT_KIND_TAG, MODEL_DEVELOPMENT, RANKING_VIEW_TAG, ranking_view_tag
 
 PARENT_TAG = "mlflow.parentRunId"
 RUN_NAME_TAG = "mlflow.runName"
@@ -81,11 +82,18 @@ class SweepTracker:
                 if not tracking_uri.startswith(("http://", "https://")):
                     artifact_root.mkdir(parents=True, exist_ok=True)
                     location = (artifact_root / experiment_name).resolve().as_uri()
-                self.experiment_id = self.client.create_experiment(experiment_name, artifact_location=location)
+                self.experiment_id = self.client.create_experiment(
+                    experiment_name, artifact_location=location, tags={EXPERIMENT_KIND_TAG: MODEL_DEVELOPMENT})
             else:
                 self.experiment_id = experiment.experiment_id
+                if experiment.tags.get(EXPERIMENT_KIND_TAG) != MODEL_DEVELOPMENT:
+                    self.client.set_experiment_tag(self.experiment_id, EXPERIMENT_KIND_TAG, MODEL_DEVELOPMENT)
         except Exception as err:
             raise HarnessError(f"tracking store {tracking_uri}: cannot open it: {str(err).splitlines()[0]}") from None
+
+    def show_ranking(self, sweep_run_id: str, rank_metrics: Iterable[str]) -> None:
+        """Save the view that the UI link opens: this sweep run's configurations, best first."""
+        self.client.set_experiment_tag(self.experiment_id, RANKING_VIEW_TAG, ranking_view_tag(sweep_run_id, rank_metrics))
 
     def _runs(self, filter_string: str) -> list:
         runs, token = [], None
@@ -171,3 +179,29 @@ class SweepTracker:
         if error is not None:
             self._log(run_id, tags={"harness.error": error})
         self.client.set_terminated(run_id, status=status)
+
+
+def sweep_experiments(tracking_uri: str) -> list[tuple[str, str]]:
+    """(name, id) of every experiment holding a sweep run, each made to open on its ranking view.
+
+    Stores written by an older harness lack the experiment kind and the view: they are added here, the view
+    showing the newest sweep run and the score it ranks by (ari and silhouette where the sweep left the default).
+    """
+    from mlflow.tracking import MlflowClient
+
+    client = MlflowClient(tracking_uri=tracking_uri)
+    found = []
+    for experiment in client.search_experiments():
+        newest = client.search_runs([experiment.experiment_id], f"tags.`{KIND_TAG}` = 'sweep'",
+                                    order_by=["attributes.start_time DESC"], max_results=1)
+        if not newest:
+            continue
+        if experiment.tags.get(EXPERIMENT_KIND_TAG) != MODEL_DEVELOPMENT:
+            client.set_experiment_tag(experiment.experiment_id, EXPERIMENT_KIND_TAG, MODEL_DEVELOPMENT)
+        if RANKING_VIEW_TAG not in experiment.tags:
+            rank_by = newest[0].data.params.get("rank_by", "default")
+            metrics = ["ari", "silhouette"] if rank_by == "default" else [rank_by]
+            client.set_experiment_tag(experiment.experiment_id, RANKING_VIEW_TAG,
+                                      ranking_view_tag(newest[0].info.run_id, metrics))
+        found.append((experiment.name, experiment.experiment_id))
+    return sorted(found)

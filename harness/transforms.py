@@ -6,7 +6,7 @@ steps applied in order; the empty chain leaves vectors as they are.
 
 from __future__ import annotations
 
-from typing import Annotated, Any, Callable, Literal, Union
+from typing import Annotated, Any, Callable, Literal, Union, get_args
 
 import numpy as np
 from pydantic import BeforeValidator, Field, PositiveInt
@@ -40,9 +40,11 @@ def _step_shorthand(value: Any) -> Any:
     return {"method": value} if isinstance(value, str) else value
 
 
+_STEPS = (CenterStep, L2Step, WhitenStep, AllButTheTopStep, RemoveLengthStep)
+StepName = Literal[tuple(get_args(step.model_fields["method"].annotation)[0] for step in _STEPS)]  # a step by name
 TransformStep = Annotated[
-    Union[CenterStep, L2Step, WhitenStep, AllButTheTopStep, RemoveLengthStep],
-    Field(discriminator="method"), BeforeValidator(_step_shorthand),
+    Union[_STEPS],
+    Field(discriminator="method"), BeforeValidator(_step_shorthand, json_schema_input_type=Union[(StepName, *_STEPS)]),
 ]
 
 

@@ -13,8 +13,18 @@ os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
 os.environ.setdefault("MLFLOW_LOGGING_LEVEL", "WARNING")
 
 REPO = Path(__file__).resolve().parents[1]
-SHARED_DATASETS = REPO.parent / "shared" / "datasets"
+# The offline mirror of the public datasets, when the environment names one (.ci/run sets it where a local
+# mirror exists; `harness datasets mirror --out DIR` builds one). Tests that read it skip, with this reason, without it.
+MIRROR_DIR = Path(os.environ["HARNESS_DATA_DIR"]).expanduser().resolve() if os.environ.get("HARNESS_DATA_DIR") else None
 MINILM = "sentence-transformers/all-MiniLM-L6-v2"
+
+
+def needs_mirror(*files: str):
+    """Skip a test that reads these mirror files when HARNESS_DATA_DIR does not hold them, saying which is missing."""
+    if MIRROR_DIR is None:
+        return pytest.mark.skipif(True, reason=f"needs the dataset mirror ({', '.join(files)}): HARNESS_DATA_DIR is not set")
+    missing = [f for f in files if not (MIRROR_DIR / f).is_file()]
+    return pytest.mark.skipif(bool(missing), reason=f"needs {', '.join(missing)} in HARNESS_DATA_DIR={MIRROR_DIR}")
 
 
 @pytest.fixture(scope="session")

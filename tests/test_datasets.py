@@ -70,7 +70,7 @@ def test_stratified_sample_keeps_class_shares():
 def test_file_sample_is_stratified_and_seeded(tmp_path):
     path = tmp_path / "t.csv"
     pd.DataFrame({"text": [f"t{i}" for i in range(400)], "label": ["a"] * 300 + ["b"] * 100}).to_csv(path, index=False)
-    corpus = loaded_corpus(FileSource(source="file", path=path, sample=40, sample_seed=5))
+    corpus = loaded_corpus(FileSource(source="file", path=path, sample=40, seed=5))
     assert np.bincount(corpus.labels).tolist() == [30, 10]
 
 

@@ -3,11 +3,11 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Literal, Optional
+from typing import Any, Literal, Optional
 
 import numpy as np
 import pandas as pd
-from pydantic import PositiveInt, ValidationInfo, field_validator
+from pydantic import PositiveInt, ValidationInfo, field_validator, model_validator
 
 from harness._settings import Settings, relative_to_sweep
 from harness.datasets.corpus import Corpus, random_indices, stratified_indices
@@ -25,8 +25,15 @@ class FileSource(Settings):
     label_column: Optional[str] = "label"
     id_column: Optional[str] = None
     sample: Optional[PositiveInt] = None
-    sample_seed: int = 0
+    seed: int = 0  # seeds the subsample; the same name as for every other source
     max_chars: PositiveInt = 1_000_000  # longer texts are refused: almost surely a broken file or column
+
+    @model_validator(mode="before")
+    @classmethod
+    def _renamed_keys(cls, data: Any) -> Any:
+        if isinstance(data, dict) and "sample_seed" in data:
+            raise ValueError(f"'sample_seed' is now 'seed', the name every source uses; write seed: {data['sample_seed']}")
+        return data
 
     @field_validator("path")
     @classmethod
@@ -87,6 +94,11 @@ def file_corpus(spec: FileSource) -> Corpus:
 
     labels = label_names = None
     if spec.label_column is not None:
+        if spec.label_column not in frame.columns and "label_column" not in spec.model_fields_set:
+            found = ", ".join(map(str, frame.columns[:10]))
+            raise DataError(f"{path}: label_column: no column '{spec.label_column}' (the default); for a file without "
+                            f"labels write label_column: null in this dataset entry, or name the column that holds them "
+                            f"(label_column: NAME); the file has: {found}")
         raw_labels = _column(frame, spec.label_column, "label_column", path)
         # A CSV's empty cell reads as "" (missing values are not converted), JSON's null and Parquet's null as NaN;
         # either would become a class of its own (named "" or "nan"), so both are refused, as empty texts are.
@@ -112,9 +124,9 @@ def file_corpus(spec: FileSource) -> Corpus:
 
     if spec.sample is not None:
         keep = (
-            stratified_indices(labels, spec.sample, spec.sample_seed)
+            stratified_indices(labels, spec.sample, spec.seed)
             if labels is not None
-            else random_indices(len(texts), spec.sample, spec.sample_seed)
+            else random_indices(len(texts), spec.sample, spec.seed)
         )
         texts = [texts[i] for i in keep]
         ids = ids[keep]

@@ -81,15 +81,73 @@ def mirror_table(source: str, folder: Path) -> Optional[pd.DataFrame]:
     return table
 
 
-def _public_twenty_newsgroups() -> Optional[pd.DataFrame]:
-    from sklearn.datasets import fetch_20newsgroups
+class RouteFailure(Exception):
+    """A public route could not deliver its dataset; the message says why, in a few words (no 'offline' guess)."""
 
+
+def _first_line(err: BaseException) -> str:
+    text = str(err).strip()
+    return text.splitlines()[0] if text else type(err).__name__
+
+
+def _causes(err: BaseException) -> list[BaseException]:
+    chain, seen = [], set()
+    while err is not None and id(err) not in seen:
+        seen.add(id(err))
+        chain.append(err)
+        err = err.__cause__ or err.__context__
+    return chain
+
+
+def hub_failure_reason(err: BaseException) -> str:
+    """Why a ``datasets.load_dataset`` call failed, from the error the library raised.
+
+    The datasets library re-raises hub failures as a ConnectionError whose message names the cause
+    ("Couldn't reach 'x' on the Hub (OfflineModeIsEnabled)"), so both the exception chain and the
+    message are read.
+    """
+    chain = _causes(err)
+    if any(isinstance(e, ImportError) for e in chain):
+        return ("the 'datasets' package is not installed; it is a dependency of harness: reinstall harness "
+                "(pip install -e .) or pip install 'datasets>=5.2,<6'")
+    if any(type(e).__name__ == "OfflineModeIsEnabled" or "OfflineModeIsEnabled" in str(e) for e in chain):
+        return ("offline mode is on (HF_HUB_OFFLINE or HF_DATASETS_OFFLINE is set) and the datasets cache does not "
+                "hold it")
+    answered = next((e for e in chain if isinstance(getattr(getattr(e, "response", None), "status_code", None), int)), None)
+    if answered is not None:
+        return f"HTTP {answered.response.status_code} from the Hugging Face hub: {_first_line(answered)}"
+    if type(err).__name__ == "DatasetNotFoundError":
+        return f"not found on the Hugging Face hub: {_first_line(err)}"
+    if any(isinstance(e, (ConnectionError, TimeoutError)) or type(e).__name__ in ("ConnectError", "ConnectTimeout")
+           for e in chain):
+        return f"cannot reach the Hugging Face hub (no network, or a proxy in the way): {_first_line(err)}"
+    return f"{type(err).__name__}: {_first_line(err)}"
+
+
+def download_failure_reason(err: BaseException, offline: bool, data_home: str) -> str:
+    """Why scikit-learn's 20 Newsgroups fetcher failed."""
+    import urllib.error
+
+    if offline and isinstance(err, OSError) and "not found" in str(err):
+        return (f"downloads are off (HF_HUB_OFFLINE or HF_DATASETS_OFFLINE is set) and scikit-learn's data folder "
+                f"{data_home} does not hold it")
+    if isinstance(err, urllib.error.HTTPError):
+        return f"HTTP {err.code} from {err.url}: {err.reason}"
+    if isinstance(err, urllib.error.URLError):
+        return f"cannot reach the download server (no network, or a proxy in the way): {err.reason}"
+    return f"{type(err).__name__}: {_first_line(err)}"
+
+
+def _public_twenty_newsgroups() -> pd.DataFrame:
+    from sklearn.datasets import fetch_20newsgroups, get_data_home
+
+    offline = _offline()
     parts = []
     for split in SPLITS:
         try:
-            bunch = fetch_20newsgroups(subset=split, remove=(), download_if_missing=not _offline())
-        except Exception:  # not cached and not downloadable: this route is unavailable
-            return None
+            bunch = fetch_20newsgroups(subset=split, remove=(), download_if_missing=not offline)
+        except Exception as err:  # the fetcher raises OSError, URLError, HTTPError...: say which
+            raise RouteFailure(download_failure_reason(err, offline, get_data_home())) from None
         parts.append(pd.DataFrame({"text": bunch.data, "label": bunch.target,
                                    "label_name": [bunch.target_names[i] for i in bunch.target], "split": split}))
     table = pd.concat(parts, ignore_index=True)
@@ -97,39 +155,59 @@ def _public_twenty_newsgroups() -> Optional[pd.DataFrame]:
     return table
 
 
-def _public_ag_news() -> Optional[pd.DataFrame]:
-    if _offline():
-        return None
-    try:
-        from datasets import load_dataset
+AG_NEWS_HUB_ID = "ag_news"
 
-        loaded = load_dataset("ag_news")
-    except Exception:  # no network or no datasets library: this route is unavailable
-        return None
-    names = loaded["train"].features["label"].names
+
+def hub_table(loaded, hub_id: str) -> pd.DataFrame:
+    """The train and test splits of a loaded ``DatasetDict`` with a text column and a class-label column."""
+    found = {split: sorted(loaded[split].column_names) for split in loaded}
+    label_names = None
+    if all(s in found for s in SPLITS) and all({"text", "label"} <= set(found[s]) for s in SPLITS):
+        label_names = getattr(loaded["train"].features["label"], "names", None)
+    if not label_names:
+        raise RouteFailure(f"unexpected schema from huggingface:{hub_id}: expected splits train and test with columns "
+                           f"text and label (a class label); got {found}")
     parts = [pd.DataFrame({"text": loaded[s]["text"], "label": loaded[s]["label"], "split": s}) for s in SPLITS]
     table = pd.concat(parts, ignore_index=True)
-    table["label_name"] = [names[i] for i in table.label]
-    table.attrs["route"] = "huggingface:ag_news"
+    table["label_name"] = [label_names[i] for i in table.label]
+    table.attrs["route"] = f"huggingface:{hub_id}"
     return table
 
 
-PUBLIC_ROUTES = {"twenty_newsgroups": _public_twenty_newsgroups, "ag_news": _public_ag_news}
+def _public_ag_news() -> pd.DataFrame:
+    try:
+        from datasets import load_dataset
+
+        loaded = load_dataset(AG_NEWS_HUB_ID)
+    except Exception as err:  # the library raises ConnectionError, HTTP errors, ImportError...: say which
+        raise RouteFailure(hub_failure_reason(err)) from None
+    return hub_table(loaded, AG_NEWS_HUB_ID)
+
+
+PUBLIC_ROUTES: dict[str, Callable[[], pd.DataFrame]] = {
+    "twenty_newsgroups": _public_twenty_newsgroups,
+    "ag_news": _public_ag_news,
+}
+MIRROR_COMMAND = "harness datasets mirror --out DIR"
 
 
 def source_table(spec: PublicSource) -> pd.DataFrame:
     """The whole dataset from the mirror when one is set and holds it, else from the public route."""
     folder = spec.mirror_dir()
     table = mirror_table(spec.source, folder) if folder is not None else None
-    if table is None:
-        table = PUBLIC_ROUTES[spec.source]()
-    if table is None:
-        where = f"{folder / MIRROR_FILES[spec.source]} does not exist" if folder else "no mirror folder is set"
+    if table is not None:
+        return table
+    try:
+        return PUBLIC_ROUTES[spec.source]()
+    except RouteFailure as failure:
+        if folder is None:
+            mirror = f"no mirror ({DATA_DIR_VARIABLE} is not set and the entry has no data_dir:)"
+        else:
+            mirror = f"no mirror ({folder / MIRROR_FILES[spec.source]} does not exist)"
         raise DataError(
-            f"dataset '{spec.source}': the public route is unreachable (offline) and {where}; either run where the "
-            f"network is reachable, or set data_dir: (or {DATA_DIR_VARIABLE}) to a folder holding {MIRROR_FILES[spec.source]}"
-        )
-    return table
+            f"dataset '{spec.source}': {mirror}, and the public route failed: {failure}; on a machine with a network, "
+            f"build a mirror with `{MIRROR_COMMAND} {spec.source}` and set {DATA_DIR_VARIABLE}=DIR (or data_dir: DIR)"
+        ) from None
 
 
 def _split_rows(table: pd.DataFrame, spec: PublicSource) -> pd.DataFrame:
