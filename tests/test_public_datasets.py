@@ -83,9 +83,9 @@ def test_per_class_cap_and_stratified_sample():
     assert np.bincount(sampled.labels).tolist() == [100] * 4
     # The fingerprint follows the content: another seed draws other texts and gets another fingerprint; the same
     # settings loaded again give the same texts and fingerprint.
-    reseeded = loaded_corpus(AgNewsSource(source="ag_news", data_dir=SHARED_DATASETS, per_class=100, seed=4))
+    reseeded = loaded_corpus(AgNewsSource(source="ag_news", data_dir=MIRROR_DIR, per_class=100, seed=4))
     assert reseeded.texts != capped.texts and reseeded.fingerprint != capped.fingerprint
-    again = loaded_corpus(AgNewsSource(source="ag_news", data_dir=SHARED_DATASETS, per_class=100, seed=3))
+    again = loaded_corpus(AgNewsSource(source="ag_news", data_dir=MIRROR_DIR, per_class=100, seed=3))
     assert again.texts == capped.texts and again.fingerprint == capped.fingerprint
     assert (capped.texts == sampled.texts) == (capped.fingerprint == sampled.fingerprint)
 
