@@ -211,7 +211,7 @@ def _dataset_bases(r) -> dict[str, dict]:
         "synthetic": {"source": "synthetic", "name": "town", "n_texts": 40, "n_topics": 3, "topic_share": 0.4,
                       "topic_overlap": 0.1, "min_words": 3, "max_words": 20, "length_topic_tie": 0.2, "seed": 0},
         "file": {"source": "file", "path": str(root / "file_a.csv"), "name": "mine", "text_column": "text",
-                 "label_column": "label", "id_column": "id", "sample": 40, "sample_seed": 0},
+                 "label_column": "label", "id_column": "id", "sample": 40, "seed": 0},
         "twenty_newsgroups": {"source": "twenty_newsgroups", "name": "news", "remove": ["footers"], **public},
         "ag_news": {"source": "ag_news", "name": "agn", **public},
     }
