@@ -26,7 +26,7 @@ from harness.lexical import LEXICAL_POOLING
 from harness.pooling import MEAN_SCALED
 from harness.static_vectors import STATIC_POOLINGS
 from harness.reduce import SCALE_INVARIANT_REDUCERS, SEEDED_REDUCERS
-from harness.sweep import ModelSettings, Sweep
+from harness.sweep import TRANSFORMER_FAMILIES, ModelSettings, Sweep
 from harness.transforms import NORMALIZATIONS, SCALE_REMOVING, chain_label
 
 STAGE_KINDS = ("encode", "pool", "transform", "reduce", "cluster")
@@ -89,6 +89,7 @@ class Trial:
             "backend": self.model.backend,
             "max_length": self.model.max_length if self.model.max_length is not None else "model_default",
             "long_texts": self.model.long_texts,
+            **({"device": self.model.device} if self.model.family in TRANSFORMER_FAMILIES else {}),
             "layers": self.layers,
             "pooling": self.pooling,
             "normalize": self.normalize,
@@ -162,7 +163,11 @@ FAMILY_POOLINGS: dict[str, tuple[str, ...] | None] = {
 }
 
 
-def family_settings(model: ModelSettings) -> dict[str, Any]:
+def family_settings(model: ModelSettings, resolved: ResolvedModel) -> dict[str, Any]:
+    """Encode settings only some families have. The device enters as the hardware that ran the forward pass: we
+    could not show that a GPU's vectors agree with the CPU's within a tolerance that leaves clusters unchanged."""
+    if model.family in TRANSFORMER_FAMILIES:
+        return {"device": resolved.device.key}
     if model.family == "static":
         return {"sif_a": model.sif_a, "remove_first_component": model.remove_first_component}
     if model.family == "lexical":
@@ -215,7 +220,7 @@ def trial_stages(
     encode = make_stage("encode", dataset_key_, {
         "model": resolved.name, "family": model.family, "weights": resolved.weights_digest,
         "max_length": model.max_length, "long_texts": model.long_texts, "backend": model.backend,
-        **family_settings(model),
+        **family_settings(model, resolved),
     })
     pool = pool_stage(encode.key, layers, computed_pooling(pooling, chain, reducer), dtype)
     transform = make_stage("transform", pool.key, {"chain": [step.as_params() for step in chain]})
@@ -255,7 +260,7 @@ def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str,
                 normalize=normalize, transform=tuple(transform), reducer=reducer, clusterer=clusterer, seed=seed,
                 stages=stages,
             )
-            identity = {"dataset": dataset_keys[name], "weights": resolved.weights_digest}
+            identity = {"dataset": dataset_keys[name], "weights": resolved.weights_digest, "device": resolved.device.key}
             trials.append(replace(trial, key=settings_key({**identity, **trial.params}),
                                   config_key=settings_key({**identity, **trial.config_params})))
     return _marked_equivalents(trials)

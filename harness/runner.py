@@ -23,7 +23,7 @@ from harness.cluster import clustering_limits
 from harness.datasets import Corpus, dataset_name, loaded_corpus, needs_tokenizer
 from harness.errors import HarnessError
 from harness.layers import layer_choice_fits, output_width
-from harness.models import ResolvedModel, resolve_family_model
+from harness.models import ResolvedModel, model_device, resolve_family_model
 from harness.plan import Trial, aligned_params, dataset_key, planned_trials
 from harness.reduce import reduction_limits
 from harness.transforms import chain_width, transform_limits
@@ -101,7 +101,11 @@ def prepared_sweep(path: str | Path) -> PreparedSweep:
     models = {}
     for index, spec in enumerate(sweep.models):
         try:
-            models[spec.label] = resolve_family_model(spec)
+            device = model_device(spec)
+        except HarnessError as err:
+            raise sweep_error_at(path, ["models", index, "device"], str(err)) from None
+        try:
+            models[spec.label] = resolve_family_model(spec, device)
         except HarnessError as err:
             raise sweep_error_at(path, ["models", index, "name"], str(err)) from None
     first_model = models[sweep.models[0].label]
@@ -241,6 +245,7 @@ def _trial_tags(trial: Trial, corpus: Corpus) -> dict[str, str]:
         "harness.dataset_fingerprint": corpus.fingerprint,
         "harness.model_source": trial.resolved_model.source,
         "harness.model_weights_sha256": trial.resolved_model.weights_digest,
+        "harness.device": trial.resolved_model.device.label,
         "harness.config_key": trial.config_key,
     }
     if trial.equivalent_to:

@@ -76,7 +76,7 @@ class StageExecutor:
     def _encoder(self, trial: Trial) -> LoadedEncoder:
         spec = trial.model
         cache_key = (trial.resolved_model.folder, trial.resolved_model.family, spec.max_length, spec.trust_remote_code,
-                     spec.backend)
+                     spec.backend, trial.resolved_model.device)
         if cache_key not in self._encoders:
             encoder = loaded_encoder(trial.resolved_model, spec.max_length, spec.trust_remote_code)
             if spec.backend != "torch":

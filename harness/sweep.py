@@ -6,6 +6,7 @@ Every error names the file, the line, the key and what was expected, as one line
 from __future__ import annotations
 
 import difflib
+import re
 from pathlib import Path
 from typing import Annotated, Any, Literal, Optional, Union
 
@@ -16,6 +17,7 @@ from harness import _yaml_lines
 from harness._settings import Settings, relative_to_sweep
 from harness.cluster import ClustererSettings
 from harness.datasets import DatasetSettings, dataset_name
+from harness.devices import DEVICE_CHOICES, DEVICE_PATTERN
 from harness.errors import SweepError
 from harness.layers import LAYER_SELECTIONS
 from harness.pooling import POOLINGS
@@ -49,9 +51,12 @@ def _unique(values: list, what: str) -> list:
 
 
 MODEL_FAMILIES = ("sentence_transformer", "transformer", "static", "lexical")
-FAMILY_KEYS = {
-    "static": {"vectors", "vocabulary", "sif_a", "remove_first_component"},
-    "lexical": {"dimensions"},
+TRANSFORMER_FAMILIES = ("sentence_transformer", "transformer")
+# Keys that only some families accept; every other key of a model entry applies to every family.
+KEY_FAMILIES: dict[str, tuple[str, ...]] = {
+    **{key: ("static",) for key in ("vectors", "vocabulary", "sif_a", "remove_first_component")},
+    "dimensions": ("lexical",),
+    "device": TRANSFORMER_FAMILIES,
 }
 
 
@@ -73,17 +78,30 @@ class ModelSettings(Settings):
     sif_a: Optional[float] = Field(None, gt=0.0)  # static: smooth inverse frequency weighting a / (a + p(w))
     remove_first_component: bool = False  # static: Arora et al.'s common-component removal
     dimensions: PositiveInt = 100  # lexical: SVD dimensions
+    device: str = "auto"  # transformer families: auto | cpu | cuda | cuda:N (auto: CUDA when torch sees a GPU)
 
     @model_validator(mode="before")
     @classmethod
     def _keys_of_other_families(cls, data: Any) -> Any:
         if isinstance(data, dict):
             family = data.get("family", "sentence_transformer")
-            for other, keys in FAMILY_KEYS.items():
-                for key in sorted(keys & set(data)):
-                    if other != family:
-                        raise ValueError(f"'{key}' applies to family {other}, not {family}")
+            for key in sorted(set(KEY_FAMILIES) & set(data)):
+                if family not in KEY_FAMILIES[key]:
+                    raise ValueError(f"'{key}' applies to family {' or '.join(KEY_FAMILIES[key])}, not {family}")
         return data
+
+    @field_validator("device")
+    @classmethod
+    def _device(cls, value: str) -> str:
+        if not re.fullmatch(DEVICE_PATTERN, value):
+            raise ValueError(f"{value!r} is not a device; expected {DEVICE_CHOICES}")
+        return value
+
+    @model_validator(mode="after")
+    def _device_fits_backend(self) -> "ModelSettings":
+        if self.backend != "torch" and self.device not in ("auto", "cpu"):
+            raise ValueError(f"device '{self.device}' needs backend torch; the {self.backend} backend runs on the CPU")
+        return self
 
     @property
     def label(self) -> str:
