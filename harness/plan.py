@@ -125,6 +125,9 @@ def _short(settings: Settings) -> str:
     """A method and the settings that tell its variants apart, e.g. umap5 or hdbscan15leaf."""
     params = settings.as_params()
     method = params.pop("method")
+    if method == "agglomerative":
+        cut = params["k"] if params["k"] is not None else f"t{params['distance_threshold']:g}"
+        return f"{method}-{params['linkage']}{'-cos' if params['metric'] == 'cosine' else ''}-{cut}"
     telling = {"umap": ("n_components",), "pca": ("n_components",), "kmeans": ("k",), "hdbscan": ("min_cluster_size",)}
     suffix = "".join(str(params[k]) for k in telling.get(method, ()) if k in params)
     if params.get("cluster_selection_method") == "leaf":
