@@ -43,6 +43,7 @@ class ResolvedModel:
     fixed_width: int | None = None  # static and lexical models: no config.json to read
     vocabulary: Path | None = None  # static models: the word list in the vectors' row order
     device: Device = CPU  # where the forward pass runs (transformer families)
+    length_tokenizer: "ResolvedModel | None" = None  # precomputed models: whose tokenizer counts lengths (None: words)
 
     @property
     def width(self) -> int:
@@ -182,6 +183,14 @@ def resolve_family_model(spec, device: Device | None = None) -> ResolvedModel:
         resolved = resolve_model(spec.name, spec.revision)
         return ResolvedModel(resolved.name, resolved.folder, resolved.source, resolved.weights_digest, spec.family,
                              device=model_device(spec) if device is None else device)
+    if spec.family == "precomputed":
+        from harness.precomputed import vectors_source, vectors_width
+
+        source = vectors_source(spec)
+        digest = _file_digest(source.path) + (_file_digest(source.ids) if source.ids is not None else "")
+        tokenizer = resolve_model(spec.length_tokenizer) if spec.length_tokenizer else None
+        return ResolvedModel(spec.name, source.path, "local_path", digest, "precomputed",
+                             fixed_width=vectors_width(source), vocabulary=source.ids, length_tokenizer=tokenizer)
     if spec.family == "lexical":
         from importlib import metadata
 

@@ -24,6 +24,7 @@ from harness.layers import LayerChoice
 from harness.models import ResolvedModel
 from harness.lexical import LEXICAL_POOLING
 from harness.pooling import MEAN_SCALED
+from harness.precomputed import PRECOMPUTED_POOLING, vectors_source
 from harness.static_vectors import STATIC_POOLINGS
 from harness.reduce import SCALE_INVARIANT_REDUCERS, SEEDED_REDUCERS
 from harness.sweep import TRANSFORMER_FAMILIES, ModelSettings, Sweep
@@ -163,7 +164,10 @@ def make_stage(kind: str, parent: str | None, settings: dict[str, Any]) -> Stage
 # Which poolings and layer choices each family has; a grid point a family lacks is left out for that model.
 FAMILY_POOLINGS: dict[str, tuple[str, ...] | None] = {
     "sentence_transformer": None, "transformer": None, "static": STATIC_POOLINGS, "lexical": (LEXICAL_POOLING,),
+    "precomputed": (PRECOMPUTED_POOLING,),
 }
+# Families with one vector per text and no pooling or layer choice: every grid point maps to that vector.
+SINGLE_VECTOR_FAMILIES = frozenset({"lexical", "precomputed"})
 
 
 def family_settings(model: ModelSettings, resolved: ResolvedModel) -> dict[str, Any]:
@@ -175,6 +179,11 @@ def family_settings(model: ModelSettings, resolved: ResolvedModel) -> dict[str, 
         return {"sif_a": model.sif_a, "remove_first_component": model.remove_first_component}
     if model.family == "lexical":
         return {"dimensions": model.dimensions}
+    if model.family == "precomputed":  # the vectors' and ids' bytes are in resolved.weights_digest
+        tokenizer = resolved.length_tokenizer
+        source = vectors_source(model)  # defaults filled in: a default spelled out keys as the default
+        return {"id_column": source.id_column, "vector_column": source.vector_column,
+                "length_tokenizer": "words" if tokenizer is None else f"{tokenizer.name}@{tokenizer.weights_digest}"}
     return {}
 
 
@@ -183,8 +192,8 @@ def applicable(model: ModelSettings, layers: LayerChoice, pooling: str) -> tuple
     allowed = FAMILY_POOLINGS[model.family]
     if allowed is None:
         return layers, pooling
-    if model.family == "lexical":
-        return "last", LEXICAL_POOLING
+    if model.family in SINGLE_VECTOR_FAMILIES:
+        return "last", allowed[0]
     return ("last", pooling) if pooling in allowed else None
 
 

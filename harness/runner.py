@@ -27,7 +27,9 @@ from harness.models import ResolvedModel, model_device, resolve_family_model
 from harness.plan import Trial, aligned_params, dataset_key, planned_trials
 from harness.reduce import reduction_limits
 from harness.transforms import chain_width, transform_limits
-from harness.sweep import LABEL_FREE_METRICS, LABELLED_METRICS, EvidenceSettings, Sweep, load_sweep, sweep_error_at
+from harness.sweep import (
+    LABEL_FREE_METRICS, LABELLED_METRICS, TRANSFORMER_FAMILIES, EvidenceSettings, Sweep, load_sweep, sweep_error_at,
+)
 
 if TYPE_CHECKING:
     from harness.leaderboard import Ranking
@@ -107,7 +109,8 @@ def prepared_sweep(path: str | Path) -> PreparedSweep:
         try:
             models[spec.label] = resolve_family_model(spec, device)
         except HarnessError as err:
-            raise sweep_error_at(path, ["models", index, "name"], str(err)) from None
+            key = "vectors" if spec.family == "precomputed" else "name"
+            raise sweep_error_at(path, ["models", index, key], str(err)) from None
     first_model = models[sweep.models[0].label]
     keys = {
         dataset_name(spec): dataset_key(spec, first_model.weights_digest if needs_tokenizer(spec) else None)
@@ -142,12 +145,20 @@ def check_against_data(prepared: PreparedSweep, corpora: dict[str, Corpus]) -> N
     for corpus in corpora.values():
         for m_index, spec in enumerate(prepared.sweep.models):
             model = prepared.models[spec.label]
-            for index, layers in enumerate(grid.layers):
+            if spec.family == "precomputed":
+                from harness.precomputed import aligned_vectors, vectors_source
+
+                try:
+                    aligned_vectors(vectors_source(spec), corpus.ids, corpus.name)
+                except HarnessError as err:
+                    raise sweep_error_at(prepared.path, ["models", m_index, "vectors"], str(err)) from None
+            for index, layers in enumerate(grid.layers if spec.family in TRANSFORMER_FAMILIES else ()):
                 if not layer_choice_fits(layers, model.n_hidden_states):
                     raise sweep_error_at(prepared.path, ["grid", "layers", index],
                         f"{layers!r} does not fit '{spec.name}', which has {model.n_hidden_states} hidden states "
                         f"(embeddings + {model.n_hidden_states - 1} layers)")
-            widths = {output_width(layers, model.width) for layers in grid.layers}
+            widths = ({output_width(layers, model.width) for layers in grid.layers}
+                      if spec.family in TRANSFORMER_FAMILIES else {model.width})
             # Transforms see the pooled widths; reducers also see what whitening leaves.
             for axis, limits, axis_widths in (
                 ("transform", transform_limits, widths),
@@ -212,7 +223,8 @@ def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings
                                     permutations=evidence.permutations, max_points=evidence.max_points))
     scores["length_leakage_r2"] = executor.length_leakage(trial)
     table, scores["npmi_mean"] = described_clusters(executor.term_counts(trial), clusters, counts, top=evidence.top_terms)
-    scores["truncated_fraction"] = executor.truncated_fraction(trial)
+    if trial.model.family != "precomputed":  # unknown for vectors made elsewhere
+        scores["truncated_fraction"] = executor.truncated_fraction(trial)
     if trial.model.family == "static":
         scores["oov_fraction"] = executor.encode_info(trial).get("oov_fraction", float("nan"))
     scores.update(executor.stage_seconds(trial))

@@ -50,11 +50,13 @@ def _unique(values: list, what: str) -> list:
     return values
 
 
-MODEL_FAMILIES = ("sentence_transformer", "transformer", "static", "lexical")
+MODEL_FAMILIES = ("sentence_transformer", "transformer", "static", "lexical", "precomputed")
 TRANSFORMER_FAMILIES = ("sentence_transformer", "transformer")
 # Keys that only some families accept; every other key of a model entry applies to every family.
 KEY_FAMILIES: dict[str, tuple[str, ...]] = {
-    **{key: ("static",) for key in ("vectors", "vocabulary", "sif_a", "remove_first_component")},
+    **{key: ("static",) for key in ("vocabulary", "sif_a", "remove_first_component")},
+    "vectors": ("static", "precomputed"),
+    **{key: ("precomputed",) for key in ("ids", "id_column", "vector_column", "length_tokenizer")},
     "dimensions": ("lexical",),
     "device": TRANSFORMER_FAMILIES,
 }
@@ -63,10 +65,10 @@ KEY_FAMILIES: dict[str, tuple[str, ...]] = {
 class ModelSettings(Settings):
     """A model of the grid. ``family`` says how it turns texts into vectors:
     sentence_transformer (a sentence-transformers model), transformer (any Hugging Face encoder, loaded raw),
-    static (averaged word vectors), lexical (TF-IDF + truncated SVD)."""
+    static (averaged word vectors), lexical (TF-IDF + truncated SVD), precomputed (the user's own vectors)."""
 
     name: str = Field(min_length=1)
-    family: Literal["sentence_transformer", "transformer", "static", "lexical"] = "sentence_transformer"
+    family: Literal["sentence_transformer", "transformer", "static", "lexical", "precomputed"] = "sentence_transformer"
     max_length: Optional[PositiveInt] = None
     batch_size: PositiveInt = 64
     revision: Optional[str] = None
@@ -78,6 +80,10 @@ class ModelSettings(Settings):
     sif_a: Optional[float] = Field(None, gt=0.0)  # static: smooth inverse frequency weighting a / (a + p(w))
     remove_first_component: bool = False  # static: Arora et al.'s common-component removal
     dimensions: PositiveInt = 100  # lexical: SVD dimensions
+    ids: Optional[Path] = None  # precomputed .npy: one id per line, in the array's row order
+    id_column: Optional[str] = None  # precomputed Parquet: the column of ids (default id)
+    vector_column: Optional[str] = None  # precomputed Parquet: the column of vectors, a list of numbers (default vector)
+    length_tokenizer: Optional[str] = None  # precomputed: a model whose tokenizer counts lengths; default: words
     device: str = "auto"  # transformer families: auto | cpu | cuda | cuda:N (auto: CUDA when torch sees a GPU)
 
     @model_validator(mode="before")
@@ -96,6 +102,22 @@ class ModelSettings(Settings):
         if not re.fullmatch(DEVICE_PATTERN, value):
             raise ValueError(f"{value!r} is not a device; expected {DEVICE_CHOICES}")
         return value
+
+    @model_validator(mode="after")
+    def _precomputed_file(self) -> "ModelSettings":
+        if self.family != "precomputed":
+            return self
+        if self.vectors is None:
+            raise ValueError("family precomputed needs 'vectors:', a .npy or .parquet file of one vector per text")
+        suffix = Path(self.vectors).suffix
+        if suffix not in (".npy", ".parquet"):
+            raise ValueError(f"vectors: expected a .npy or .parquet file, got {self.vectors}")
+        if suffix == ".npy" and (self.id_column or self.vector_column):
+            raise ValueError("id_column and vector_column apply to a Parquet file; beside a .npy, give 'ids:' (a file "
+                             "with one id per line)")
+        if suffix == ".parquet" and self.ids is not None:
+            raise ValueError("'ids:' applies to a .npy; a Parquet file names its id column with 'id_column:'")
+        return self
 
     @model_validator(mode="after")
     def _device_fits_backend(self) -> "ModelSettings":
@@ -117,7 +139,7 @@ class ModelSettings(Settings):
             return value
         return str(cls._existing_file(Path(value), info))
 
-    @field_validator("vocabulary")
+    @field_validator("vocabulary", "ids")
     @classmethod
     def _existing_file(cls, path: Optional[Path], info: ValidationInfo) -> Optional[Path]:
         if path is None:
