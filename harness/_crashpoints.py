@@ -11,7 +11,7 @@ import signal
 from collections import Counter
 
 VARIABLE = "HARNESS_CRASH_AT"
-POINTS = ("encode_batch", "umap_fit", "between_trials", "mlflow_write")
+POINTS = ("encode_batch", "umap_fit", "between_trials", "mlflow_write", "archive_unpack")
 _reached: Counter = Counter()
 
 

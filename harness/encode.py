@@ -90,10 +90,12 @@ def pooled_variants(
     with torch.inference_mode():
         for batch in length_sorted_batches(piece_lengths, batch_size):
             inputs = _batch_inputs(encoder, texts, pieces, batch)
+            if encoder.device != "cpu":
+                inputs = {name: tensor.to(encoder.device) for name, tensor in inputs.items()}
             hidden_states = encoder.transformer(**inputs, output_hidden_states=True).hidden_states
             mask = inputs["attention_mask"]
             for layer_choice, pooling in variants:
-                pooled = POOLINGS[pooling](selected_hidden(hidden_states, layer_choice), mask).float().numpy()
+                pooled = POOLINGS[pooling](selected_hidden(hidden_states, layer_choice), mask).float().cpu().numpy()
                 if (layer_choice, pooling) not in outputs:
                     outputs[(layer_choice, pooling)] = np.empty((owners.size, pooled.shape[1]), dtype=np.float32)
                 outputs[(layer_choice, pooling)][batch] = pooled

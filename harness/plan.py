@@ -24,9 +24,10 @@ from harness.layers import LayerChoice
 from harness.models import ResolvedModel
 from harness.lexical import LEXICAL_POOLING
 from harness.pooling import MEAN_SCALED
+from harness.precomputed import PRECOMPUTED_POOLING, vectors_source
 from harness.static_vectors import STATIC_POOLINGS
 from harness.reduce import SCALE_INVARIANT_REDUCERS, SEEDED_REDUCERS
-from harness.sweep import FAMILY_KEYS, ModelSettings, Sweep
+from harness.sweep import KEY_FAMILIES, TRANSFORMER_FAMILIES, ModelSettings, Sweep
 from harness.transforms import NORMALIZATIONS, SCALE_REMOVING, chain_label
 
 STAGE_KINDS = ("encode", "pool", "transform", "reduce", "cluster")
@@ -60,7 +61,7 @@ RESULT_NEUTRAL: dict[str, str] = {
 }
 
 # Model fields that enter by content rather than by value: the files they name are in the weights digest.
-MODEL_FIELDS_BY_CONTENT = frozenset({"vectors", "vocabulary"})
+MODEL_FIELDS_BY_CONTENT = frozenset({"vectors", "vocabulary", "ids"})
 
 
 @lru_cache(maxsize=None)
@@ -152,7 +153,7 @@ def model_params(model: ModelSettings) -> dict[str, Any]:
     for name, value in model.as_params().items():
         if name == "name" or name in MODEL_FIELDS_BY_CONTENT or f"ModelSettings.{name}" in RESULT_NEUTRAL:
             continue
-        if any(name in keys and family != model.family for family, keys in FAMILY_KEYS.items()):
+        if name in KEY_FAMILIES and model.family not in KEY_FAMILIES[name]:
             continue
         flat[name] = ("model_default" if name == "max_length" else "default") if value is None else value
     return flat
@@ -177,6 +178,9 @@ def _short(settings: Settings) -> str:
     settings never share a name: umap5, umap5-nn10-euclidean, hdbscan15-ms5-leaf, kmeanslabels-ninit3."""
     params = settings.as_params()
     method = params.pop("method")
+    if method == "agglomerative":  # every field shows: linkage, metric, and the cut (k or a distance threshold)
+        cut = params["k"] if params["k"] is not None else f"t{params['distance_threshold']:g}"
+        return f"{method}-{params['linkage']}{'-cos' if params['metric'] == 'cosine' else ''}-{cut}"
     telling = TELLING.get(method)
     name = method + (str(params.pop(telling)) if telling in params else "")
     defaults = {k: f.get_default(call_default_factory=True) for k, f in type(settings).model_fields.items()}
@@ -222,25 +226,35 @@ def make_stage(kind: str, parent: str | None, settings: dict[str, Any]) -> Stage
 # Which poolings and layer choices each family has; a grid point a family lacks is left out for that model.
 FAMILY_POOLINGS: dict[str, tuple[str, ...] | None] = {
     "sentence_transformer": None, "transformer": None, "static": STATIC_POOLINGS, "lexical": (LEXICAL_POOLING,),
+    "precomputed": (PRECOMPUTED_POOLING,),
 }
+# Families with one vector per text and no pooling or layer choice: every grid point maps to that vector.
+SINGLE_VECTOR_FAMILIES = frozenset({"lexical", "precomputed"})
 
 
 def family_settings(model: ModelSettings, resolved: ResolvedModel) -> dict[str, Any]:
-    """The encode settings of a family beyond the weights: for transformers, the folder's config, tokenizer and
-    code files (and, for an ONNX backend, the opset and exporting libraries); a family's own settings otherwise."""
+    """The encode settings of a family beyond the weights: for transformers, the hardware that ran the forward pass
+    (we could not show that a GPU's vectors agree with the CPU's within a tolerance that leaves clusters unchanged),
+    the folder's config, tokenizer and code files (and, for an ONNX backend, the opset and exporting libraries); a
+    family's own settings otherwise."""
     if model.family == "static":
         return {"sif_a": model.sif_a, "remove_first_component": model.remove_first_component}
     if model.family == "lexical":
         return {"dimensions": model.dimensions}
-    if model.family in ("sentence_transformer", "transformer"):
+    if model.family in TRANSFORMER_FAMILIES:
         from harness.models import model_files_digest
 
-        settings: dict[str, Any] = {"model_files": model_files_digest(resolved.folder)}
+        settings: dict[str, Any] = {"device": resolved.device.key, "model_files": model_files_digest(resolved.folder)}
         if model.backend != "torch":
             from harness.onnx_backend import export_settings
 
             settings["export"] = export_settings()
         return settings
+    if model.family == "precomputed":  # the vectors' and ids' bytes are in resolved.weights_digest
+        tokenizer = resolved.length_tokenizer
+        source = vectors_source(model)  # defaults filled in: a default spelled out keys as the default
+        return {"id_column": source.id_column, "vector_column": source.vector_column,
+                "length_tokenizer": "words" if tokenizer is None else f"{tokenizer.name}@{tokenizer.weights_digest}"}
     return {}
 
 
@@ -249,8 +263,8 @@ def applicable(model: ModelSettings, layers: LayerChoice, pooling: str) -> tuple
     allowed = FAMILY_POOLINGS[model.family]
     if allowed is None:
         return layers, pooling
-    if model.family == "lexical":
-        return "last", LEXICAL_POOLING
+    if model.family in SINGLE_VECTOR_FAMILIES:
+        return "last", allowed[0]
     return ("last", pooling) if pooling in allowed else None
 
 

@@ -23,11 +23,13 @@ from harness.cluster import clustering_limits
 from harness.datasets import Corpus, dataset_name, loaded_corpus, needs_tokenizer
 from harness.errors import HarnessError
 from harness.layers import layer_choice_fits, output_width
-from harness.models import ResolvedModel, resolve_family_model
+from harness.models import ResolvedModel, model_device, resolve_family_model
 from harness.plan import Trial, aligned_params, dataset_key, planned_trials
 from harness.reduce import reduction_limits
 from harness.transforms import chain_width, transform_limits
-from harness.sweep import LABEL_FREE_METRICS, LABELLED_METRICS, EvidenceSettings, Sweep, load_sweep, sweep_error_at
+from harness.sweep import (
+    LABEL_FREE_METRICS, LABELLED_METRICS, TRANSFORMER_FAMILIES, EvidenceSettings, Sweep, load_sweep, sweep_error_at,
+)
 
 if TYPE_CHECKING:
     from harness.leaderboard import Ranking
@@ -109,9 +111,14 @@ def prepared_sweep(path: str | Path) -> PreparedSweep:
     models = {}
     for index, spec in enumerate(sweep.models):
         try:
-            models[spec.label] = resolve_family_model(spec)
+            device = model_device(spec)
         except HarnessError as err:
-            raise sweep_error_at(path, ["models", index, "name"], str(err)) from None
+            raise sweep_error_at(path, ["models", index, "device"], str(err)) from None
+        try:
+            models[spec.label] = resolve_family_model(spec, device)
+        except HarnessError as err:
+            key = "vectors" if spec.family == "precomputed" else "name"
+            raise sweep_error_at(path, ["models", index, key], str(err)) from None
     corpora = _loaded(path, sweep, models)
     keys = {name: dataset_key(corpus) for name, corpus in corpora.items()}
     return PreparedSweep(path=path, sweep=sweep, models=models, dataset_keys=keys,
@@ -149,12 +156,20 @@ def check_against_data(prepared: PreparedSweep, corpora: dict[str, Corpus]) -> N
     for corpus in corpora.values():
         for m_index, spec in enumerate(prepared.sweep.models):
             model = prepared.models[spec.label]
-            for index, layers in enumerate(grid.layers):
+            if spec.family == "precomputed":
+                from harness.precomputed import aligned_vectors, vectors_source
+
+                try:
+                    aligned_vectors(vectors_source(spec), corpus.ids, corpus.name)
+                except HarnessError as err:
+                    raise sweep_error_at(prepared.path, ["models", m_index, "vectors"], str(err)) from None
+            for index, layers in enumerate(grid.layers if spec.family in TRANSFORMER_FAMILIES else ()):
                 if not layer_choice_fits(layers, model.n_hidden_states):
                     raise sweep_error_at(prepared.path, ["grid", "layers", index],
                         f"{layers!r} does not fit '{spec.name}', which has {model.n_hidden_states} hidden states "
                         f"(embeddings + {model.n_hidden_states - 1} layers)")
-            widths = {output_width(layers, model.width) for layers in grid.layers}
+            widths = ({output_width(layers, model.width) for layers in grid.layers}
+                      if spec.family in TRANSFORMER_FAMILIES else {model.width})
             # Transforms see the pooled widths; reducers also see what whitening leaves.
             for axis, limits, axis_widths in (
                 ("transform", transform_limits, widths),
@@ -221,7 +236,8 @@ def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings
     scores["length_leakage_r2"] = executor.length_leakage(trial, "transform")
     scores["length_leakage_r2_pooled"] = executor.length_leakage(trial, "pool")
     table, scores["npmi_mean"] = described_clusters(executor.term_counts(trial), clusters, counts, top=evidence.top_terms)
-    scores.update(executor.long_text_info(trial))
+    if trial.model.family != "precomputed":  # unknown for vectors made elsewhere
+        scores.update(executor.long_text_info(trial))
     if trial.model.family == "static":
         scores["oov_fraction"] = executor.encode_info(trial).get("oov_fraction", float("nan"))
     scores.update(executor.stage_seconds(trial))
@@ -254,6 +270,7 @@ def _trial_tags(trial: Trial, corpus: Corpus) -> dict[str, str]:
         "harness.dataset_fingerprint": corpus.fingerprint,
         "harness.model_source": trial.resolved_model.source,
         "harness.model_weights_sha256": trial.resolved_model.weights_digest,
+        "harness.device": trial.resolved_model.device.label,
         "harness.config_key": trial.config_key,
     }
     if trial.equivalent_to:

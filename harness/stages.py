@@ -78,7 +78,7 @@ class StageExecutor:
     def _encoder(self, trial: Trial) -> LoadedEncoder:
         spec = trial.model
         cache_key = (trial.resolved_model.folder, trial.resolved_model.family, spec.max_length, spec.trust_remote_code,
-                     spec.backend)
+                     spec.backend, trial.resolved_model.device)
         if cache_key not in self._encoders:
             encoder = loaded_encoder(trial.resolved_model, spec.max_length, spec.trust_remote_code)
             if spec.backend != "torch":
@@ -102,7 +102,7 @@ class StageExecutor:
         missing = [variant for variant, key in wanted.items() if not self._held("pool", key)]
         if not missing and self._held("encode", encode.key):
             return
-        if trial.model.family in ("static", "lexical"):
+        if trial.model.family in ("static", "lexical", "precomputed"):
             self._encode_without_transformer(trial, wanted, missing)
             return
         encoder = self._encoder(trial)
@@ -133,18 +133,32 @@ class StageExecutor:
                        {"settings": {"layers": variant[0], "pooling": variant[1], "dtype": dtype}, "seconds": seconds})
 
     def _encode_without_transformer(self, trial: Trial, wanted: dict, missing: list) -> None:
-        """Word-vector or TF-IDF document vectors; lengths in words (these models have no subword tokenizer)."""
+        """Word-vector, TF-IDF or precomputed document vectors; lengths in words (these models have no subword
+        tokenizer), or for precomputed vectors under the tokenizer the entry names."""
         from harness.lexical import tfidf_svd
         from harness.models import loaded_word_vectors
         from harness.static_vectors import static_pooled, tokens
 
         encode = trial.stages["encode"]
-        texts = self.corpora[trial.dataset].texts
+        corpus = self.corpora[trial.dataset]
+        texts = corpus.texts
         dtype = trial.stages["pool"].settings["dtype"]
         started = time.perf_counter()
-        counts = np.array([len(tokens(t)) for t in texts], dtype=np.int64)
+        tokenizer = trial.resolved_model.length_tokenizer
+        if tokenizer is None:
+            counts = np.array([len(tokens(t)) for t in texts], dtype=np.int64)
+        else:
+            from harness.datasets.card import tokenizer_counter
+
+            counts = tokenizer_counter(tokenizer.folder)(texts)
         info = {"settings": encode.settings, "truncated_fraction": 0.0}
-        if trial.model.family == "static":
+        if trial.model.family == "precomputed":
+            from harness.precomputed import aligned_vectors, vectors_source
+
+            vectors = aligned_vectors(vectors_source(trial.model), corpus.ids, corpus.name)
+            outputs = {variant: vectors for variant in missing}
+            info["truncated_fraction"] = None  # unknown: the vectors were made elsewhere
+        elif trial.model.family == "static":
             words = self._memo(("words", str(trial.resolved_model.folder)),
                                lambda: loaded_word_vectors(trial.resolved_model))
             pooled, info["oov_fraction"] = static_pooled(

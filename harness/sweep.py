@@ -6,6 +6,7 @@ Every error names the file, the line, the key and what was expected, as one line
 from __future__ import annotations
 
 import difflib
+import re
 from pathlib import Path
 from typing import Annotated, Any, Literal, Optional, Union
 
@@ -16,6 +17,7 @@ from harness import _yaml_lines
 from harness._settings import Settings, relative_to_sweep
 from harness.cluster import ClustererSettings
 from harness.datasets import DatasetSettings, dataset_name
+from harness.devices import DEVICE_CHOICES, DEVICE_PATTERN
 from harness.errors import SweepError
 from harness.layers import LAYER_SELECTIONS
 from harness.pooling import POOLINGS
@@ -48,20 +50,25 @@ def _unique(values: list, what: str) -> list:
     return values
 
 
-MODEL_FAMILIES = ("sentence_transformer", "transformer", "static", "lexical")
-FAMILY_KEYS = {
-    "static": {"vectors", "vocabulary", "sif_a", "remove_first_component"},
-    "lexical": {"dimensions"},
+MODEL_FAMILIES = ("sentence_transformer", "transformer", "static", "lexical", "precomputed")
+TRANSFORMER_FAMILIES = ("sentence_transformer", "transformer")
+# Keys that only some families accept; every other key of a model entry applies to every family.
+KEY_FAMILIES: dict[str, tuple[str, ...]] = {
+    **{key: ("static",) for key in ("vocabulary", "sif_a", "remove_first_component")},
+    "vectors": ("static", "precomputed"),
+    **{key: ("precomputed",) for key in ("ids", "id_column", "vector_column", "length_tokenizer")},
+    "dimensions": ("lexical",),
+    "device": TRANSFORMER_FAMILIES,
 }
 
 
 class ModelSettings(Settings):
     """A model of the grid. ``family`` says how it turns texts into vectors:
     sentence_transformer (a sentence-transformers model), transformer (any Hugging Face encoder, loaded raw),
-    static (averaged word vectors), lexical (TF-IDF + truncated SVD)."""
+    static (averaged word vectors), lexical (TF-IDF + truncated SVD), precomputed (the user's own vectors)."""
 
     name: str = Field(min_length=1)
-    family: Literal["sentence_transformer", "transformer", "static", "lexical"] = "sentence_transformer"
+    family: Literal["sentence_transformer", "transformer", "static", "lexical", "precomputed"] = "sentence_transformer"
     max_length: Optional[PositiveInt] = None
     batch_size: PositiveInt = 64
     revision: Optional[str] = None
@@ -73,17 +80,50 @@ class ModelSettings(Settings):
     sif_a: Optional[float] = Field(None, gt=0.0)  # static: smooth inverse frequency weighting a / (a + p(w))
     remove_first_component: bool = False  # static: Arora et al.'s common-component removal
     dimensions: PositiveInt = 100  # lexical: SVD dimensions
+    ids: Optional[Path] = None  # precomputed .npy: one id per line, in the array's row order
+    id_column: Optional[str] = None  # precomputed Parquet: the column of ids (default id)
+    vector_column: Optional[str] = None  # precomputed Parquet: the column of vectors, a list of numbers (default vector)
+    length_tokenizer: Optional[str] = None  # precomputed: a model whose tokenizer counts lengths; default: words
+    device: str = "auto"  # transformer families: auto | cpu | cuda | cuda:N (auto: CUDA when torch sees a GPU)
 
     @model_validator(mode="before")
     @classmethod
     def _keys_of_other_families(cls, data: Any) -> Any:
         if isinstance(data, dict):
             family = data.get("family", "sentence_transformer")
-            for other, keys in FAMILY_KEYS.items():
-                for key in sorted(keys & set(data)):
-                    if other != family:
-                        raise ValueError(f"'{key}' applies to family {other}, not {family}")
+            for key in sorted(set(KEY_FAMILIES) & set(data)):
+                if family not in KEY_FAMILIES[key]:
+                    raise ValueError(f"'{key}' applies to family {' or '.join(KEY_FAMILIES[key])}, not {family}")
         return data
+
+    @field_validator("device")
+    @classmethod
+    def _device(cls, value: str) -> str:
+        if not re.fullmatch(DEVICE_PATTERN, value):
+            raise ValueError(f"{value!r} is not a device; expected {DEVICE_CHOICES}")
+        return value
+
+    @model_validator(mode="after")
+    def _precomputed_file(self) -> "ModelSettings":
+        if self.family != "precomputed":
+            return self
+        if self.vectors is None:
+            raise ValueError("family precomputed needs 'vectors:', a .npy or .parquet file of one vector per text")
+        suffix = Path(self.vectors).suffix
+        if suffix not in (".npy", ".parquet"):
+            raise ValueError(f"vectors: expected a .npy or .parquet file, got {self.vectors}")
+        if suffix == ".npy" and (self.id_column or self.vector_column):
+            raise ValueError("id_column and vector_column apply to a Parquet file; beside a .npy, give 'ids:' (a file "
+                             "with one id per line)")
+        if suffix == ".parquet" and self.ids is not None:
+            raise ValueError("'ids:' applies to a .npy; a Parquet file names its id column with 'id_column:'")
+        return self
+
+    @model_validator(mode="after")
+    def _device_fits_backend(self) -> "ModelSettings":
+        if self.backend != "torch" and self.device not in ("auto", "cpu"):
+            raise ValueError(f"device '{self.device}' needs backend torch; the {self.backend} backend runs on the CPU")
+        return self
 
     @property
     def label(self) -> str:
@@ -99,7 +139,7 @@ class ModelSettings(Settings):
             return value
         return str(cls._existing_file(Path(value), info))
 
-    @field_validator("vocabulary")
+    @field_validator("vocabulary", "ids")
     @classmethod
     def _existing_file(cls, path: Optional[Path], info: ValidationInfo) -> Optional[Path]:
         if path is None:
