@@ -91,6 +91,8 @@ INAPPLICABLE = {
     ("lexical", "GridSettings.pooling"): "one document vector (tfidf_svd): every pooling maps to it",
     ("lexical", "GridSettings.layers"): "no layers",
     ("static", "GridSettings.layers"): "word vectors have no layers",
+    ("precomputed", "GridSettings.pooling"): "the user's vectors are already one per text: every pooling maps to them",
+    ("precomputed", "GridSettings.layers"): "no layers",
 }
 
 
@@ -199,6 +201,15 @@ def resources(tmp_path_factory, tiny_model_dir):
                               "split": ["train", "test"] * 30})
         table.to_parquet(mirror / "twenty_newsgroups.parquet")
         table.to_parquet(mirror / "ag_news.parquet")
+    # The user's own vectors for the file source's texts, under both of its id columns (r*, q*), as .npy + ids and as
+    # Parquet; each twin holds other vectors, or the same ids in another order.
+    ids = [f"r{i}" for i in range(60)] + [f"q{i}" for i in range(60)]
+    for suffix in ("a", "b"):
+        vectors = rng.normal(size=(len(ids), 8)).astype(np.float32)
+        np.save(root / f"own_{suffix}.npy", vectors)
+        (root / f"own_ids_{suffix}.txt").write_text("\n".join(ids if suffix == "a" else ids[::-1]) + "\n")
+        pd.DataFrame({"id": ids, "id2": ids[::-1], "vector": list(vectors), "vector2": list(vectors[::-1] * 2.0)}) \
+            .to_parquet(root / f"own_{suffix}.parquet")
     return {"root": root, "model": tiny_model_dir, "other_model": other_model}
 
 
@@ -225,7 +236,17 @@ def _model_bases(r) -> dict[str, dict]:
         "static": {"name": "tiny_vectors", "family": "static", "vectors": str(root / "vectors_a.npy"),
                    "vocabulary": str(root / "vocabulary_a.txt"), "sif_a": 0.001, "remove_first_component": True},
         "lexical": {"name": "tfidf", "family": "lexical", "dimensions": 5},
+        # Two entries: .npy rows named by an ids file, and Parquet id + vector columns (each file kind has its keys).
+        "precomputed": [
+            {"name": "own", "family": "precomputed", "vectors": str(root / "own_a.npy"), "ids": str(root / "own_ids_a.txt")},
+            {"name": "own", "family": "precomputed", "vectors": str(root / "own_a.parquet"), "id_column": "id",
+             "vector_column": "vector"},
+        ],
     }
+
+
+# Model families whose vectors are tied to one dataset's ids: their bases use that dataset source.
+FAMILY_DATASET = {"precomputed": "file"}
 
 
 # The few fields whose changed value is a real resource or a registered name: candidates by (class, field).
@@ -239,7 +260,14 @@ def _changes(r) -> dict[tuple[str, str], list]:
         ("PublicSource", "data_dir"): [str(root / "mirror_b")],
         ("TwentyNewsgroupsSource", "remove"): [["headers", "footers"], ["footers", "quotes"]],
         ("ModelSettings", "name"): [str(r["other_model"])],
-        ("ModelSettings", "vectors"): [str(root / "vectors_b.npy")],
+        # The first twin serves static vectors; the others the user's own vectors (.npy with ids, then Parquet).
+        ("ModelSettings", "vectors"): [str(root / "vectors_b.npy"), str(root / "own_b.npy"), str(root / "own_b.parquet")],
+        ("ModelSettings", "ids"): [str(root / "own_ids_b.txt")],
+        ("ModelSettings", "id_column"): ["id2"],
+        ("ModelSettings", "device"): ["cpu"],  # auto resolves to cpu here: the request itself is a param
+        ("AgglomerativeSettings", "k"): [4],  # None is filled in as "labels", the base's own value
+        ("ModelSettings", "vector_column"): ["vector2"],
+        ("ModelSettings", "length_tokenizer"): [str(r["model"])],
         ("ModelSettings", "vocabulary"): [str(root / "vocabulary_b.txt")],
         ("GridSettings", "pooling"): [[p] for p in sorted(POOLINGS) if p != "mean"],
         ("GridSettings", "layers"): [[name] for name in sorted(LAYER_SELECTIONS) if name != "last"] + [[1]],
@@ -263,7 +291,9 @@ def _base_sweeps(r) -> list[dict]:
     steps = [c for c in _union_members(grid_fields["transform"].annotation)]
     chain = [{"method": typing.get_args(c.model_fields["method"].annotation)[0]} for c in steps]
     small = {"UmapSettings": {"n_components": 3, "n_neighbors": 5}, "PcaSettings": {"n_components": 4},
-             "HdbscanSettings": {"min_cluster_size": 5}, "WhitenStep": {"k": 6}, "AllButTheTopStep": {"d": 2}}
+             "HdbscanSettings": {"min_cluster_size": 5},
+             # average linkage, so that metric can change alone (ward takes euclidean only)
+             "AgglomerativeSettings": {"linkage": "average"}, "WhitenStep": {"k": 6}, "AllButTheTopStep": {"d": 2}}
     members = {c.__name__: c for c in _union_members(grid_fields["reduce"].annotation)
                + _union_members(grid_fields["cluster"].annotation) + steps}
 
@@ -271,13 +301,16 @@ def _base_sweeps(r) -> list[dict]:
         cls = members[name]
         return {"method": typing.get_args(cls.model_fields["method"].annotation)[0], **small.get(name, {})}
 
-    count = max(len(sources), len(MODEL_FAMILIES), len(reducers), len(clusterers))
+    model_entries = [(family, entry) for family in MODEL_FAMILIES
+                     for entry in (models[family] if isinstance(models[family], list) else [models[family]])]
+    count = max(len(sources), len(model_entries), len(reducers), len(clusterers))
     bases = []
     for i in range(count):
+        family, model = model_entries[i % len(model_entries)]
         bases.append({
             "name": "hermetic",
-            "datasets": [dict(datasets[sources[i % len(sources)]])],
-            "models": [dict(models[MODEL_FAMILIES[i % len(MODEL_FAMILIES)]])],
+            "datasets": [dict(datasets[FAMILY_DATASET.get(family, sources[i % len(sources)])])],
+            "models": [dict(model)],
             "grid": {"pooling": ["mean"], "layers": ["last"], "normalize": ["none"],
                      "transform": [[{**step, **small.get(cls.__name__, {})} for step, cls in zip(chain, steps)]],
                      "reduce": [instance(reducers[i % len(reducers)])], "cluster": [instance(clusterers[i % len(clusterers)])],
