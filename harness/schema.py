@@ -61,7 +61,7 @@ DESCRIPTIONS: dict[str, str] = {
     "PublicSource.seed": "seeds the cap, the balancing and the subsample",
     # models
     "ModelSettings.name": "a Hugging Face hub name or a local folder (static: a name for the vectors)",
-    "ModelSettings.family": "how texts become vectors: sentence-transformers model, raw transformer, word vectors, TF-IDF",
+    "ModelSettings.family": "how texts become vectors: sentence-transformers model, raw transformer, word vectors, TF-IDF, or your own precomputed vectors",
     "ModelSettings.max_length": "tokens kept per text (or per window); default: the model's own maximum",
     "ModelSettings.batch_size": "texts per forward pass",
     "ModelSettings.revision": "the hub revision (branch, tag or commit) to load",
@@ -73,6 +73,11 @@ DESCRIPTIONS: dict[str, str] = {
     "ModelSettings.sif_a": "static: smooth inverse frequency weight a / (a + p(w))",
     "ModelSettings.remove_first_component": "static: remove the corpus's first principal component",
     "ModelSettings.dimensions": "lexical: dimensions of the truncated SVD",
+    "ModelSettings.ids": "precomputed `.npy`: a file of ids, one per line, in the array's row order",
+    "ModelSettings.id_column": "precomputed Parquet: the column of ids (default `id`)",
+    "ModelSettings.vector_column": "precomputed Parquet: the column of vectors, a list of numbers per row (default `vector`)",
+    "ModelSettings.length_tokenizer": "precomputed: a model whose tokenizer counts text lengths (default: words)",
+    "ModelSettings.device": "transformer families: `auto` (CUDA when torch sees a GPU), `cpu`, `cuda` or `cuda:N`",
     # grid
     "GridSettings.pooling": "how token vectors become one text vector",
     "GridSettings.layers": "which hidden states are pooled: a name or an integer index",
@@ -106,6 +111,11 @@ DESCRIPTIONS: dict[str, str] = {
     "KmeansSettings.method": "k-means (seeded)",
     "KmeansSettings.k": "number of clusters, or `labels`: the number of gold classes",
     "KmeansSettings.n_init": "restarts; the best inertia wins",
+    "AgglomerativeSettings.method": "agglomerative (bottom-up merging, scikit-learn; seed-free; quadratic memory)",
+    "AgglomerativeSettings.linkage": "which pair of clusters merges next: `ward` (euclidean only), `average`, `complete`, `single`",
+    "AgglomerativeSettings.metric": "distance between points: `euclidean` or `cosine`",
+    "AgglomerativeSettings.k": "number of clusters, or `labels` (the default without a threshold)",
+    "AgglomerativeSettings.distance_threshold": "cut the tree at this merge distance instead of at k clusters",
     # evidence
     "EvidenceSettings.resamples": "bootstrap resamples of texts for intervals and ties (0: none)",
     "EvidenceSettings.level": "confidence level of the intervals",

@@ -93,12 +93,19 @@ def test_every_configuration_and_run_has_its_own_name(tmp_path, tiny_model_dir):
         for cls in _union_members(annotation):
             method = _discriminator(cls)
             base = {method: typing.get_args(cls.model_fields[method].annotation)[0]}
-            out.append(base)
             instance = cls(**base)
-            for name, field in cls.model_fields.items():
-                if name != method:
-                    for value in _generic_changes(field.annotation, getattr(instance, name)):
-                        out.append({**base, name: value})
+            out.append(instance.as_params())  # as validated, so that a value filled in by default is no new variant
+            singles = [{name: value} for name, field in cls.model_fields.items() if name != method
+                       for value in _generic_changes(field.annotation, getattr(instance, name))]
+            for change in singles:
+                # A change the settings refuse alone (metric cosine under ward linkage) is paired with the first
+                # other change that makes it valid.
+                for extra in [{}] + [other for other in singles if other.keys() != change.keys()]:
+                    try:
+                        out.append(cls(**base, **change, **extra).as_params())
+                    except ValueError:
+                        continue
+                    break
         return [dict(t) for t in {tuple(sorted(v.items())) for v in out}]  # distinct
 
     reducers, clusterers = variants(GridSettings.model_fields["reduce"].annotation), variants(GridSettings.model_fields["cluster"].annotation)

@@ -89,7 +89,11 @@ def scores_from_tables(tables: np.ndarray) -> dict[str, np.ndarray]:
             emi = expected_mutual_info(counts.sum(axis=2), counts.sum(axis=1))
             denominator = (h_true[full] + h_pred[full]) / 2.0 - emi
             denominator = np.where(denominator < 0, np.minimum(denominator, -EPS), np.maximum(denominator, EPS))
-            ami[full] = (mi[full] - emi) / denominator
+            # scikit-learn keeps the numerator's sign away from 0 as it does the denominator's, so that a perfect
+            # match whose expectation equals its maximum (both 0) scores eps/eps = 1, as it should.
+            numerator = mi[full] - emi
+            numerator = np.where(numerator < 0, np.minimum(numerator, -EPS), np.maximum(numerator, EPS))
+            ami[full] = numerator / denominator
     return {"ari": ari, "ami": ami, "nmi": nmi, "v_measure": v}
 
 
