@@ -343,13 +343,14 @@ def execute_sweep(
          "harness.orphans_marked_killed": str(killed)})
     executor = StageExecutor(corpora, prepared.trials, StageCache(cache_dir) if cache_dir else None, encode_progress)
     params = aligned_params(prepared.trials)
-    if dask_client is not None:
-        from harness.distributed import precompute_on_cluster
-
-        precompute_on_cluster(executor, prepared.trials, dask_client)
     bar = progress(total=len(pending), desc="trials", unit="trial") if progress else None
     results: list[ConfigurationResult] = []
     try:
+        if dask_client is not None:
+            from harness.distributed import precompute_on_cluster
+
+            # Inside the try: whatever the cluster does, the sweep run is closed, never left RUNNING.
+            precompute_on_cluster(executor, prepared.trials, dask_client)
         tracker.log_text(parent, prepared.path.read_text(), "sweep.yaml")
         tracker.log_text(parent, json.dumps(dataset_cards(corpora, prepared.models), indent=2), "dataset_cards.json")
         for configuration in configurations(prepared.trials):

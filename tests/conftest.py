@@ -17,24 +17,56 @@ SHARED_DATASETS = REPO.parent / "shared" / "datasets"
 MINILM = "sentence-transformers/all-MiniLM-L6-v2"
 
 
-@pytest.fixture(scope="session")
-def tiny_model_dir(tmp_path_factory) -> Path:
-    """A randomly initialised 2-layer BERT (hidden 32) with the MiniLM tokenizer, saved as a model folder."""
+def _tiny_bert(folder: Path, tokenizer, output_scale: float | None = None) -> Path:
+    """A randomly initialised 2-layer BERT (hidden 32) with this tokenizer, saved as a model folder."""
     import torch
-    from transformers import AutoTokenizer, BertConfig, BertModel
+    from transformers import BertConfig, BertModel
 
-    from harness.models import resolve_model
-
-    folder = tmp_path_factory.mktemp("tiny_bert")
-    tokenizer = AutoTokenizer.from_pretrained(str(resolve_model(MINILM).folder))
     torch.manual_seed(0)
     config = BertConfig(
         vocab_size=tokenizer.vocab_size, hidden_size=32, num_hidden_layers=2, num_attention_heads=2,
         intermediate_size=64, max_position_embeddings=128,
     )
-    BertModel(config).eval().save_pretrained(folder)
+    model = BertModel(config).eval()
+    if output_scale is not None:
+        with torch.no_grad():
+            model.encoder.layer[-1].output.LayerNorm.weight.fill_(output_scale)
+    model.save_pretrained(folder)
     tokenizer.save_pretrained(folder)
     return folder
+
+
+def _minilm_tokenizer():
+    from transformers import AutoTokenizer
+
+    from harness.models import resolve_model
+
+    return AutoTokenizer.from_pretrained(str(resolve_model(MINILM).folder))
+
+
+@pytest.fixture(scope="session")
+def tiny_model_dir(tmp_path_factory) -> Path:
+    """A randomly initialised 2-layer BERT (hidden 32) with the MiniLM tokenizer, saved as a model folder."""
+    return _tiny_bert(tmp_path_factory.mktemp("tiny_bert"), _minilm_tokenizer())
+
+
+@pytest.fixture(scope="session")
+def overflowing_model_dir(tmp_path_factory) -> Path:
+    """The tiny BERT with its last layer's output scaled to about 1e6: stored as float16 (largest finite value
+    65504) its vectors are infinite, and every reducer refuses them. A trial that fails on its data."""
+    return _tiny_bert(tmp_path_factory.mktemp("overflowing_bert"), _minilm_tokenizer(), output_scale=1e6)
+
+
+@pytest.fixture(scope="session")
+def char_model_dir(tmp_path_factory) -> Path:
+    """The tiny BERT with a character-level WordPiece tokenizer: it counts a text's length in letters, not in
+    MiniLM's word pieces."""
+    from transformers import BertTokenizer
+
+    characters = "abcdefghijklmnopqrstuvwxyz0123456789"
+    vocabulary = ["[PAD]", "[UNK]", "[CLS]", "[SEP]", "[MASK]", *characters, *(f"##{c}" for c in characters), *".,-'!?"]
+    tokenizer = BertTokenizer(vocab={word: i for i, word in enumerate(vocabulary)})
+    return _tiny_bert(tmp_path_factory.mktemp("char_bert"), tokenizer)
 
 
 def free_port() -> int:
