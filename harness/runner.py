@@ -44,6 +44,8 @@ class PreparedSweep:
     models: dict[str, ResolvedModel]
     dataset_keys: dict[str, str]
     trials: list[Trial]
+    # Per dataset that balances lengths by a tokenizer: the model whose tokenizer measures them (None: words).
+    length_tokenizers: dict[str, Optional[ResolvedModel]] = field(default_factory=dict)
 
 
 @dataclass
@@ -105,26 +107,74 @@ def prepared_sweep(path: str | Path) -> PreparedSweep:
         except HarnessError as err:
             raise sweep_error_at(path, ["models", index, "name"], str(err)) from None
     first_model = models[sweep.models[0].label]
-    keys = {
-        dataset_name(spec): dataset_key(spec, first_model.weights_digest if needs_tokenizer(spec) else None)
-        for spec in sweep.datasets
-    }
-    return PreparedSweep(path=path, sweep=sweep, models=models, dataset_keys=keys, trials=planned_trials(sweep, keys, models))
+    tokenizers = {dataset_name(spec): _length_tokenizer(path, index, spec, sweep, models)
+                  for index, spec in enumerate(sweep.datasets) if needs_tokenizer(spec)}
+    keys = {}
+    for spec in sweep.datasets:
+        measure = None
+        if needs_tokenizer(spec) and spec.length_tokenizer is None:
+            measure = first_model.weights_digest  # as keyed before length_tokenizer existed
+        elif needs_tokenizer(spec):
+            chosen = tokenizers[dataset_name(spec)]
+            measure = chosen.weights_digest if chosen is not None else WORD_COUNTS
+        keys[dataset_name(spec)] = dataset_key(spec, measure)
+    return PreparedSweep(path=path, sweep=sweep, models=models, dataset_keys=keys, trials=planned_trials(sweep, keys, models),
+                         length_tokenizers=tokenizers)
+
+
+WORD_COUNTS = "words"  # length_tokenizer: balance by word counts
+SUBWORD_FAMILIES = ("sentence_transformer", "transformer")
+
+
+def _length_tokenizer(path: Path, index: int, spec, sweep: Sweep, models: dict[str, ResolvedModel]) -> Optional[ResolvedModel]:
+    """The model whose tokenizer measures lengths for a dataset that balances them (None: word counts):
+    the entry's ``length_tokenizer``, else the sweep's first model when it has a subword tokenizer."""
+    from harness.models import resolve_model
+
+    chosen = spec.length_tokenizer
+    if chosen is None:
+        first = models[sweep.models[0].label]
+        return first if first.family in SUBWORD_FAMILIES else None
+    if chosen == WORD_COUNTS:
+        return None
+    try:
+        resolved = resolve_model(chosen)
+        _ = resolved.config  # refuses a folder without config.json: no transformer, so no tokenizer to count with
+    except HarnessError as err:
+        raise sweep_error_at(path, ["datasets", index, "length_tokenizer"], str(err)) from None
+    return resolved
+
+
+def length_tokenizer_setting(prepared: PreparedSweep, dataset: str) -> Optional[str]:
+    """What a one-model sweep must write as the dataset's ``length_tokenizer`` to balance exactly as this sweep
+    did (None where the dataset does not balance by a tokenizer): the model's name, or its folder when the
+    name alone would not find the same revision, or "words"."""
+    if dataset not in prepared.length_tokenizers:
+        return None
+    spec = next(s for s in prepared.sweep.datasets if dataset_name(s) == dataset)
+    if spec.length_tokenizer is not None:
+        return spec.length_tokenizer
+    model = prepared.length_tokenizers[dataset]
+    if model is None:
+        return WORD_COUNTS
+    first = prepared.sweep.models[0]
+    return str(model.folder) if first.revision is not None else model.name
 
 
 def loaded_corpora(prepared: PreparedSweep) -> dict[str, Corpus]:
     """Load every dataset; a data problem is reported at the sweep entry that names the data.
 
-    Sources that balance lengths measure them with the tokenizer of the sweep's first model.
+    Sources that balance lengths measure them with the tokenizer their entry names (``length_tokenizer``),
+    by default the sweep's first model's.
     """
     from harness.datasets.card import tokenizer_counter
 
-    corpora = {}
-    count_tokens = None
+    corpora, counters = {}, {}
     for index, spec in enumerate(prepared.sweep.datasets):
-        first = prepared.models[prepared.sweep.models[0].label]
-        if needs_tokenizer(spec) and count_tokens is None and first.family in ("sentence_transformer", "transformer"):
-            count_tokens = tokenizer_counter(first.folder)
+        measure = prepared.length_tokenizers.get(dataset_name(spec))
+        if measure is not None and measure.folder not in counters:
+            counters[measure.folder] = tokenizer_counter(measure.folder)
+        count_tokens = counters[measure.folder] if measure is not None else None
         try:
             corpora[dataset_name(spec)] = loaded_corpus(spec, count_tokens)
         except HarnessError as err:
