@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+from html.parser import HTMLParser
 from pathlib import Path
 
 import pytest
@@ -136,3 +137,62 @@ def _runs(tracking_uri: str, experiment: str):
     for run in client.search_runs([experiment_id], max_results=5000):
         by_kind[run.data.tags["harness.kind"]].append(run)
     return client, by_kind
+
+
+class _ReportSections(HTMLParser):
+    """Per dataset section of a report page: its leaderboard rows (cells as text), image classes, caveats."""
+
+    def __init__(self):
+        super().__init__()
+        self.sections: dict[str, dict] = {}
+        self._current = None
+        self._in_board = self._in_caveats = False
+        self._row = self._cell = None
+
+    def handle_starttag(self, tag, attrs):
+        attrs = dict(attrs)
+        if tag == "section" and "data-dataset" in attrs:
+            self._current = self.sections.setdefault(attrs["data-dataset"], {"rows": [], "images": [], "caveats": []})
+        elif self._current is not None:
+            classes = (attrs.get("class") or "").split()
+            if tag == "table" and "leaderboard" in classes:
+                self._in_board = True
+            elif tag == "tr" and self._in_board:
+                self._row = []
+            elif tag == "td" and self._row is not None:
+                self._cell = ""
+            elif tag == "img":
+                self._current["images"].append(attrs.get("class"))
+            elif tag == "li" and self._in_caveats:
+                self._cell = ""
+            if tag == "ul" and "caveats" in classes:
+                self._in_caveats = True
+
+    def handle_endtag(self, tag):
+        if tag == "li" and self._in_caveats and self._cell is not None:
+            self._current["caveats"].append(self._cell)
+            self._cell = None
+        elif tag == "td" and self._cell is not None:
+            self._row.append(self._cell)
+            self._cell = None
+        elif tag == "tr" and self._row is not None:
+            if self._row:
+                self._current["rows"].append(self._row)
+            self._row = None
+        elif tag == "table":
+            self._in_board = False
+        elif tag == "ul":
+            self._in_caveats = False
+        elif tag == "section":
+            self._current = None
+
+    def handle_data(self, data):
+        if self._cell is not None:
+            self._cell += data
+
+
+def report_sections(page: str) -> dict[str, dict]:
+    """Per dataset section of a report page, by dataset name: leaderboard rows, image classes, caveats."""
+    parsed = _ReportSections()
+    parsed.feed(page)
+    return parsed.sections

@@ -1,10 +1,19 @@
-"""Which tokenizer measures the lengths that balance_length balances (the dataset setting length_tokenizer)."""
+"""A citation's winner.yaml draws the same texts as the sweep it cites, and reproduces its scores.
+
+The case that used to break: a public dataset with ``balance_length``, balanced with the tokenizer of the
+sweep's first model, and a winner that is the second model. The one-model winner.yaml then balanced with
+the winner's own tokenizer, a different corpus.
+"""
 
 from __future__ import annotations
 
 import pytest
+import yaml
 
-from conftest import MINILM, write_sweep
+from harness.cli import main
+from harness.runner import run_sweep_file
+
+from conftest import MINILM, configuration_runs, write_sweep
 
 
 @pytest.fixture(scope="module")
@@ -70,3 +79,37 @@ grid:
     # The key follows the tokenizer (its weights), not how the entry names it: the same texts share one key,
     # so a winner.yaml that names the first model reuses the sweep's stages; different measures never do.
     assert keys[None] == keys[str(char_model_dir)] and len(set(keys.values())) == 3
+
+
+def test_winner_yaml_reproduces_the_dataset_and_scores_when_the_second_model_wins(mirror, char_model_dir, tmp_path, capsys):
+    sweep = write_sweep(tmp_path, f"""
+name: balanced
+datasets:
+  - {{source: ag_news, data_dir: {mirror}, balance_length: true, seed: 0}}
+models: [{char_model_dir}, {MINILM}]
+grid:
+  pooling: [mean]
+  reduce: [{{method: pca, n_components: 8}}]
+  cluster: [{{method: kmeans, k: labels}}]
+  seeds: [0, 1]
+evidence: {{resamples: 50, permutations: 19}}
+""")
+    results = tmp_path / "results"
+    result = run_sweep_file(sweep, results)
+    assert not result.failed
+    winner = result.rankings["ag_news"].winner.configuration
+    assert winner.trials[0].model.name == MINILM  # the second model wins: a random tiny BERT finds no topics
+
+    assert main(["cite", "balanced", "--results-dir", str(results)]) == 0
+    command = capsys.readouterr().out.split("reproduce: ")[1].strip().split()
+    card = yaml.safe_load((results / "reports" / "balanced" / "winner.yaml").read_text())
+    assert [m["name"] for m in card["models"]] == [MINILM]
+    assert main(command[1:] + ["--no-progress"]) == 0
+
+    tracking = f"sqlite:///{results / 'mlflow.db'}"
+    (original,) = [r for r in configuration_runs(tracking, "balanced") if r.info.run_id == winner.run_id]
+    (again,) = configuration_runs(tracking, "balanced-winner")
+    assert again.data.tags["harness.dataset_fingerprint"] == original.data.tags["harness.dataset_fingerprint"]
+    for name in ("ari", "ami", "nmi", "v_measure", "length_confound_index", "coverage"):
+        assert again.data.metrics[name] == pytest.approx(original.data.metrics[name], abs=1e-9), name
+    assert card["datasets"][0]["length_tokenizer"] == str(char_model_dir)  # named: the sweep balanced with it
