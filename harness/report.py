@@ -1,8 +1,9 @@
 """The report a reviewer reads: what was compared, what won, by how much, and what the length check says.
 
-Analysis functions are pure (records in, tables out); ``write_report`` renders a
-self-contained HTML page (images embedded, no network resources) and a Markdown
-twin with its images beside it.
+Verdicts are per dataset: configurations are ranked, and everything read off a
+ranking is drawn, within one dataset. Analysis functions are pure (records in,
+tables out); the renderers lay out a self-contained HTML page (images embedded,
+no network resources, every value escaped) and a Markdown twin without raw HTML.
 """
 
 from __future__ import annotations
