@@ -3,16 +3,29 @@
 from __future__ import annotations
 
 import subprocess
+from dataclasses import dataclass
 from importlib import metadata
 from pathlib import Path
-from typing import Any
+from typing import Any, Optional
 
 import yaml
 
 from harness import __version__
 from harness.errors import HarnessError
-from harness.readback import SweepRecord
-from harness.report import ranked, ranking_metric
+from harness.readback import ConfigurationRecord, SweepRecord
+from harness.report import (
+    DatasetRanking,
+    dataset_rankings,
+    distinct_safe_names,
+    fewer_valid_seeds,
+    interval_scope,
+    md_text,
+    provisional,
+    run_notes,
+    safe_name,
+    stability_applies,
+    valid_seeds,
+)
 
 LIBRARIES = ("torch", "transformers", "sentence-transformers", "umap-learn", "hdbscan", "scikit-learn", "mlflow", "numpy")
 
@@ -40,15 +53,22 @@ def tool_commit() -> str:
     return commit.stdout.strip() + ("-dirty" if dirty.stdout.strip() else "")
 
 
-def winner_sweep(record: SweepRecord, prepared, trial) -> dict[str, Any]:
-    """The winning configuration as a sweep: one dataset, one model, one option per axis, the same seeds."""
-    dataset = next(spec for spec in prepared.sweep.datasets if getattr(spec, "dataset_name", None) == trial.dataset
-                   or getattr(spec, "name", None) == trial.dataset)
+def winner_sweep(record: SweepRecord, prepared, trial, name: str, metric: str) -> dict[str, Any]:
+    """The winning configuration as a sweep: one dataset, one model, one option per axis, the same seeds, and
+    the same texts (a dataset that balanced lengths names the tokenizer it balanced with)."""
+    from harness.datasets import dataset_name
+    from harness.runner import length_tokenizer_setting
+
+    dataset = next(spec for spec in prepared.sweep.datasets if dataset_name(spec) == trial.dataset)
+    entry = {k: v for k, v in dataset.as_params().items() if v is not None}
+    tokenizer = length_tokenizer_setting(prepared, trial.dataset)
+    if tokenizer is not None:
+        entry["length_tokenizer"] = tokenizer
     seeds = sorted({t.seed for t in prepared.trials if t.config_key == trial.config_key})
     return {
-        "name": f"{record.name}-winner",
-        "question": f"Reproduces the winner of sweep '{record.name}' (MLflow run {record.run_id}).",
-        "datasets": [{k: v for k, v in dataset.as_params().items() if v is not None}],
+        "name": name,
+        "question": f"Reproduces the winner on dataset '{trial.dataset}' of sweep '{record.name}' (MLflow run {record.run_id}).",
+        "datasets": [entry],
         "models": [{"name": trial.model.name, **trial.model.model_dump(mode="json", exclude_defaults=True)}],
         "grid": {
             "pooling": [trial.pooling],
@@ -59,65 +79,124 @@ def winner_sweep(record: SweepRecord, prepared, trial) -> dict[str, Any]:
             "cluster": [trial.clusterer.as_params()],
             "seeds": seeds,
         },
-        "rank_by": prepared.sweep.rank_by or ranking_metric(record),
+        "rank_by": prepared.sweep.rank_by or metric,
         "evidence": prepared.sweep.evidence.as_params(),
         "storage_dtype": prepared.sweep.storage_dtype,
     }
 
 
 def _fmt(value: Any) -> str:
-    return "-" if value is None else f"{value:.4f}"
+    return "-" if value is None or value != value else f"{value:.4f}"
 
 
-def citation_markdown(record: SweepRecord, sweep: dict, command: str) -> str:
-    metric = ranking_metric(record)
-    ordered = [c for c in ranked(record.configurations, metric) if c.dataset == sweep["datasets"][0].get("name", c.dataset)]
-    ordered = ordered or ranked(record.configurations, metric)
-    winner, runner_up = ordered[0], (ordered[1] if len(ordered) > 1 else None)
+CARD_SCORES = ("ari", "ami", "nmi", "v_measure", "silhouette", "length_confound_index", "length_leakage_r2", "coverage",
+               "stability_ari", "npmi_mean")
+
+
+def _score_rows(winner: ConfigurationRecord) -> list[str]:
     m = winner.metrics
-    lines = [f"# Citation card: winner of sweep `{record.name}`", "", f"**Configuration**: `{winner.name}`", "",
-             f"Ranked by **{metric}** (mean over {m.get('n_seeds', 1):.0f} seeds).", "", "| score | mean | 95% CI | sd over seeds |",
-             "|---|---|---|---|"]
-    for name in ("ari", "ami", "nmi", "v_measure", "silhouette", "length_confound_index", "length_leakage_r2",
-                 "coverage", "stability_ari", "npmi_mean"):
+    rows = ["| score | mean | 95% CI | sd over seeds | seeds with a value |", "|---|---|---|---|---|"]
+    for name in CARD_SCORES:
+        if name == "stability_ari" and not stability_applies(winner):
+            rows.append("| stability_ari | n/a: seed-free pipeline (every stage ignores the seed) | - | - | - |")
+            continue
         if name in m:
             interval = f"[{_fmt(m.get(f'{name}_ci_low'))}, {_fmt(m.get(f'{name}_ci_high'))}]" if f"{name}_ci_low" in m else "-"
-            lines.append(f"| {name} | {_fmt(m[name])} | {interval} | {_fmt(m.get(f'{name}_std'))} |")
+            valid, total = valid_seeds(winner, name)
+            seeds = "-" if valid is None else f"{valid} of {total}"
+            rows.append(f"| {name} | {_fmt(m[name])} | {interval} | {_fmt(m.get(f'{name}_std'))} | {seeds} |")
+    return rows
+
+
+def _evidence_lines(winner: ConfigurationRecord, metric: str) -> list[str]:
+    """What the seeds back: the verdict's standing, what the interval covers, seeds without a value."""
+    lines = []
+    if provisional(winner):
+        lines += ["", f"**Verdict: provisional.** Fewer than 3 seeds: the intervals and the tie flag cover "
+                  f"{interval_scope(winner) or 'text sampling only'}, not the spread over seeds."]
+    elif interval_scope(winner):
+        lines += ["", f"**Intervals cover**: {interval_scope(winner)}."]
+    if fewer_valid_seeds(winner, metric):
+        valid, total = valid_seeds(winner, metric)
+        lines += ["", f"**Ranked on {valid} of {total} seeds**: the other seeds gave no finite {metric}."]
+    return lines
+
+
+def citation_markdown(record: SweepRecord, ranking: DatasetRanking, command: str) -> str:
+    """The card of one dataset's winner; the runner-up is the next configuration of the same dataset."""
+    metric, winner = ranking.metric, ranking.winner
+    runner_up = ranking.runner_up
+    m = winner.metrics
+    seeds = m.get("n_seeds", 1)
+    lines = [f"# Citation card: winner of sweep `{record.name}` on dataset `{ranking.dataset}`", ""]
+    notes = run_notes(record)
+    if notes:
+        lines += ["**This run is not complete.**", ""] + [f"- {md_text(note)}" for note in notes] + [""]
+    lines += [f"**Configuration**: `{winner.name}`", "",
+              f"Ranked by **{metric}** among the {len(ranking.ordered)} configurations of dataset `{ranking.dataset}` "
+              f"(mean over {seeds:.0f} seeds)."]
+    lines += _evidence_lines(winner, metric)
+    lines += [""] + _score_rows(winner)
     if runner_up is not None:
         tied = runner_up.metrics.get("tied_with_leader") == 1.0
-        lines += ["", f"**Margin to the runner-up** (`{runner_up.name}`): {metric} "
-                  f"{_fmt(m.get(metric, float('nan')) - runner_up.metrics.get(metric, float('nan')))}"
-                  f"{' (tied: the paired bootstrap interval of the difference contains 0)' if tied else ' (not tied)'}."]
-    lines += ["", "**Data**: " + ", ".join(f"`{name}` (fingerprint `{card.get('fingerprint', '?')}`, {card.get('rows', '?')} texts)"
-                                          for name, card in record.cards.items() if name == winner.dataset),
+        margin = m.get(metric, float("nan")) - runner_up.metrics.get(metric, float("nan"))
+        verdict = " (tied: the paired bootstrap interval of the difference contains 0)" if tied else (
+            " (not tied)" if "tied_with_leader" in runner_up.metrics else " (no tie test for this metric)")
+        lines += ["", f"**Margin to the runner-up** (`{runner_up.name}`, same dataset): {metric} {_fmt(margin)}"
+                  f"{verdict if margin == margin else ' (the runner-up has no score: it did not finish)'}."]
+    card = record.cards.get(ranking.dataset, {})
+    lines += ["", f"**Data**: `{ranking.dataset}` (fingerprint `{card.get('fingerprint', '?')}`, {card.get('rows', '?')} texts)",
               "", f"**Model**: `{winner.params.get('model')}`, weights SHA-256 `{winner.tags.get('harness.model_weights_sha256')}`, "
               f"source `{winner.tags.get('harness.model_source')}`",
               "", "**Libraries**: " + ", ".join(f"{k} {v}" for k, v in library_versions().items()),
               "", f"**Tool commit**: `{tool_commit()}`",
-              "", f"**MLflow**: sweep run `{record.run_id}`, configuration run `{winner.run_id}`, tracking URI `{record.tracking_uri}`",
+              "", f"**MLflow**: sweep run `{record.run_id}` (status {record.status}), configuration run `{winner.run_id}`, "
+              f"tracking URI `{record.tracking_uri}`",
               "", "**Reproduce**:", "", "```bash", command, "```", ""]
     return "\n".join(lines)
 
 
-def write_citation(record: SweepRecord, reports_dir: Path, results_dir: Path) -> tuple[Path, Path]:
-    from harness.reporting import winner_trial
+@dataclass(frozen=True)
+class Citation:
+    dataset: str
+    sweep_file: Path  # the runnable one-configuration sweep
+    card: Path  # the Markdown card
+    command: str
 
-    metric = ranking_metric(record)
-    ordered = ranked(record.configurations, metric)
-    if not ordered:
-        raise HarnessError(f"sweep '{record.name}': no configuration finished; nothing to cite")
-    prepared, trial = winner_trial(record, ordered[0])
-    if trial is None:
-        raise HarnessError(f"sweep '{record.name}': the sweep file {record.tags.get('harness.sweep_path')} is gone or "
-                           "changed since the run; a citation needs the exact settings")
-    folder = reports_dir / record.name
+
+def write_citations(record: SweepRecord, reports_dir: Path, results_dir: Path, dataset: Optional[str] = None) -> list[Citation]:
+    """One card per dataset (the winner of each), or only ``dataset``'s. With one dataset the files are
+    winner.yaml and winner.md; with several, winner-DATASET.yaml and winner-DATASET.md."""
+    from harness.reporting import report_folder, winner_trial
+
+    rankings = dataset_rankings(record)
+    if dataset is not None:
+        rankings = [r for r in rankings if r.dataset == dataset]
+        if not rankings:
+            raise HarnessError(f"--dataset {dataset}: sweep '{record.name}' has no such dataset; it has "
+                               f"{', '.join(record.datasets) or 'none'}")
+    cited = [r for r in rankings if r.winner is not None]
+    if not cited:
+        where = f"dataset '{dataset}'" if dataset is not None else "any dataset"
+        raise HarnessError(f"sweep '{record.name}': no configuration finished on {where}; nothing to cite")
+    several = len(record.datasets) > 1
+    suffixes = {name: f"-{safe}" for name, safe in distinct_safe_names(record.datasets).items()} if several else {}
+    folder = report_folder(reports_dir, record)
     folder.mkdir(parents=True, exist_ok=True)
-    sweep = winner_sweep(record, prepared, trial)
-    card = folder / "winner.yaml"
-    card.write_text(yaml.safe_dump(sweep, sort_keys=False))
-    command = f"harness run {card.resolve()} --results-dir {results_dir.resolve()}"
-    markdown = folder / "winner.md"
-    markdown.write_text(citation_markdown(record, sweep, command))
-    record.client.log_artifact(record.run_id, str(card), "citation")
-    record.client.log_artifact(record.run_id, str(markdown), "citation")
-    return card, markdown
+    citations = []
+    for ranking in cited:
+        prepared, trial = winner_trial(record, ranking.winner)
+        if trial is None:
+            raise HarnessError(f"sweep '{record.name}': the sweep file {record.tags.get('harness.sweep_path')} is gone or "
+                               "changed since the run; a citation needs the exact settings")
+        suffix = suffixes.get(ranking.dataset, "")
+        sweep = winner_sweep(record, prepared, trial, f"{safe_name(record.name, 'sweep')}-winner{suffix}", ranking.metric)
+        sweep_file = folder / f"winner{suffix}.yaml"
+        sweep_file.write_text(yaml.safe_dump(sweep, sort_keys=False))
+        command = f"harness run {sweep_file.resolve()} --results-dir {results_dir.resolve()}"
+        card = folder / f"winner{suffix}.md"
+        card.write_text(citation_markdown(record, ranking, command))
+        record.client.log_artifact(record.run_id, str(sweep_file), "citation")
+        record.client.log_artifact(record.run_id, str(card), "citation")
+        citations.append(Citation(ranking.dataset, sweep_file, card, command))
+    return citations

@@ -217,25 +217,38 @@ def _tracking_uri(args: argparse.Namespace) -> str:
     return args.tracking_uri or default_tracking_uri(Path(args.results_dir))
 
 
-def command_report(args: argparse.Namespace) -> int:
+def _finished_sweep(args: argparse.Namespace):
+    """The sweep run a report or a citation describes, with a plain word on stderr when it is not complete."""
     from harness.readback import sweep_record
+    from harness.report import run_notes
+
+    if args.sweep is None and args.run_id is None:
+        raise HarnessError("name a sweep (its newest run) or give --run-id RUN_ID")
+    record = sweep_record(_tracking_uri(args), args.sweep, args.run_id)
+    print(f"sweep run {record.run_id} of '{record.name}' (status {record.status})")
+    for note in run_notes(record):
+        print(f"warning: {note}", file=sys.stderr)
+    return record
+
+
+def command_report(args: argparse.Namespace) -> int:
     from harness.reporting import write_report
 
     _quiet_libraries()
-    record = sweep_record(_tracking_uri(args), args.sweep)
+    record = _finished_sweep(args)
     page, markdown = write_report(record, Path(args.results_dir) / "reports", with_map=not args.no_map)
     print(f"report: {page}\nmarkdown: {markdown}\nlogged to sweep run {record.run_id}")
     return 0
 
 
 def command_cite(args: argparse.Namespace) -> int:
-    from harness.cite import write_citation
-    from harness.readback import sweep_record
+    from harness.cite import write_citations
 
     _quiet_libraries()
-    record = sweep_record(_tracking_uri(args), args.sweep)
-    card, markdown = write_citation(record, Path(args.results_dir) / "reports", Path(args.results_dir))
-    print(f"citation: {markdown}\nrunnable sweep: {card}\nreproduce: harness run {card.resolve()} --results-dir {Path(args.results_dir).resolve()}")
+    record = _finished_sweep(args)
+    for citation in write_citations(record, Path(args.results_dir) / "reports", Path(args.results_dir), args.dataset):
+        print(f"dataset {citation.dataset}\n  citation: {citation.card}\n  runnable sweep: {citation.sweep_file}\n"
+              f"  reproduce: {citation.command}")
     return 0
 
 
@@ -359,7 +372,9 @@ def parser() -> argparse.ArgumentParser:
 
     def finished_sweep_command(name: str, help_text: str, handler) -> argparse.ArgumentParser:
         command = commands.add_parser(name, help=help_text)
-        command.add_argument("sweep", help="a sweep name (its newest run) or a sweep run id")
+        command.add_argument("sweep", nargs="?", default=None,
+                             help="a sweep name (its newest run, finished or not) or a sweep run id")
+        command.add_argument("--run-id", default=None, help="this sweep run rather than the newest")
         _add_results_option(command)  # the stage cache is the one the sweep run recorded
         command.add_argument("--tracking-uri", default=None, help="MLflow tracking URI (default: sqlite:///RESULTS_DIR/mlflow.db)")
         command.set_defaults(handler=handler)
@@ -367,7 +382,9 @@ def parser() -> argparse.ArgumentParser:
 
     report = finished_sweep_command("report", "write the HTML and Markdown report of a finished sweep", command_report)
     report.add_argument("--no-map", action="store_true", help="leave out the 2-D map of the winner's clusters")
-    finished_sweep_command("cite", "write a citation card for the winner, with the command that reproduces it", command_cite)
+    cite = finished_sweep_command("cite", "write a citation card for each dataset's winner, with the command that "
+                                  "reproduces it", command_cite)
+    cite.add_argument("--dataset", default=None, metavar="NAME", help="only this dataset's winner")
 
     export = commands.add_parser(
         "export", help="write one row per configuration of a finished sweep to CSV or Parquet",

@@ -21,26 +21,44 @@ LOCAL_WORKERS = 2
 
 def reduce_and_cluster(pooled: np.ndarray, counts: np.ndarray, steps: list, reducer, seed: int,
                        clusterings: list[tuple[str, object, int]], n_classes: Optional[int]) -> dict:
-    """One task: transform, reduce, then every clustering of that reduction. Pure; runs on a worker."""
+    """One task: transform, reduce, then every clustering of that reduction. Pure; runs on a worker.
+
+    A stage that raises does not fail the task: its error comes back under ``failed`` (stage kind -> error,
+    clusterings by key), so that each trial that needs it fails alone, as with the local executor.
+    """
     import joblib
 
     from harness.cluster import cluster_labels
     from harness.reduce import reduced
     from harness.transforms import transformed
 
+    result: dict = {"clusters": {}, "failed": {}, "cluster_failed": {}}
     # Nested joblib calls inside a task would otherwise be sent back to the cluster (ENVIRONMENT.md).
     with joblib.parallel_config(backend="sequential"):
-        started = time.perf_counter()
-        vectors = transformed(pooled, counts, steps)
-        transform_seconds = time.perf_counter() - started
-        started = time.perf_counter()
-        points = reduced(vectors, reducer, seed)
-        reduce_seconds = time.perf_counter() - started
-        labels = {}
+        for kind, compute in (("transformed", lambda: transformed(pooled, counts, steps)),
+                              ("reduced", lambda: reduced(result["transformed"][0], reducer, seed))):
+            started = time.perf_counter()
+            try:
+                result[kind] = (compute(), time.perf_counter() - started)
+            except Exception as err:  # the trial that needs this stage fails with this error
+                result["failed"][kind] = _with_remote_traceback(err)
+                return result
+        points = result["reduced"][0]
         for key, clusterer, cluster_seed in clusterings:
             started = time.perf_counter()
-            labels[key] = (cluster_labels(points, clusterer, cluster_seed, n_classes), time.perf_counter() - started)
-    return {"transformed": (vectors, transform_seconds), "reduced": (points, reduce_seconds), "clusters": labels}
+            try:
+                result["clusters"][key] = (cluster_labels(points, clusterer, cluster_seed, n_classes), time.perf_counter() - started)
+            except Exception as err:
+                result["cluster_failed"][key] = _with_remote_traceback(err)
+    return result
+
+
+def _with_remote_traceback(error: Exception) -> Exception:
+    """The error, with the worker's traceback kept as a note (tracebacks do not travel back with results)."""
+    import traceback
+
+    error.add_note("raised on a Dask worker:\n" + "".join(traceback.format_exception(error)).rstrip())
+    return error
 
 
 def dask_client(scheduler: Optional[str], workers: int = LOCAL_WORKERS):
@@ -69,18 +87,32 @@ def precompute_on_cluster(executor, trials: list[Trial], client) -> int:
         first = members[0]
         if executor.holds("reduce", key) and all(executor.holds("cluster", t.stages["cluster"].key) for t in members):
             continue
-        pooled, counts = executor.pooled(first), executor.token_counts(first)  # encoded here, once per encode key
+        try:
+            pooled, counts = executor.pooled(first), executor.token_counts(first)  # encoded here, once per encode key
+        except Exception as err:  # as locally: the trials that need these vectors fail, the others go on
+            executor.refuse(first, "transform", err)
+            continue
         clusterings = list({t.stages["cluster"].key: (t.stages["cluster"].key, t.clusterer, t.seed) for t in members}.values())
         n_classes = executor.corpora[first.dataset].n_classes
         futures[key] = (members, client.submit(reduce_and_cluster, pooled, counts, first.steps, first.reducer, first.seed,
                                                clusterings, n_classes, pure=False))
     for key, (members, future) in futures.items():
         first = members[0]
-        result = future.result()
-        executor.adopt(first, "transform", *result["transformed"], counter="transforms")
-        executor.adopt(first, "reduce", *result["reduced"], counter=f"{first.reducer.method}_fits")
+        try:
+            result = future.result()
+        except Exception as err:  # the task itself was lost (a worker died, the cluster went away)
+            executor.refuse(first, "reduce", err)
+            continue
+        stages = (("transform", "transformed", "transforms"), ("reduce", "reduced", f"{first.reducer.method}_fits"))
+        for kind, name, counter in stages:
+            if name in result["failed"]:
+                executor.refuse(first, kind, result["failed"][name])
+                break
+            executor.adopt(first, kind, *result[name], counter=counter)
         for trial in members:
             cluster_key = trial.stages["cluster"].key
-            if cluster_key in result["clusters"] and not executor.holds("cluster", cluster_key):
+            if cluster_key in result["cluster_failed"]:
+                executor.refuse(trial, "cluster", result["cluster_failed"][cluster_key])
+            elif cluster_key in result["clusters"] and not executor.holds("cluster", cluster_key):
                 executor.adopt(trial, "cluster", *result["clusters"].pop(cluster_key), counter="clusterings")
     return len(futures)

@@ -22,6 +22,7 @@ class ConfigurationRecord:
     metrics: dict[str, float]
     tags: dict[str, str]
     seed_run_ids: list[str] = field(default_factory=list)
+    status: str = "FINISHED"
 
     @property
     def dataset(self) -> str:
@@ -30,6 +31,15 @@ class ConfigurationRecord:
     @property
     def compute_seconds(self) -> float:
         return sum(self.metrics.get(k, 0.0) for k in ("encode_seconds", "reduce_seconds", "cluster_seconds"))
+
+
+@dataclass(frozen=True)
+class UnfinishedTrial:
+    """A seed run of this sweep run that did not finish: its name, status and first line of error."""
+
+    name: str
+    status: str
+    error: str
 
 
 @dataclass
@@ -45,10 +55,18 @@ class SweepRecord:
     cards: dict[str, Any]
     configurations: list[ConfigurationRecord]
     client: Any = field(repr=False, default=None)
+    status: str = "FINISHED"
+    metrics: dict[str, float] = field(default_factory=dict)
+    unfinished_trials: list[UnfinishedTrial] = field(default_factory=list)
 
     @property
     def name(self) -> str:
         return self.experiment
+
+    @property
+    def datasets(self) -> list[str]:
+        """Dataset names in the sweep's order (the cards'), then any others its configurations name."""
+        return list(dict.fromkeys([*self.cards, *(c.dataset for c in self.configurations)]))
 
     def artifact_table(self, run_id: str, name: str) -> Optional[pd.DataFrame]:
         with tempfile.TemporaryDirectory() as folder:
@@ -66,29 +84,45 @@ def _text_artifact(client, run_id: str, name: str) -> Optional[str]:
             return None
 
 
-def sweep_record(tracking_uri: str, sweep_name_or_run_id: str) -> SweepRecord:
-    """The newest FINISHED (or else newest) run of the sweep with this name, or the sweep run with this id."""
+def _sweep_run(client, tracking_uri: str, sweep: Optional[str], run_id: Optional[str]):
+    """The sweep run asked for: ``run_id``, else the newest run of the sweep named ``sweep`` (whatever its
+    status: a rerun in which a trial failed is still the newest word), else ``sweep`` read as a run id."""
     from mlflow.exceptions import MlflowException
+
+    asked_by_id = run_id is not None
+    if run_id is None and sweep is not None:
+        experiment = client.get_experiment_by_name(sweep)
+        if experiment is not None:
+            runs = client.search_runs([experiment.experiment_id], f"tags.`{KIND_TAG}` = 'sweep'",
+                                      order_by=["attributes.start_time DESC"], max_results=1)
+            if not runs:
+                raise HarnessError(f"sweep '{sweep}': the experiment has no sweep run in {tracking_uri}")
+            return runs[0], experiment
+        run_id, sweep = sweep, None
+    if run_id is None:
+        raise HarnessError("name a sweep or give --run-id")
+    try:
+        parent = client.get_run(run_id)
+    except MlflowException:
+        if asked_by_id:
+            raise HarnessError(f"--run-id {run_id}: no such run in {tracking_uri}") from None
+        raise HarnessError(f"'{run_id}' is neither a sweep name nor a run id in {tracking_uri}") from None
+    if parent.data.tags.get(KIND_TAG) != "sweep":
+        raise HarnessError(f"run {run_id} is a {parent.data.tags.get(KIND_TAG, 'foreign')} run, not a sweep run")
+    experiment = client.get_experiment(parent.info.experiment_id)
+    if sweep is not None and experiment.name != sweep:
+        raise HarnessError(f"run {run_id} belongs to sweep '{experiment.name}', not '{sweep}'")
+    return parent, experiment
+
+
+def sweep_record(tracking_uri: str, sweep: Optional[str] = None, run_id: Optional[str] = None) -> SweepRecord:
+    """The sweep run with id ``run_id``, or the newest run of the sweep named ``sweep`` (a name or a run id)."""
     from mlflow.tracking import MlflowClient
 
     client = MlflowClient(tracking_uri=tracking_uri)
-    experiment = client.get_experiment_by_name(sweep_name_or_run_id)
-    if experiment is not None:
-        runs = client.search_runs([experiment.experiment_id], f"tags.`{KIND_TAG}` = 'sweep'", order_by=["attributes.start_time DESC"])
-        if not runs:
-            raise HarnessError(f"sweep '{sweep_name_or_run_id}': the experiment has no sweep run in {tracking_uri}")
-        finished = [r for r in runs if r.info.status == "FINISHED"]
-        parent = (finished or runs)[0]
-    else:
-        try:
-            parent = client.get_run(sweep_name_or_run_id)
-        except MlflowException:
-            raise HarnessError(f"'{sweep_name_or_run_id}' is neither a sweep name nor a run id in {tracking_uri}") from None
-        if parent.data.tags.get(KIND_TAG) != "sweep":
-            raise HarnessError(f"run {sweep_name_or_run_id} is a {parent.data.tags.get(KIND_TAG, 'foreign')} run, not a sweep run")
-        experiment = client.get_experiment(parent.info.experiment_id)
+    parent, experiment = _sweep_run(client, tracking_uri, sweep, run_id)
     children = client.search_runs([experiment.experiment_id], f"tags.`{PARENT_TAG}` = '{parent.info.run_id}'", max_results=5000)
-    configurations = []
+    configurations, unfinished = [], []
     for run in children:
         if run.data.tags.get(KIND_TAG) != "configuration":
             continue
@@ -104,10 +138,16 @@ def sweep_record(tracking_uri: str, sweep_name_or_run_id: str) -> SweepRecord:
         configurations.append(ConfigurationRecord(
             run_id=run.info.run_id, name=run.info.run_name, params=dict(run.data.params), metrics=dict(run.data.metrics),
             tags=dict(run.data.tags), seed_run_ids=[s.info.run_id for s in sorted(seeds, key=lambda s: s.info.start_time)],
+            status=run.info.status,
         ))
+        if run.info.status != "FINISHED":
+            own = client.search_runs([experiment.experiment_id], f"tags.`{PARENT_TAG}` = '{run.info.run_id}'", max_results=1000)
+            unfinished += [UnfinishedTrial(seed.info.run_name, seed.info.status, seed.data.tags.get("harness.error", ""))
+                           for seed in sorted(own, key=lambda s: s.info.start_time) if seed.info.status != "FINISHED"]
     cards = _text_artifact(client, parent.info.run_id, "dataset_cards.json")
     return SweepRecord(
         tracking_uri=tracking_uri, experiment=experiment.name, run_id=parent.info.run_id, tags=dict(parent.data.tags),
         params=dict(parent.data.params), sweep_text=_text_artifact(client, parent.info.run_id, "sweep.yaml") or "",
         cards=json.loads(cards) if cards else {}, configurations=configurations, client=client,
+        status=parent.info.status, metrics=dict(parent.data.metrics), unfinished_trials=unfinished,
     )

@@ -1,8 +1,9 @@
 """The report a reviewer reads: what was compared, what won, by how much, and what the length check says.
 
-Analysis functions are pure (records in, tables out); ``write_report`` renders a
-self-contained HTML page (images embedded, no network resources) and a Markdown
-twin with its images beside it.
+Verdicts are per dataset: configurations are ranked, and everything read off a
+ranking is drawn, within one dataset. Analysis functions are pure (records in,
+tables out); the renderers lay out a self-contained HTML page (images embedded,
+no network resources, every value escaped) and a Markdown twin without raw HTML.
 """
 
 from __future__ import annotations
@@ -11,12 +12,15 @@ import base64
 import html
 import io
 import math
-from dataclasses import dataclass
+import numbers
+import re
+from dataclasses import dataclass, field
 from typing import Optional
 
 import numpy as np
 
 from harness.readback import ConfigurationRecord, SweepRecord
+from harness.sweep import DEFAULT_LABEL_FREE_METRIC, DEFAULT_LABELLED_METRIC
 
 # Axes of the grid, as the params of a configuration run that set them (reduce.* and cluster.* by prefix; the
 # model axis is every other param but the dataset and the sweep-wide ones). Grouping by settings, not by name
@@ -26,22 +30,118 @@ AXIS_PARAMS = {"layers": ("layers",), "pooling": ("pooling",), "transform": ("tr
 NOT_MODEL = frozenset({"dataset", "seed", "storage_dtype"})
 LOW_COVERAGE, HIGH_LENGTH_INDEX, MANY_TRUNCATED, FEW_SEEDS = 0.8, 0.2, 0.05, 3
 
+# What the evidence step says about a configuration run (tags) beside its scores (metrics).
+STABILITY_TAG, INTERVAL_SCOPE_TAG, VERDICT_TAG = "harness.stability", "harness.interval_scope", "harness.verdict"
+INTERVAL_SCOPES = {"seeds_and_texts": "seeds and texts", "texts_only": "texts only"}
 
-def ranking_metric(record: SweepRecord) -> str:
+
+def ranking_metric(record: SweepRecord, dataset: str) -> str:
+    """The metric a dataset's configurations are ranked by: the sweep's rank_by, else ari with labels and
+    silhouette without (as the run's own leaderboard does, per dataset)."""
     chosen = record.params.get("rank_by", "default")
     if chosen != "default":
         return chosen
-    labelled = any("ari" in c.metrics for c in record.configurations)
-    return "ari" if labelled else "silhouette"
+    card = record.cards.get(dataset, {})
+    if "n_classes" in card:
+        labelled = bool(card["n_classes"])
+    else:
+        labelled = any("ari" in c.metrics for c in record.configurations if c.dataset == dataset)
+    return DEFAULT_LABELLED_METRIC if labelled else DEFAULT_LABEL_FREE_METRIC
+
+
+def _score(configuration: ConfigurationRecord, metric: str) -> float:
+    value = configuration.metrics.get(metric, float("nan"))
+    return float("nan") if value is None else float(value)
 
 
 def ranked(configurations: list[ConfigurationRecord], metric: str) -> list[ConfigurationRecord]:
-    """Best first by the configuration's mean score; configurations without it last."""
-    def key(c: ConfigurationRecord):
-        value = c.metrics.get(metric, float("nan"))
+    """Best first: by the rank the run logged when every configuration has one (the run's leaderboard), else by
+    the mean score; configurations without a score last."""
+    def by_score(c: ConfigurationRecord):
+        value = _score(c, metric)
         return (math.isnan(value), -value if not math.isnan(value) else 0.0, c.name)
 
-    return sorted(configurations, key=key)
+    if configurations and all("rank" in c.metrics for c in configurations):
+        return sorted(configurations, key=lambda c: (c.metrics["rank"], by_score(c)))
+    return sorted(configurations, key=by_score)
+
+
+@dataclass(frozen=True)
+class DatasetRanking:
+    """One dataset's configurations, best first: verdicts are per dataset, never across corpora."""
+
+    dataset: str
+    metric: str
+    ordered: list[ConfigurationRecord]
+
+    @property
+    def winner(self) -> Optional[ConfigurationRecord]:
+        """The leader, or None when no configuration of this dataset has a score."""
+        if self.ordered and not math.isnan(_score(self.ordered[0], self.metric)):
+            return self.ordered[0]
+        return None
+
+    @property
+    def runner_up(self) -> Optional[ConfigurationRecord]:
+        return self.ordered[1] if self.winner is not None and len(self.ordered) > 1 else None
+
+
+def dataset_rankings(record: SweepRecord) -> list[DatasetRanking]:
+    """Per dataset, in the sweep's order: its own metric and its configurations, best first."""
+    rankings = []
+    for dataset in record.datasets:
+        mine = [c for c in record.configurations if c.dataset == dataset]
+        if mine:
+            metric = ranking_metric(record, dataset)
+            rankings.append(DatasetRanking(dataset, metric, ranked(mine, metric)))
+    return rankings
+
+
+# -- what the evidence says about one configuration ------------------------------------------------------
+
+def valid_seeds(configuration: ConfigurationRecord, metric: str) -> tuple[Optional[int], Optional[int]]:
+    """(seeds with a finite value of ``metric``, all seeds) as the run logged them; None where not logged."""
+    valid, total = configuration.metrics.get(f"{metric}_valid_seeds"), configuration.metrics.get("n_seeds")
+    return (None if valid is None else int(valid)), (None if total is None else int(total))
+
+
+def fewer_valid_seeds(configuration: ConfigurationRecord, metric: str) -> bool:
+    valid, total = valid_seeds(configuration, metric)
+    return valid is not None and total is not None and valid < total
+
+
+def stability_applies(configuration: ConfigurationRecord) -> bool:
+    """False for a seed-free pipeline: every stage ignores the seed, so agreement across seeds says nothing."""
+    return configuration.tags.get(STABILITY_TAG) != "not_applicable"
+
+
+def interval_scope(configuration: ConfigurationRecord) -> Optional[str]:
+    """What the interval resamples ('seeds and texts' or 'texts only'), where the run says."""
+    scope = configuration.tags.get(INTERVAL_SCOPE_TAG)
+    return INTERVAL_SCOPES.get(scope, scope) if scope else None
+
+
+def provisional(configuration: ConfigurationRecord) -> bool:
+    return configuration.tags.get(VERDICT_TAG) == "provisional"
+
+
+SAFE_NAME_LENGTH = 100
+
+
+def safe_name(name: str, fallback: str = "unnamed") -> str:
+    """A file or folder name made of letters, digits, '_', '-' and inner dots only (at most 100 characters), so
+    that no name read from a store (a sweep, a dataset, a run id) can point outside the folder it is joined to."""
+    cleaned = re.sub(r"[^A-Za-z0-9_.-]+", "_", str(name))
+    cleaned = re.sub(r"\.{2,}", ".", cleaned)[:SAFE_NAME_LENGTH].strip("._-")
+    return cleaned or fallback
+
+
+def distinct_safe_names(names: list[str]) -> dict[str, str]:
+    """Each name's safe_name, numbered where two names would otherwise share one (a/b and a?b both give a_b)."""
+    safe = {name: safe_name(name) for name in names}
+    taken = list(safe.values())
+    return {name: value if taken.count(value) == 1 else f"{value}-{index}"
+            for index, (name, value) in enumerate(safe.items())}
 
 
 def axis_settings(params: dict[str, str], axis: str) -> dict[str, str]:
@@ -113,10 +213,16 @@ def pareto_front(costs: list[float], scores: list[float]) -> list[int]:
 
 
 def caveats(ordered: list[ConfigurationRecord], metric: str) -> list[str]:
-    """Warnings read off the data: ties at the top, low coverage, high length index, truncation, few seeds."""
+    """Warnings read off one dataset's ranking: failed configurations, ties at the top, low coverage, high length
+    index, truncation, few or invalid seeds, a provisional verdict."""
     notes = []
-    if not ordered:
-        return ["no configuration finished"]
+    scored = [c for c in ordered if not math.isnan(_score(c, metric))]
+    failed = [c for c in ordered if c.status != "FINISHED"]
+    if failed:
+        notes.append(f"{len(failed)} configuration(s) did not finish (a seed run failed or was interrupted); they have "
+                     f"no scores and are ranked last: {', '.join(c.name for c in failed[:5])}{' ...' if len(failed) > 5 else ''}.")
+    if not scored:
+        return notes + ["no configuration finished"]
     winner = ordered[0]
     tied = [c for c in ordered[1:] if c.metrics.get("tied_with_leader") == 1.0]
     if tied:
@@ -137,10 +243,53 @@ def caveats(ordered: list[ConfigurationRecord], metric: str) -> list[str]:
         notes.append(f"{winner.metrics['split_fraction']:.0%} of texts were longer than the model's maximum length and "
                      f"were split into windows ({winner.metrics.get('windows_per_text_mean', float('nan')):.1f} per text "
                      "on average) whose vectors were averaged; nothing was cut.")
+    notes += seed_caveats(ordered, metric)
+    return notes
+
+
+def seed_caveats(ordered: list[ConfigurationRecord], metric: str) -> list[str]:
+    """What the seeds do and do not back: a provisional verdict, scores averaged over fewer seeds than ran,
+    stability that does not apply."""
+    notes = []
+    winner = ordered[0]
     seeds = winner.metrics.get("n_seeds", 1.0)
-    if seeds < FEW_SEEDS:
+    if provisional(winner):
+        notes.append(f"Provisional verdict: {seeds:.0f} seed(s) per configuration, fewer than {FEW_SEEDS}. The intervals "
+                     f"and tie flags cover {interval_scope(winner) or 'texts only'}, not the spread over seeds; run "
+                     f"{FEW_SEEDS} or more seeds before citing this winner.")
+    elif seeds < FEW_SEEDS:
         notes.append(f"Only {seeds:.0f} seed(s) per configuration: stability across seeds is not established "
                      "(stability_ari needs at least 2; 3 or more is better).")
+    short = [c for c in ordered if fewer_valid_seeds(c, metric)]
+    if short:
+        shown = ", ".join(f"{c.name} ({valid_seeds(c, metric)[0]} of {valid_seeds(c, metric)[1]})" for c in short[:5])
+        notes.append(f"{len(short)} configuration(s) have a finite {metric} on fewer seeds than they ran, and their mean "
+                     f"is over those seeds only: {shown}{' ...' if len(short) > 5 else ''}."
+                     + (" The winner is one of them." if any(c is winner for c in short) else ""))
+    seed_free = [c for c in ordered if not stability_applies(c)]
+    if seed_free and metric == "stability_ari":
+        notes.append(f"stability_ari does not apply to {len(seed_free)} seed-free configuration(s) (every stage ignores "
+                     "the seed, so agreement across seeds is 1 by construction); they have no stability score.")
+    return notes
+
+
+def run_notes(record: SweepRecord) -> list[str]:
+    """What the reader must know about the run itself before its numbers: failed or unfinished trials."""
+    planned = record.params.get("n_trials", "?")
+    failed = [t for t in record.unfinished_trials if t.status == "FAILED"]
+    notes = []
+    if failed or record.status == "FAILED":
+        shown = "; ".join(f"{t.name}: {t.error or 'no error recorded'}" for t in failed[:10])
+        notes.append(f"{len(failed)} of {planned} trials of this run FAILED: a configuration with a failed seed has no "
+                     f"scores and is ranked last{': ' + shown if shown else '.'}{' ...' if len(failed) > 10 else ''}")
+    if record.status == "KILLED":
+        notes.append(f"This run was interrupted (status KILLED) before it finished: {len(record.configurations)} "
+                     f"configuration run(s) exist for {planned} planned trials; what it did not reach is missing here.")
+    elif record.status == "RUNNING":
+        notes.append("This run has status RUNNING: it is still going, or its process died without closing it; "
+                     "what follows may be incomplete.")
+    elif record.status not in ("FINISHED", "FAILED"):
+        notes.append(f"This run ended with status {record.status}; what follows may be incomplete.")
     return notes
 
 
@@ -217,111 +366,213 @@ def cluster_map_png(xy: np.ndarray, clusters: np.ndarray, legend: dict[int, str]
 
 
 @dataclass
+class DatasetSection:
+    """Everything the report shows about one dataset, computed: its ranking and what is read off it."""
+
+    ranking: DatasetRanking
+    slug: str  # unique, safe for element ids and file names
+    effects: dict[str, list[Effect]] = field(default_factory=dict)
+    front: list[int] = field(default_factory=list)
+    caveats: list[str] = field(default_factory=list)
+    images: dict[str, bytes] = field(default_factory=dict)  # element -> PNG
+    winner_clusters: list[dict] = field(default_factory=list)
+
+    @property
+    def dataset(self) -> str:
+        return self.ranking.dataset
+
+    @property
+    def metric(self) -> str:
+        return self.ranking.metric
+
+    @property
+    def ordered(self) -> list[ConfigurationRecord]:
+        return self.ranking.ordered
+
+    def image_name(self, element: str) -> str:
+        return f"{element}-{self.slug}"
+
+
+@dataclass
 class ReportContent:
     """Everything a report shows, computed; rendering only lays it out."""
 
     record: SweepRecord
-    metric: str
-    ordered: list[ConfigurationRecord]
-    effects: dict[str, list[Effect]]
-    front: list[int]
-    caveats: list[str]
-    images: dict[str, bytes]  # element id -> PNG
-    winner_clusters: list[dict]
+    sections: list[DatasetSection]
+    run_notes: list[str] = field(default_factory=list)
+
+
+def section_slug(index: int, dataset: str) -> str:
+    return f"d{index}-{safe_name(dataset, 'dataset')}"
 
 
 def _fmt(value: Optional[float], digits: int = 3) -> str:
-    if value is None or (isinstance(value, float) and math.isnan(value)):
+    """A number to ``digits`` places, '-' for none or NaN; anything else (a card edited by hand) as text."""
+    if value is None or (isinstance(value, numbers.Real) and math.isnan(value)):
         return "-"
-    return f"{value:.{digits}f}"
+    if isinstance(value, numbers.Real) and not isinstance(value, bool):
+        return f"{value:.{digits}f}"
+    return str(value)
 
 
-def leaderboard_rows(content: ReportContent) -> list[list[str]]:
-    metric = content.metric
+LEADERBOARD_HEADER = ["rank", "configuration", "{metric}", "seeds", "95% CI", "interval covers", "tie", "length index",
+                      "coverage", "stability", "seconds"]
+
+
+def leaderboard_rows(section: DatasetSection) -> list[list[str]]:
+    """One dataset's leaderboard as text cells, with the evidence flags: valid seeds, interval scope, provisional
+    verdict, stability not applicable, failed configurations."""
+    metric = section.metric
     rows = []
-    for position, c in enumerate(content.ordered, start=1):
+    for position, c in enumerate(section.ordered, start=1):
         m = c.metrics
+        if c.status != "FINISHED":
+            rows.append([str(position), c.name, "failed" if c.status == "FAILED" else c.status.lower()]
+                        + ["-"] * (len(LEADERBOARD_HEADER) - 3))
+            continue
+        valid, total = valid_seeds(c, metric)
+        seeds = "-" if total is None else (f"{valid} of {total} valid" if fewer_valid_seeds(c, metric) else f"{total}")
         interval = f"[{_fmt(m.get(f'{metric}_ci_low'))}, {_fmt(m.get(f'{metric}_ci_high'))}]" if f"{metric}_ci_low" in m else "-"
         tie = "leader" if position == 1 else ("tied" if m.get("tied_with_leader") == 1.0 else "")
-        rows.append([str(position), c.name, _fmt(m.get(metric)), interval, tie, _fmt(m.get("length_confound_index")),
-                     _fmt(m.get("coverage")), _fmt(m.get("stability_ari")), _fmt(c.compute_seconds, 1)])
+        if position == 1 and provisional(c):
+            tie = "leader (provisional)"
+        stability = _fmt(m.get("stability_ari")) if stability_applies(c) else "n/a (seed-free)"
+        rows.append([str(position), c.name, _fmt(m.get(metric)), seeds, interval, interval_scope(c) or "-", tie,
+                     _fmt(m.get("length_confound_index")), _fmt(m.get("coverage")), stability, _fmt(c.compute_seconds, 1)])
     return rows
 
 
-LEADERBOARD_HEADER = ["rank", "configuration", "{metric}", "95% CI", "tie", "length index", "coverage", "stability", "seconds"]
+def winner_line(section: DatasetSection) -> str:
+    winner = section.ranking.winner
+    if winner is None:
+        return f"{section.dataset}: no configuration finished"
+    flags = " (provisional: fewer than 3 seeds)" if provisional(winner) else ""
+    return f"{section.dataset}: {winner.name}, {section.metric} {_fmt(winner.metrics.get(section.metric))}{flags}"
+
+
+TIE_NOTE = "tie: the paired bootstrap interval of the difference to the leader contains 0; no correction for many comparisons."
+STABILITY_NOTE = ("stability n/a (seed-free): every stage of that pipeline ignores the seed, so agreement across seeds "
+                  "is 1 by construction and is not reported.")
+SEEDS_NOTE = "seeds: how many seeds the mean is over; 'k of n valid' where only k gave a finite value."
+EFFECTS_NOTE = "Mean {metric} of each option over the rest of this dataset's grid (95 % interval over configurations)."
+
+
+def _e(value) -> str:
+    """Every value written into the page goes through here: text, numbers, names read from the store."""
+    return html.escape(str(value), quote=True)
+
+
+def _html_list(items: list[str], element_id: str, css: str = "") -> str:
+    body = "".join(f"<li>{_e(item)}</li>" for item in items) or "<li>none</li>"
+    return f"<ul id='{_e(element_id)}' class='{_e(css)}'>{body}</ul>"
+
+
+def _html_image(section: DatasetSection, element: str, alt: str) -> str:
+    element_id = _e(section.image_name(element))
+    if element not in section.images:
+        return f"<p id='{element_id}' class='{_e(element)}'><i>not available: {_e(alt)}</i></p>"
+    data = base64.b64encode(section.images[element]).decode("ascii")
+    return f"<img id='{element_id}' class='{_e(element)}' alt='{_e(alt)}' src='data:image/png;base64,{data}'>"
+
+
+def _html_section(section: DatasetSection) -> str:
+    header = [h.format(metric=section.metric) for h in LEADERBOARD_HEADER]
+    board = "".join("<tr>" + "".join(f"<td>{_e(cell)}</td>" for cell in row) + "</tr>" for row in leaderboard_rows(section))
+    spread = ", ".join(f"{axis} ({delta:.3f})" for axis, delta in axis_spread(section.effects))
+    clusters = "".join("<tr>" + "".join(f"<td>{_e(cell)}</td>" for cell in (
+        row.get("cluster"), row.get("size"), _fmt(row.get("median_tokens"), 0), _fmt(row.get("npmi"), 2), row.get("top_terms")))
+        + "</tr>" for row in section.winner_clusters)
+    effects = "".join("<tr>" + "".join(f"<td>{_e(cell)}</td>" for cell in (
+        axis, x.option, _fmt(x.mean), f"[{_fmt(x.low)}, {_fmt(x.high)}]", x.n)) + "</tr>"
+        for axis, rows in section.effects.items() for x in rows)
+    slug = _e(section.slug)
+    return f"""<section class="dataset" id="dataset-{slug}" data-dataset="{_e(section.dataset)}">
+<h2>Dataset {_e(section.dataset)}</h2>
+<p class="winner"><b>Winner.</b> {_e(winner_line(section))}; ranked by {_e(section.metric)} (mean over seeds).</p>
+<h3>Leaderboard</h3>
+<table id="leaderboard-{slug}" class="leaderboard"><tr>{"".join(f"<th>{_e(h)}</th>" for h in header)}</tr>{board}</table>
+<p>{_e(TIE_NOTE)} {_e(SEEDS_NOTE)} {_e(STABILITY_NOTE)}</p>
+<h3>Which choice matters</h3>
+<p>{_e(EFFECTS_NOTE.format(metric=section.metric))} Axes by spread: {_e(spread or "-")}.</p>
+{_html_image(section, "main-effects", "main effects plot")}
+<table id="effects-{slug}" class="effects"><tr><th>axis</th><th>option</th><th>mean</th><th>95% interval</th><th>configurations</th></tr>{effects}</table>
+<h3>Quality against cost</h3>{_html_image(section, "quality-cost", "score against compute time, Pareto front marked")}
+<h3>The length picture</h3>
+<p>Token counts per cluster: the winner and the most length-confounded configuration of this dataset.</p>
+{_html_image(section, "length-plot", "token-count distribution per cluster")}
+<h3>The winner's clusters</h3>{_html_image(section, "cluster-map", "2-D map of the winner's clusters")}
+<table id="winner-clusters-{slug}" class="winner-clusters"><tr><th>cluster</th><th>size</th><th>median tokens</th><th>NPMI</th><th>distinctive terms</th></tr>{clusters}</table>
+<h3>Caveats</h3>{_html_list(section.caveats, f"caveats-{section.slug}", "caveats")}
+</section>
+"""
+
+
+def _card_line(name: str, card: dict) -> str:
+    quantiles = card.get("token_length_quantiles") or {}
+    return (f"{name}: {card.get('rows', '?')} texts, {card.get('n_classes') or 'no'} classes, route "
+            f"{card.get('route', '')}, fingerprint {card.get('fingerprint', '')}, median {quantiles.get('q50', '?')} tokens, "
+            f"η²(log length | label) = {_fmt(card.get('length_eta2_labels'), 4)}")
 
 
 def render_html(content: ReportContent) -> str:
-    r, e = content.record, html.escape
-    header = [h.format(metric=content.metric) for h in LEADERBOARD_HEADER]
-    board = "".join("<tr>" + "".join(f"<td>{e(cell)}</td>" for cell in row) + "</tr>" for row in leaderboard_rows(content))
-    cards = "".join(
-        f"<li><b>{e(name)}</b>: {card.get('rows', '?')} texts, {card.get('n_classes') or 'no'} classes, "
-        f"route {e(str(card.get('route', '')))}, fingerprint <code>{e(str(card.get('fingerprint', '')))}</code>, "
-        f"median {card.get('token_length_quantiles', {}).get('q50', '?')} tokens, "
-        f"&eta;&sup2;(log length | label) = {_fmt(card.get('length_eta2_labels'), 4)}</li>"
-        for name, card in r.cards.items())
-    spread = ", ".join(f"{axis} ({delta:.3f})" for axis, delta in axis_spread(content.effects))
-    clusters = "".join(f"<tr><td>{row['cluster']}</td><td>{row['size']}</td><td>{row['median_tokens']:.0f}</td>"
-                       f"<td>{_fmt(row['npmi'], 2)}</td><td>{e(row['top_terms'])}</td></tr>" for row in content.winner_clusters)
-    notes = "".join(f"<li>{e(note)}</li>" for note in content.caveats) or "<li>none</li>"
-
-    def image(element: str, alt: str) -> str:
-        if element not in content.images:
-            return f"<p id='{element}'><i>not available: {e(alt)}</i></p>"
-        data = base64.b64encode(content.images[element]).decode()
-        return f"<img id='{element}' alt='{e(alt)}' src='data:image/png;base64,{data}'>"
-
-    winner = content.ordered[0].name if content.ordered else "none"
+    r = content.record
+    cards = "".join(f"<li>{_e(_card_line(name, card))}</li>" for name, card in r.cards.items())
+    winners = "".join(f"<li>{_e(winner_line(section))}</li>" for section in content.sections) or "<li>none</li>"
+    status = (f"<div id='run-status' class='run-status'><b>This run is not complete.</b>{_html_list(content.run_notes, 'run-notes')}</div>"
+              if content.run_notes else "<div id='run-status' class='run-status-ok'></div>")
     return f"""<!DOCTYPE html>
-<html lang="en"><head><meta charset="utf-8"><title>{e(r.name)}: sweep report</title>
+<html lang="en"><head><meta charset="utf-8"><title>{_e(r.name)}: sweep report</title>
 <style>
 body {{ font-family: system-ui, sans-serif; margin: 2em auto; max-width: 1200px; color: #222; }}
 table {{ border-collapse: collapse; font-size: 13px; }} td, th {{ border: 1px solid #ccc; padding: 3px 6px; }}
 th {{ background: #f0f0f0; }} img {{ max-width: 100%; }} code {{ font-size: 12px; }}
-.caveats li {{ color: #8a3b12; }}
+.caveats li, .run-status {{ color: #8a3b12; }} section.dataset {{ border-top: 2px solid #888; margin-top: 2em; }}
 </style></head><body>
-<h1 id="title">Sweep report: {e(r.name)}</h1>
-<p id="question"><b>Question.</b> {e(r.tags.get("harness.question") or "(none given)")}</p>
-<p><b>Winner.</b> <code>{e(winner)}</code>, ranked by {e(content.metric)} (mean over seeds). MLflow run <code>{e(r.run_id)}</code> in <code>{e(r.tracking_uri)}</code>.</p>
+<h1 id="title">Sweep report: {_e(r.name)}</h1>
+<p id="question"><b>Question.</b> {_e(r.tags.get("harness.question") or "(none given)")}</p>
+<p id="run"><b>Run.</b> MLflow sweep run <code>{_e(r.run_id)}</code> (status {_e(r.status)}) in <code>{_e(r.tracking_uri)}</code>.</p>
+{status}
+<p><b>Winners, one per dataset</b> (configurations are ranked within a dataset, never across datasets):</p>
+<ul id="winners">{winners}</ul>
 <h2>Datasets</h2><ul id="datasets">{cards}</ul>
-<h2>Grid</h2><pre id="grid">{e(r.sweep_text)}</pre>
-<h2>Leaderboard</h2>
-<table id="leaderboard"><tr>{"".join(f"<th>{e(h)}</th>" for h in header)}</tr>{board}</table>
-<p>tie: the paired bootstrap interval of the difference to the leader contains 0; no correction for many comparisons.</p>
-<h2>Which choice matters</h2>
-<p>Mean {e(content.metric)} of each option over the rest of the grid (95 % interval over configurations). Axes by spread: {e(spread)}.</p>
-{image("main-effects", "main effects plot")}
-<h2>Quality against cost</h2>{image("quality-cost", "score against compute time, Pareto front marked")}
-<h2>The length picture</h2>
-<p>Token counts per cluster: the winner and the most length-confounded configuration.</p>
-{image("length-plot", "token-count distribution per cluster")}
-<h2>The winner's clusters</h2>{image("cluster-map", "2-D map of the winner's clusters")}
-<table id="winner-clusters"><tr><th>cluster</th><th>size</th><th>median tokens</th><th>NPMI</th><th>distinctive terms</th></tr>{clusters}</table>
-<h2>Caveats</h2><ul id="caveats" class="caveats">{notes}</ul>
+<h2>Grid</h2><pre id="grid">{_e(r.sweep_text)}</pre>
+{"".join(_html_section(section) for section in content.sections)}
 </body></html>
 """
 
 
+def md_text(value) -> str:
+    """Text for Markdown: no raw HTML (many viewers render it) and no table-breaking pipes or newlines."""
+    return html.escape(str(value), quote=False).replace("|", "\\|").replace("\n", " ")
+
+
 def render_markdown(content: ReportContent, image_paths: dict[str, str]) -> str:
     r = content.record
-    header = [h.format(metric=content.metric) for h in LEADERBOARD_HEADER]
-    lines = [f"# Sweep report: {r.name}", "", f"**Question.** {r.tags.get('harness.question') or '(none given)'}", "",
-             f"MLflow run `{r.run_id}` in `{r.tracking_uri}`.", "", "## Datasets", ""]
-    lines += [f"- **{name}**: {card.get('rows', '?')} texts, {card.get('n_classes') or 'no'} classes, fingerprint "
-              f"`{card.get('fingerprint', '')}`, eta2(log length | label) = {_fmt(card.get('length_eta2_labels'), 4)}"
-              for name, card in r.cards.items()]
-    lines += ["", "## Leaderboard", "", "| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
-    lines += ["| " + " | ".join(row) + " |" for row in leaderboard_rows(content)]
-    lines += ["", "## Which choice matters", ""]
-    for axis, rows in content.effects.items():
-        lines.append(f"- **{axis}**: " + "; ".join(f"{x.option} {_fmt(x.mean)} [{_fmt(x.low)}, {_fmt(x.high)}]" for x in rows))
-    for element, title in (("main-effects", "Main effects"), ("quality-cost", "Quality against cost"),
-                           ("length-plot", "The length picture"), ("cluster-map", "The winner's clusters")):
-        if element in image_paths:
-            lines += ["", f"## {title}", "", f"![{title}]({image_paths[element]})"]
-    lines += ["", "| cluster | size | median tokens | NPMI | distinctive terms |", "|---|---|---|---|---|"]
-    lines += [f"| {c['cluster']} | {c['size']} | {c['median_tokens']:.0f} | {_fmt(c['npmi'], 2)} | {c['top_terms']} |"
-              for c in content.winner_clusters]
-    lines += ["", "## Caveats", ""] + [f"- {note}" for note in content.caveats or ["none"]]
+    lines = [f"# Sweep report: {md_text(r.name)}", "", f"**Question.** {md_text(r.tags.get('harness.question') or '(none given)')}", "",
+             f"MLflow sweep run `{md_text(r.run_id)}` (status {md_text(r.status)}) in `{md_text(r.tracking_uri)}`.", ""]
+    if content.run_notes:
+        lines += ["**This run is not complete.**", ""] + [f"- {md_text(note)}" for note in content.run_notes] + [""]
+    lines += ["**Winners, one per dataset** (ranked within a dataset, never across datasets):", ""]
+    lines += [f"- {md_text(winner_line(section))}" for section in content.sections] + ["", "## Datasets", ""]
+    lines += [f"- {md_text(_card_line(name, card))}" for name, card in r.cards.items()]
+    for section in content.sections:
+        header = [h.format(metric=section.metric) for h in LEADERBOARD_HEADER]
+        lines += ["", f"## Dataset {md_text(section.dataset)}", "", f"**Winner.** {md_text(winner_line(section))}", "",
+                  "### Leaderboard", "", "| " + " | ".join(md_text(h) for h in header) + " |", "|" + "---|" * len(header)]
+        lines += ["| " + " | ".join(md_text(cell) for cell in row) + " |" for row in leaderboard_rows(section)]
+        lines += ["", md_text(f"{TIE_NOTE} {SEEDS_NOTE} {STABILITY_NOTE}"), "", "### Which choice matters", "",
+                  md_text(EFFECTS_NOTE.format(metric=section.metric)), ""]
+        for axis, rows in section.effects.items():
+            lines.append(f"- **{md_text(axis)}**: " + "; ".join(
+                md_text(f"{x.option} {_fmt(x.mean)} [{_fmt(x.low)}, {_fmt(x.high)}]") for x in rows))
+        for element, title in (("main-effects", "Main effects"), ("quality-cost", "Quality against cost"),
+                               ("length-plot", "The length picture"), ("cluster-map", "The winner's clusters")):
+            name = section.image_name(element)
+            if name in image_paths:
+                lines += ["", f"### {title}", "", f"![{title}]({image_paths[name]})"]
+        lines += ["", "| cluster | size | median tokens | NPMI | distinctive terms |", "|---|---|---|---|---|"]
+        lines += ["| " + " | ".join(md_text(cell) for cell in (c.get("cluster"), c.get("size"), _fmt(c.get("median_tokens"), 0),
+                                                               _fmt(c.get("npmi"), 2), c.get("top_terms"))) + " |"
+                  for c in section.winner_clusters]
+        lines += ["", "### Caveats", ""] + [f"- {md_text(note)}" for note in section.caveats or ["none"]]
     return "\n".join(lines) + "\n"

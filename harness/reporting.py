@@ -8,20 +8,25 @@ from typing import Optional
 
 import numpy as np
 
+from harness.errors import HarnessError
 from harness.readback import ConfigurationRecord, SweepRecord
 from harness.report import (
+    DatasetRanking,
+    DatasetSection,
     ReportContent,
     caveats,
     cluster_map_png,
+    dataset_rankings,
     length_png,
     main_effects,
     main_effects_png,
     pareto_front,
     quality_cost_png,
-    ranked,
-    ranking_metric,
     render_html,
     render_markdown,
+    run_notes,
+    safe_name,
+    section_slug,
 )
 
 
@@ -55,54 +60,67 @@ def winner_coordinates(record: SweepRecord, configuration: ConfigurationRecord) 
     return umap_reduced(np.asarray(vectors, dtype=np.float32), settings, 0)
 
 
+def dataset_section(record: SweepRecord, ranking: DatasetRanking, slug: str, with_map: bool = True) -> DatasetSection:
+    """One dataset's part of the report: main effects, Pareto front, length picture, cluster map and caveats,
+    all from that dataset's configurations only."""
+    metric, scored = ranking.metric, [c for c in ranking.ordered if c.status == "FINISHED"]
+    section = DatasetSection(ranking=ranking, slug=slug, effects=main_effects(scored, metric),
+                             caveats=caveats(ranking.ordered, metric))
+    section.front = pareto_front([c.compute_seconds for c in scored], [c.metrics.get(metric, float("nan")) for c in scored])
+    if section.effects:
+        section.images["main-effects"] = main_effects_png(section.effects, metric)
+    if scored:
+        section.images["quality-cost"] = quality_cost_png(scored, metric, section.front)
+    winner = ranking.winner
+    if winner is None or not winner.seed_run_ids:
+        return section
+    index = "length_confound_index" if "length_confound_index" in winner.metrics else "length_eta2_clusters"
+    confounded = max(scored, key=lambda c: c.metrics.get(index, -1.0))
+    tables = []
+    for label, config in (("winner", winner), (f"most length-confounded ({index} {confounded.metrics.get(index, 0):.2f})", confounded)):
+        table = record.artifact_table(config.seed_run_ids[0], "assignments.parquet") if config.seed_run_ids else None
+        if table is not None:
+            tables.append((f"{label}: {config.name.split('/', 2)[-1]}", table))
+    if tables:
+        section.images["length-plot"] = length_png(tables)
+    described = record.artifact_table(winner.seed_run_ids[0], "clusters.parquet")
+    section.winner_clusters = described.to_dict("records") if described is not None else []
+    if with_map:
+        xy = winner_coordinates(record, winner)
+        assignments = record.artifact_table(winner.seed_run_ids[0], "assignments.parquet")
+        if xy is not None and assignments is not None:
+            legend = {int(r["cluster"]): str(r["top_terms"]) for r in section.winner_clusters}
+            section.images["cluster-map"] = cluster_map_png(xy, assignments["cluster"].to_numpy(), legend)
+    return section
+
+
 def report_content(record: SweepRecord, with_map: bool = True) -> ReportContent:
-    metric = ranking_metric(record)
-    ordered = ranked(record.configurations, metric)
-    datasets = list(dict.fromkeys(c.dataset for c in ordered))
-    first = [c for c in ordered if c.dataset == datasets[0]] if datasets else []
-    effects = main_effects(first, metric)
-    costs = [c.compute_seconds for c in first]
-    front = pareto_front(costs, [c.metrics.get(metric, float("nan")) for c in first])
-    images: dict[str, bytes] = {}
-    if effects:
-        images["main-effects"] = main_effects_png(effects, metric)
-    if first:
-        images["quality-cost"] = quality_cost_png(first, metric, front)
-    clusters_table: list[dict] = []
-    if first and first[0].seed_run_ids:
-        winner = first[0]
-        index = "length_confound_index" if "length_confound_index" in winner.metrics else "length_eta2_clusters"
-        confounded = max(first, key=lambda c: c.metrics.get(index, -1.0))
-        tables = []
-        for label, config in (("winner", winner), (f"most length-confounded ({index} {confounded.metrics.get(index, 0):.2f})", confounded)):
-            table = record.artifact_table(config.seed_run_ids[0], "assignments.parquet") if config.seed_run_ids else None
-            if table is not None:
-                tables.append((f"{label}: {config.name.split('/', 2)[-1]}", table))
-        if tables:
-            images["length-plot"] = length_png(tables)
-        described = record.artifact_table(winner.seed_run_ids[0], "clusters.parquet")
-        clusters_table = described.to_dict("records") if described is not None else []
-        if with_map:
-            xy = winner_coordinates(record, winner)
-            assignments = record.artifact_table(winner.seed_run_ids[0], "assignments.parquet")
-            if xy is not None and assignments is not None:
-                legend = {int(r["cluster"]): r["top_terms"] for r in clusters_table}
-                images["cluster-map"] = cluster_map_png(xy, assignments["cluster"].to_numpy(), legend)
-    return ReportContent(record=record, metric=metric, ordered=ordered, effects=effects, front=front,
-                         caveats=caveats(first, metric), images=images, winner_clusters=clusters_table)
+    sections = [dataset_section(record, ranking, section_slug(i, ranking.dataset), with_map)
+                for i, ranking in enumerate(dataset_rankings(record))]
+    return ReportContent(record=record, sections=sections, run_notes=run_notes(record))
+
+
+def report_folder(reports_dir: Path, record: SweepRecord) -> Path:
+    """RESULTS/reports/<sweep>, the name made safe: a name read from the store never leaves reports_dir."""
+    folder = reports_dir / safe_name(record.name, safe_name(record.run_id, "sweep"))
+    if folder.resolve().parent != reports_dir.resolve():  # cannot happen with safe_name; a guard, not a rule
+        raise HarnessError(f"sweep '{record.name}': report folder {folder} would be outside {reports_dir}")
+    return folder
 
 
 def write_report(record: SweepRecord, reports_dir: Path, with_map: bool = True) -> tuple[Path, Path]:
     """Write report.html (self-contained) and report.md (+ PNGs) and log them to the sweep run."""
     content = report_content(record, with_map)
-    folder = reports_dir / record.name
+    folder = report_folder(reports_dir, record)
     folder.mkdir(parents=True, exist_ok=True)
     page = folder / "report.html"
     page.write_text(render_html(content))
     image_paths = {}
-    for element, data in content.images.items():
-        (folder / f"{element}.png").write_bytes(data)
-        image_paths[element] = f"{element}.png"
+    for section in content.sections:
+        for element, data in section.images.items():
+            name = section.image_name(element)
+            (folder / f"{name}.png").write_bytes(data)
+            image_paths[name] = f"{name}.png"
     markdown = folder / "report.md"
     markdown.write_text(render_markdown(content, image_paths))
     record.client.log_artifact(record.run_id, str(page), "report")

@@ -47,6 +47,8 @@ class PreparedSweep:
     dataset_keys: dict[str, str]
     trials: list[Trial]
     corpora: dict[str, Corpus] = field(default_factory=dict, repr=False)
+    # Per dataset that balances lengths by a tokenizer: the model whose tokenizer measures them (None: words).
+    length_tokenizers: dict[str, Optional[ResolvedModel]] = field(default_factory=dict)
 
 
 @dataclass
@@ -119,25 +121,67 @@ def prepared_sweep(path: str | Path) -> PreparedSweep:
         except HarnessError as err:
             key = "vectors" if spec.family == "precomputed" else "name"
             raise sweep_error_at(path, ["models", index, key], str(err)) from None
-    corpora = _loaded(path, sweep, models)
+    tokenizers = {dataset_name(spec): _length_tokenizer(path, index, spec, sweep, models)
+                  for index, spec in enumerate(sweep.datasets) if needs_tokenizer(spec)}
+    corpora = _loaded(path, sweep, tokenizers)
     keys = {name: dataset_key(corpus) for name, corpus in corpora.items()}
     return PreparedSweep(path=path, sweep=sweep, models=models, dataset_keys=keys,
-                         trials=planned_trials(sweep, keys, models), corpora=corpora)
+                         trials=planned_trials(sweep, keys, models), corpora=corpora, length_tokenizers=tokenizers)
 
 
-def _loaded(path: Path, sweep: Sweep, models: dict[str, ResolvedModel]) -> dict[str, Corpus]:
+WORD_COUNTS = "words"  # length_tokenizer: balance by word counts
+SUBWORD_FAMILIES = ("sentence_transformer", "transformer")
+
+
+def _length_tokenizer(path: Path, index: int, spec, sweep: Sweep, models: dict[str, ResolvedModel]) -> Optional[ResolvedModel]:
+    """The model whose tokenizer measures lengths for a dataset that balances them (None: word counts):
+    the entry's ``length_tokenizer``, else the sweep's first model when it has a subword tokenizer."""
+    from harness.models import resolve_model
+
+    chosen = spec.length_tokenizer
+    if chosen is None:
+        first = models[sweep.models[0].label]
+        return first if first.family in SUBWORD_FAMILIES else None
+    if chosen == WORD_COUNTS:
+        return None
+    try:
+        resolved = resolve_model(chosen)
+        _ = resolved.config  # refuses a folder without config.json: no transformer, so no tokenizer to count with
+    except HarnessError as err:
+        raise sweep_error_at(path, ["datasets", index, "length_tokenizer"], str(err)) from None
+    return resolved
+
+
+def length_tokenizer_setting(prepared: PreparedSweep, dataset: str) -> Optional[str]:
+    """What a one-model sweep must write as the dataset's ``length_tokenizer`` to balance exactly as this sweep
+    did (None where the dataset does not balance by a tokenizer): the model's name, or its folder when the
+    name alone would not find the same revision, or "words"."""
+    if dataset not in prepared.length_tokenizers:
+        return None
+    spec = next(s for s in prepared.sweep.datasets if dataset_name(s) == dataset)
+    if spec.length_tokenizer is not None:
+        return spec.length_tokenizer
+    model = prepared.length_tokenizers[dataset]
+    if model is None:
+        return WORD_COUNTS
+    first = prepared.sweep.models[0]
+    return str(model.folder) if first.revision is not None else model.name
+
+
+def _loaded(path: Path, sweep: Sweep, tokenizers: dict[str, Optional[ResolvedModel]]) -> dict[str, Corpus]:
     """Load every dataset; a data problem is reported at the sweep entry that names the data.
 
-    Sources that balance lengths measure them with the tokenizer of the sweep's first model.
+    Sources that balance lengths measure them with the tokenizer their entry names (``length_tokenizer``),
+    by default the sweep's first model's.
     """
-    corpora = {}
-    count_tokens = None
+    corpora, counters = {}, {}
     for index, spec in enumerate(sweep.datasets):
-        first = models[sweep.models[0].label]
-        if needs_tokenizer(spec) and count_tokens is None and first.family in ("sentence_transformer", "transformer"):
+        measure = tokenizers.get(dataset_name(spec))
+        if measure is not None and measure.folder not in counters:
             from harness.datasets.card import tokenizer_counter  # imports scikit-learn: only when lengths are balanced
 
-            count_tokens = tokenizer_counter(first.folder)
+            counters[measure.folder] = tokenizer_counter(measure.folder)
+        count_tokens = counters[measure.folder] if measure is not None else None
         try:
             corpora[dataset_name(spec)] = loaded_corpus(spec, count_tokens)
         except HarnessError as err:
@@ -396,13 +440,14 @@ def execute_sweep(
     tracker.show_ranking(parent, sorted({ranking_metric(sweep.rank_by, c.labels is not None) for c in corpora.values()}))
     executor = StageExecutor(corpora, prepared.trials, StageCache(cache_dir) if cache_dir else None, encode_progress)
     params = aligned_params(prepared.trials)
-    if dask_client is not None:
-        from harness.distributed import precompute_on_cluster
-
-        precompute_on_cluster(executor, prepared.trials, dask_client)
     bar = progress(total=len(pending), desc="trials", unit="trial") if progress else None
     results: list[ConfigurationResult] = []
     try:
+        if dask_client is not None:
+            from harness.distributed import precompute_on_cluster
+
+            # Inside the try: whatever the cluster does, the sweep run is closed, never left RUNNING.
+            precompute_on_cluster(executor, prepared.trials, dask_client)
         tracker.log_text(parent, prepared.path.read_text(), "sweep.yaml")
         tracker.log_text(parent, json.dumps(dataset_cards(corpora, prepared.models), indent=2), "dataset_cards.json")
         for configuration in configurations(prepared.trials):

@@ -57,6 +57,7 @@ DESCRIPTIONS: dict[str, str] = {
     "PublicSource.data_dir": "a mirror folder of Parquet files (default: `$HARNESS_DATA_DIR`; see `harness datasets mirror`)",
     "PublicSource.per_class": "keep at most this many texts per class",
     "PublicSource.balance_length": "resample so every class has the same token-length distribution",
+    "PublicSource.length_tokenizer": "with balance_length: the model whose tokenizer measures lengths, or `words` (default: the sweep's first model)",
     "PublicSource.sample": "take a stratified subsample of this many texts",
     "PublicSource.seed": "seeds the cap, the balancing and the subsample",
     # models

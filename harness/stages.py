@@ -49,6 +49,7 @@ class StageExecutor:
         self._variants: dict[str, set] = defaultdict(set)
         self._encode_progress = encode_progress
         self._derived: dict[tuple, Any] = {}
+        self._refused: dict[str, BaseException] = {}  # stage key -> the error a cluster worker raised computing it
         for trial in trials:  # the pooling the chain is computed from, and the trial's own (one forward pass serves both)
             for pool in (trial.stages["pool"], trial.own_stages["pool"]):
                 self._variants[trial.stages["encode"].key].add((trial.layers, pool.settings["pooling"]))
@@ -215,10 +216,18 @@ class StageExecutor:
         self._logged(kind, seconds)
         self._keep(kind, stage.key, array, {"settings": stage.settings, "seconds": seconds, "computed_on": "dask"})
 
+    def refuse(self, trial: Trial, kind: str, error: BaseException) -> None:
+        """Record that computing this stage elsewhere (a cluster worker) raised ``error``: every trial that needs
+        the stage then raises it, and fails as it would have here, without computing it again."""
+        self._refused[trial.stages[kind].key] = error
+        self.work[f"{kind}_failed_on_cluster"] += 1
+
     def _computed(self, trial: Trial, kind: str, counter: str, inputs: Callable[[], tuple],
                   compute: Callable[..., np.ndarray], stage=None) -> np.ndarray:
         """The stage's output; when computed, its inputs are fetched first so that only its own work is timed."""
         stage = stage or trial.stages[kind]
+        if stage.key in self._refused:
+            raise self._refused[stage.key].with_traceback(None)
         if not self._held(kind, stage.key):
             arguments = inputs()
             started = time.perf_counter()

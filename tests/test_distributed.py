@@ -40,3 +40,48 @@ evidence: {{resamples: 100, permutations: 99}}
     for result in remote.results:
         for name in COMPARED:
             assert result.scores[name] == pytest.approx(expected[result.trial.key][name], nan_ok=True), name
+
+
+def test_a_stage_that_fails_on_the_cluster_is_a_failed_trial_and_the_sweep_goes_on(tmp_path, tiny_model_dir,
+                                                                                   overflowing_model_dir):
+    """The second model's float16 vectors overflow to infinity and PCA refuses them: on a LocalCluster as
+    locally, its seed runs are FAILED with the same error, the first model's finish and are ranked, and the
+    sweep run is closed (FAILED), never left RUNNING."""
+    from conftest import finished_runs
+
+    sweep = write_sweep(tmp_path, f"""
+name: distributed_failure
+datasets:
+  - {{source: synthetic, n_texts: 90, n_topics: 3, topic_share: 0.5, seed: 6}}
+models: [{tiny_model_dir}, {overflowing_model_dir}]
+grid:
+  pooling: [mean]
+  reduce:
+    - {{method: pca, n_components: 4}}
+  cluster:
+    - {{method: kmeans, k: labels}}
+  seeds: [0, 1]
+storage_dtype: float16
+evidence: {{resamples: 50, permutations: 19}}
+""")
+    local = run_sweep_file(sweep, tmp_path / "local")
+    remote = run_sweep_file(sweep, tmp_path / "dask", executor="dask")
+    assert remote.work["reduce_failed_on_cluster"] == 1  # one PCA serves both seeds; it failed on a worker
+
+    def outcome(result):
+        return {r.trial.key: (r.status, r.error.splitlines()[0] if r.error else None) for r in result.results}
+
+    assert outcome(remote) == outcome(local)
+    failed = {r.trial.model.name for r in remote.failed}
+    assert failed == {str(overflowing_model_dir)} and len(remote.failed) == 2
+    assert all(r.error.startswith("ValueError: Input X contains infinity") for r in remote.failed)
+    (ranking,) = remote.rankings.values()
+    assert ranking.winner.configuration.trials[0].model.name == str(tiny_model_dir)
+    assert ranking.winner.configuration.metrics["ari"] == pytest.approx(
+        local.rankings["town_requests"].winner.configuration.metrics["ari"])
+
+    client, (parent,), seeds = finished_runs(remote.tracking_uri, "distributed_failure")
+    assert parent.info.status == "FAILED" and parent.data.metrics["n_failed"] == 2
+    assert sorted(s.info.status for s in seeds) == ["FAILED", "FAILED", "FINISHED", "FINISHED"]
+    failed_run = next(s for s in seeds if s.info.status == "FAILED")
+    assert "raised on a Dask worker" in failed_run.data.tags["harness.traceback"]  # the worker's traceback is kept

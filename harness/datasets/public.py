@@ -13,7 +13,7 @@ from typing import Callable, Literal, Optional
 
 import numpy as np
 import pandas as pd
-from pydantic import Field, PositiveInt, ValidationInfo, field_validator
+from pydantic import Field, PositiveInt, ValidationInfo, field_validator, model_validator
 
 from harness._settings import Settings, relative_to_sweep
 from harness.datasets.corpus import Corpus, balanced_length_indices, per_class_indices, stratified_indices
@@ -30,6 +30,9 @@ class PublicSource(Settings):
     data_dir: Optional[Path] = None
     per_class: Optional[PositiveInt] = None
     balance_length: bool = False
+    # Whose tokenizer measures the lengths that balance_length balances: a model name or folder, or "words";
+    # default: the sweep's first model. A citation names it, so that its one-model sweep draws the same texts.
+    length_tokenizer: Optional[str] = Field(None, min_length=1)
     sample: Optional[PositiveInt] = None
     seed: int = 0
 
@@ -42,6 +45,12 @@ class PublicSource(Settings):
         if not resolved.is_dir():
             raise ValueError(f"no such folder: {resolved}")
         return resolved
+
+    @model_validator(mode="after")
+    def _tokenizer_balances(self) -> "PublicSource":
+        if self.length_tokenizer is not None and not self.balance_length:
+            raise ValueError("length_tokenizer applies only with balance_length: true")
+        return self
 
     @property
     def dataset_name(self) -> str:
