@@ -12,7 +12,12 @@ from harness.metrics._external import (
 )
 from harness.metrics._contingency import PairCodes, scores_from_table, scores_from_tables, self_pair_counts
 from harness.metrics._expected_mi import expected_mutual_info
-from harness.metrics._internal import cluster_size_entropy, density_validity, silhouette_cosine
+from harness.metrics._internal import (
+    cluster_size_entropy,
+    density_validity,
+    density_validity_undefined,
+    silhouette_cosine,
+)
 from harness.metrics._length import (
     length_confound_index,
     length_epsilon_squared,
@@ -28,6 +33,7 @@ __all__ = sorted(
         "PairCodes",
         "cluster_size_entropy",
         "density_validity",
+        "density_validity_undefined",
         "length_eta2_pvalue",
         "length_leakage_r2",
         "scores_from_table",
