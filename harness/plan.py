@@ -42,6 +42,14 @@ STAGE_LIBRARIES: dict[str, tuple[str, ...]] = {
     "score": ("scikit-learn", "scipy", "numpy", "pandas", "hdbscan"),
 }
 
+# The version of the score formulas (harness/scoring.py, harness/metrics/, harness/evidence.py). It enters every
+# trial key and configuration key, so a resumed sweep does not reuse the metrics of runs logged under other
+# formulas. Bump it in any change that moves a logged score; tests/test_scores_version.py holds the scores of a
+# small fixed input for this version and fails until it is bumped and they are recorded anew.
+# 2: bootstrap intervals count pairs of distinct texts (ARI) and re-centre AMI, NMI and V; DBCV is NaN on
+#    duplicate points instead of failing the trial.
+SCORES_VERSION = 2
+
 # Settings that cannot change any number a seed run logs, each with the reason. Every other field of the
 # typed settings (the Sweep and everything nested in it) enters the trial key: through the dataset's content
 # (dataset_key), a stage key, or the trial's params. tests/test_trial_key.py walks every field of those
@@ -385,6 +393,7 @@ def trial_identity(trial: Trial) -> dict[str, Any]:
         "own_vectors": trial.own_stages["transform"].key,
         "clustered_vectors": trial.stages["transform"].key,
         "versions": {"harness": __version__, **{kind: library_versions(kind) for kind in ("reduce", "cluster", "score")}},
+        "scores_version": SCORES_VERSION,
     }
 
 

@@ -507,3 +507,25 @@ grid:
     assert len(set(keys)) == len(keys), keys
     monkeypatch.setattr(harness.onnx_backend, "OPSET", harness.onnx_backend.OPSET - 1)
     assert encode_key(", backend: onnx") == keys[-2]  # and the same inputs give the same key
+
+
+def test_the_scores_version_enters_every_trial_and_configuration_key(tmp_path, monkeypatch):
+    # A formula change bumps harness.plan.SCORES_VERSION; the same sweep then plans no trial key or configuration
+    # key it planned before, so resuming reuses no metric logged under the old formulas.
+    import harness.plan
+
+    sweep = write_sweep(tmp_path, """name: versioned
+datasets: [{source: synthetic, n_texts: 80, seed: 1}]
+models: [{name: tfidf, family: lexical, dimensions: 5}]
+grid:
+  pooling: [mean]
+  reduce: [{method: pca, n_components: 3}]
+  cluster: [{method: kmeans, k: labels}]
+  seeds: [0, 1]
+""")
+    before = prepared_sweep(sweep).trials
+    monkeypatch.setattr(harness.plan, "SCORES_VERSION", harness.plan.SCORES_VERSION + 1)
+    after = prepared_sweep(sweep).trials
+    assert len(before) == len(after) == 2
+    assert not {t.key for t in before} & {t.key for t in after}
+    assert not {t.config_key for t in before} & {t.config_key for t in after}
