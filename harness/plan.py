@@ -63,7 +63,9 @@ RESULT_NEUTRAL: dict[str, str] = {
     "EvidenceSettings.level": "as resamples: configuration-level, recomputed on every run",
     "EvidenceSettings.seed": "as resamples: configuration-level, recomputed on every run",
     "ModelSettings.batch_size": "how many texts share a forward pass; padding is masked out, so the vectors agree "
-                                "to float rounding (and the pooled-vector cache holds one of them)",
+                                "to float rounding (measured: within 2 float32 ulps of the scale for every pooling; "
+                                "tests/test_pooling.py checks 1e-5 over batch sizes 1, 2, 3, 7, 32), and the "
+                                "pooled-vector cache holds one of them",
     "FileSource.format": "how the file is parsed; the corpus read is keyed by its content",
     "FileSource.max_chars": "a refusal threshold: a corpus that loads is the same under any value",
 }
