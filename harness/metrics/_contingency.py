@@ -4,9 +4,11 @@ A bootstrap resample of texts is a vector of draw counts; the resampled continge
 table is a weighted bincount over fixed (label, cluster) pair codes, and a block of
 resamples is one bincount over (resample, pair) codes. Every score follows from the
 tables with array arithmetic. The formulas are scikit-learn's (pair-confusion ARI,
-arithmetic-mean NMI and AMI, V-measure with beta = 1); the tests check equality with
-scikit-learn on resampled label arrays and with the per-table implementation this
-replaces (tests/reference_bootstrap.py).
+arithmetic-mean NMI and AMI, V-measure with beta = 1), except that on a bootstrap
+resample ARI leaves out the pairs of two copies of one text (``self_pairs``; see the
+comment in ``scores_from_tables``). The tests check equality with scikit-learn on
+resampled label arrays (ARI where no text repeats, and against explicit pair enumeration
+where texts repeat) and with the plain per-resample reference (tests/reference_bootstrap.py).
 """
 
 from __future__ import annotations
