@@ -57,6 +57,7 @@ def winner_sweep(record: SweepRecord, prepared, trial, name: str, metric: str) -
     """The winning configuration as a sweep: one dataset, one model, one option per axis, the same seeds, and
     the same texts (a dataset that balanced lengths names the tokenizer it balanced with)."""
     from harness.datasets import dataset_name
+    from harness.plan import SINGLE_VECTOR_FAMILIES
     from harness.runner import length_tokenizer_setting
 
     dataset = next(spec for spec in prepared.sweep.datasets if dataset_name(spec) == trial.dataset)
@@ -65,13 +66,17 @@ def winner_sweep(record: SweepRecord, prepared, trial, name: str, metric: str) -
     if tokenizer is not None:
         entry["length_tokenizer"] = tokenizer
     seeds = sorted({t.seed for t in prepared.trials if t.config_key == trial.config_key})
+    # A family with one vector per text (lexical, precomputed) plans its own pooling name (tfidf_svd, precomputed)
+    # for any pooling of the grid, and the grid accepts only registered poolings: cite one the sweep itself gave.
+    single = trial.model.family in SINGLE_VECTOR_FAMILIES
+    pooling = prepared.sweep.grid.pooling[0] if single else trial.pooling
     return {
         "name": name,
         "question": f"Reproduces the winner on dataset '{trial.dataset}' of sweep '{record.name}' (MLflow run {record.run_id}).",
         "datasets": [entry],
         "models": [{"name": trial.model.name, **trial.model.model_dump(mode="json", exclude_defaults=True)}],
         "grid": {
-            "pooling": [trial.pooling],
+            "pooling": [pooling],
             "layers": [trial.layers],
             "transform": [[step.as_params() for step in trial.transform]],
             "normalize": [trial.normalize],

@@ -218,7 +218,7 @@ def _tracking_uri(args: argparse.Namespace) -> str:
 
 
 def _finished_sweep(args: argparse.Namespace):
-    """The sweep run a report or a citation describes, with a plain word on stderr when it is not complete."""
+    """The sweep run a report, a citation or an export describes, with a plain word on stderr when it is not complete."""
     from harness.readback import sweep_record
     from harness.report import run_notes
 
@@ -253,12 +253,12 @@ def command_cite(args: argparse.Namespace) -> int:
 
 
 def command_export(args: argparse.Namespace) -> int:
-    from harness.export import configuration_table, export_format, exported_record, write_table
+    from harness.export import configuration_table, export_format, write_table
 
     _quiet_libraries()
     target = Path(args.to)
     export_format(target)  # a wrong suffix is refused before MLflow is read
-    record = exported_record(_tracking_uri(args), args.sweep, args.run_id)
+    record = _finished_sweep(args)  # the run report and cite describe, with the same warnings
     table = configuration_table(record)
     write_table(table, target)
     print(f"{len(table)} configurations of sweep '{record.name}' (run {record.run_id}), {len(table.columns)} columns "
@@ -386,17 +386,13 @@ def parser() -> argparse.ArgumentParser:
                                   "reproduces it", command_cite)
     cite.add_argument("--dataset", default=None, metavar="NAME", help="only this dataset's winner")
 
-    export = commands.add_parser(
-        "export", help="write one row per configuration of a finished sweep to CSV or Parquet",
-        description="One row per configuration and dataset: the settings as columns, every score of the configuration "
-                    "run (mean over seeds, standard deviation, interval, valid seeds), rank, tie flag, length measures, "
-                    "stage seconds, and the evidence tags.")
-    export.add_argument("sweep", help="the sweep's name (its newest finished run unless --run-id says which)")
-    export.add_argument("--run-id", default=None, metavar="ID", help="a sweep run of this sweep (default: the newest finished one)")
+    export = finished_sweep_command("export", "write one row per configuration of a sweep run to CSV or Parquet "
+                                    "(the run report and cite describe)", command_export)
+    export.description = ("One row per configuration and dataset: the settings as columns, every score of the "
+                          "configuration run (mean over seeds, standard deviation, interval, valid seeds), rank, tie "
+                          "flag, length measures, stage seconds, and the evidence tags; the sweep run's status in "
+                          "every row.")
     export.add_argument("--to", required=True, metavar="FILE", help="the file to write: FILE.csv or FILE.parquet")
-    export.add_argument("--results-dir", default=str(DEFAULT_RESULTS), help="where the MLflow store lives (default: results)")
-    export.add_argument("--tracking-uri", default=None, help="MLflow tracking URI (default: sqlite:///RESULTS_DIR/mlflow.db)")
-    export.set_defaults(handler=command_export)
 
     ui = commands.add_parser("ui", help="start the MLflow UI on the results store and print a link per sweep")
     _add_results_option(ui)

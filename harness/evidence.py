@@ -31,10 +31,13 @@ import numpy as np
 
 from harness._settings import Settings
 from harness.cluster import SEEDED_CLUSTERERS
-from harness.metrics import PairCodes, adjusted_rand, scores_from_tables
+from harness.metrics import PairCodes, adjusted_rand, scores_from_table, scores_from_tables, self_pair_counts
 from harness.reduce import SEEDED_REDUCERS
 
 BOOTSTRAPPED = ("ari", "ami", "nmi", "v_measure")
+# Plug-in information scores, re-centred on the sample's score (see recentred); ARI is not: it counts pairs of
+# distinct texts only (harness/metrics/_contingency.py), which removes the copies' agreement at its source.
+RECENTRED = ("ami", "nmi", "v_measure")
 ROWS_PER_DRAW = 64  # resamples per block; an even number keeps the random stream equal to one (B, n) draw
 SEED_LEVEL_MINIMUM = 3  # fewer seeds than this: intervals and ties cover text sampling only
 SEED_STREAM = 1  # the seed draws use np.random.default_rng([seed, SEED_STREAM]), apart from the text draws
@@ -78,10 +81,29 @@ def seed_weights(n_seeds: int, resamples: int, seed: int) -> np.ndarray:
     return (draws[:, :, None] == np.arange(n_seeds)).sum(axis=1) / n_seeds
 
 
+def recentred(resampled: np.ndarray, estimate: float) -> np.ndarray:
+    """The resample scores shifted by the bootstrap's estimate of their bias, mean(resampled) - estimate.
+
+    A resample of n texts drawn with replacement holds about 0.632 n distinct texts, copies of one text always
+    agree with each other, and a plug-in mutual information is biased upwards by about (R-1)(C-1)/(2N) for an
+    R x C table of N distinct items (Miller 1955, the Miller-Madow correction; from memory). So AMI, NMI and V on
+    resamples sit above the sample's score by a bias of the order of their own spread (measured at chance with
+    N = 150, k = 5: 1.8 standard deviations; N = 2,000, k = 20: 8.4), and the percentile interval can miss the
+    score. There is no pair structure to remove the copies from, so the shift is the bootstrap bias correction
+    (Efron & Tibshirani 1993, An Introduction to the Bootstrap, section 10.2: bias = mean of the replications
+    minus the estimate): it keeps the resamples' spread, which gives the interval its width, and centres them on
+    the sample's score. NaN resamples are left out of the mean.
+    """
+    with np.errstate(all="ignore"):
+        bias = np.nanmean(resampled) - estimate if np.any(np.isfinite(resampled)) else 0.0
+    return resampled - bias if np.isfinite(bias) else resampled
+
+
 def per_seed_resampled_scores(labels_true: np.ndarray, seed_clusterings: list[np.ndarray], *, resamples: int,
                               seed: int) -> dict[str, np.ndarray]:
     """Per bootstrapped score, an array (seeds, resamples): each seed's score on each resample of texts.
 
+    ARI counts pairs of distinct texts only; AMI, NMI and V are re-centred on each seed's score (``recentred``).
     One draw of text indices per block serves every seed; clusterings equal across seeds are scored once.
     """
     distinct: dict[bytes, int] = {}
@@ -89,9 +111,14 @@ def per_seed_resampled_scores(labels_true: np.ndarray, seed_clusterings: list[np
     codes = [PairCodes(labels_true, seed_clusterings[order.index(i)]) for i in range(len(distinct))]
     blocks: list[list[dict[str, np.ndarray]]] = [[] for _ in codes]
     for block in resample_blocks(labels_true.size, resamples, seed):
+        copies = self_pair_counts(block, labels_true.size)
         for i, code in enumerate(codes):
-            blocks[i].append(scores_from_tables(code.resampled_tables(block)))
+            blocks[i].append(scores_from_tables(code.resampled_tables(block), copies))
     scored = [{name: np.concatenate([b[name] for b in seed_blocks]) for name in BOOTSTRAPPED} for seed_blocks in blocks]
+    for code, values in zip(codes, scored):
+        estimate = scores_from_table(code.table())
+        for name in RECENTRED:
+            values[name] = recentred(values[name], estimate[name])
     return {name: np.stack([scored[i][name] for i in order]) for name in BOOTSTRAPPED}
 
 

@@ -1,5 +1,8 @@
-"""One row per configuration of a finished sweep, for a spreadsheet or a notebook (`harness export`).
+"""One row per configuration of a sweep run, for a spreadsheet or a notebook (`harness export`).
 
+The run is the one `harness report` and `harness cite` describe (``harness.readback.sweep_record``): the
+sweep's newest run whatever its status, or the run given by id; a run whose trials failed is exported with
+its status in every row (``sweep_status``) and its failed configurations, as the report lists them.
 The rows are the sweep run's configuration runs as MLflow holds them: the settings (params) as columns,
 then every metric the configuration run carries (each score's mean over seeds, its standard deviation,
 interval, valid seeds, the rank and tie flag, the length measures, the stage seconds), then the
@@ -13,14 +16,12 @@ import math
 import os
 import uuid
 from pathlib import Path
-from typing import Optional
-
 import pandas as pd
 
 from harness.errors import HarnessError
 
 FORMATS = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet"}
-IDENTITY = ("sweep", "sweep_run_id", "dataset", "configuration", "run_id")
+IDENTITY = ("sweep", "sweep_run_id", "sweep_status", "dataset", "configuration", "run_id")
 LEADING_METRICS = ("rank", "tied_with_leader")
 # Tags about the machine or the run's bookkeeping, not about the result.
 SKIPPED_TAGS = frozenset({"harness.kind", "harness.host", "harness.pid", "harness.traceback"})
@@ -30,8 +31,8 @@ def configuration_table(record) -> pd.DataFrame:
     """The configurations of a sweep record (``harness.readback.SweepRecord``), best first within each dataset."""
     rows = []
     for configuration in record.configurations:
-        row = {"sweep": record.name, "sweep_run_id": record.run_id, "dataset": configuration.dataset,
-               "configuration": configuration.name, "run_id": configuration.run_id}
+        row = {"sweep": record.name, "sweep_run_id": record.run_id, "sweep_status": record.status,
+               "dataset": configuration.dataset, "configuration": configuration.name, "run_id": configuration.run_id}
         row.update({f"param.{k}" if k in IDENTITY else k: v for k, v in configuration.params.items() if k != "dataset"})
         row.update({f"metric.{k}" if k in row else k: v for k, v in configuration.metrics.items()})
         row.update({k: v for k, v in configuration.tags.items() if k.startswith("harness.") and k not in SKIPPED_TAGS})
@@ -72,13 +73,3 @@ def write_table(table: pd.DataFrame, path: Path) -> None:
         raise HarnessError(f"--to: cannot write {path}: {err.strerror or err}") from None
     finally:
         temporary.unlink(missing_ok=True)
-
-
-def exported_record(tracking_uri: str, sweep: str, run_id: Optional[str]):
-    """The sweep's newest finished run, or the sweep run ``run_id`` after checking it belongs to ``sweep``."""
-    from harness.readback import sweep_record
-
-    record = sweep_record(tracking_uri, run_id or sweep)
-    if run_id is not None and record.name != sweep:
-        raise HarnessError(f"--run-id {run_id}: that sweep run belongs to sweep '{record.name}', not '{sweep}'")
-    return record

@@ -42,6 +42,14 @@ STAGE_LIBRARIES: dict[str, tuple[str, ...]] = {
     "score": ("scikit-learn", "scipy", "numpy", "pandas", "hdbscan"),
 }
 
+# The version of the score formulas (harness/scoring.py, harness/metrics/, harness/evidence.py). It enters every
+# trial key and configuration key, so a resumed sweep does not reuse the metrics of runs logged under other
+# formulas. Bump it in any change that moves a logged score; tests/test_scores_version.py holds the scores of a
+# small fixed input for this version and fails until it is bumped and they are recorded anew.
+# 2: bootstrap intervals count pairs of distinct texts (ARI) and re-centre AMI, NMI and V; DBCV is NaN on
+#    duplicate points instead of failing the trial.
+SCORES_VERSION = 2
+
 # Settings that cannot change any number a seed run logs, each with the reason. Every other field of the
 # typed settings (the Sweep and everything nested in it) enters the trial key: through the dataset's content
 # (dataset_key), a stage key, or the trial's params. tests/test_trial_key.py walks every field of those
@@ -55,7 +63,9 @@ RESULT_NEUTRAL: dict[str, str] = {
     "EvidenceSettings.level": "as resamples: configuration-level, recomputed on every run",
     "EvidenceSettings.seed": "as resamples: configuration-level, recomputed on every run",
     "ModelSettings.batch_size": "how many texts share a forward pass; padding is masked out, so the vectors agree "
-                                "to float rounding (and the pooled-vector cache holds one of them)",
+                                "to float rounding (measured: within 2 float32 ulps of the scale for every pooling; "
+                                "tests/test_pooling.py checks 1e-5 over batch sizes 1, 2, 3, 7, 32), and the "
+                                "pooled-vector cache holds one of them",
     "FileSource.format": "how the file is parsed; the corpus read is keyed by its content",
     "FileSource.max_chars": "a refusal threshold: a corpus that loads is the same under any value",
 }
@@ -385,6 +395,7 @@ def trial_identity(trial: Trial) -> dict[str, Any]:
         "own_vectors": trial.own_stages["transform"].key,
         "clustered_vectors": trial.stages["transform"].key,
         "versions": {"harness": __version__, **{kind: library_versions(kind) for kind in ("reduce", "cluster", "score")}},
+        "scores_version": SCORES_VERSION,
     }
 
 

@@ -267,9 +267,11 @@ def _file_sha256(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
-def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings) -> tuple[dict[str, float], list[dict], np.ndarray, np.ndarray]:
-    """Compute (or reuse) the trial's stages; score and describe its clustering."""
-    from harness.scoring import described_clusters, label_free_scores, trial_scores
+def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings
+              ) -> tuple[dict[str, float], list[dict], np.ndarray, np.ndarray, dict[str, str]]:
+    """Compute (or reuse) the trial's stages; score and describe its clustering. The last item: tags saying why a
+    score is NaN."""
+    from harness.scoring import described_clusters, label_free_notes, label_free_scores, trial_scores
 
     clusters = executor.clustered(trial)
     counts = executor.token_counts(trial)
@@ -277,6 +279,7 @@ def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings
     # Figures of the trial's own vectors come from its own pooling, also where its clusters are computed from another.
     scores.update(label_free_scores(clusters, counts, executor.pooled(trial, own=True), executor.reduced(trial),
                                     seed=trial.seed, permutations=evidence.permutations, max_points=evidence.max_points))
+    notes = label_free_notes(scores, clusters, executor.reduced(trial), seed=trial.seed, max_points=evidence.max_points)
     scores["length_leakage_r2"] = executor.length_leakage(trial, "transform")
     scores["length_leakage_r2_pooled"] = executor.length_leakage(trial, "pool")
     table, scores["npmi_mean"] = described_clusters(executor.term_counts(trial), clusters, counts, top=evidence.top_terms)
@@ -285,11 +288,11 @@ def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings
     if trial.model.family == "static":
         scores["oov_fraction"] = executor.encode_info(trial).get("oov_fraction", float("nan"))
     scores.update(executor.stage_seconds(trial))
-    return scores, table, clusters, counts
+    return scores, table, clusters, counts, notes
 
 
 def _log_trial(tracker, run_id: str, trial: Trial, corpus: Corpus, scores: dict[str, float], table: list[dict],
-               clusters: np.ndarray, counts: np.ndarray) -> None:
+               clusters: np.ndarray, counts: np.ndarray, notes: dict[str, str]) -> None:
     import matplotlib.pyplot as plt
     import pandas as pd
 
@@ -306,7 +309,7 @@ def _log_trial(tracker, run_id: str, trial: Trial, corpus: Corpus, scores: dict[
         plt.close(figure)
         tracker.log_files(run_id, [assignments, descriptions, plot])
     crash_point("mlflow_write")
-    tracker.log_results(run_id, scores)
+    tracker.log_results(run_id, scores, tags=notes or None)
 
 
 def _trial_tags(trial: Trial, corpus: Corpus) -> dict[str, str]:
@@ -344,8 +347,8 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
             tracker.log_dataset(current, corpus.name, corpus.fingerprint, _source_type(corpus), corpus.source,
                                 {"rows": corpus.n_texts, "classes": corpus.n_classes})
             try:
-                scores, table, clusters, counts = run_trial(executor, trial, corpus, evidence)
-                _log_trial(tracker, current, trial, corpus, scores, table, clusters, counts)
+                scores, table, clusters, counts, notes = run_trial(executor, trial, corpus, evidence)
+                _log_trial(tracker, current, trial, corpus, scores, table, clusters, counts, notes)
                 tracker.end(current, "FINISHED")
                 result.seeds.append(TrialResult(trial, "FINISHED", scores, run_id=current, clusters=clusters))
                 crash_point("between_trials")

@@ -9,6 +9,7 @@ from harness.metrics import (
     cluster_shape,
     cluster_size_entropy,
     density_validity,
+    density_validity_undefined,
     length_eta2_pvalue,
     length_scores,
     noise_aware_scores,
@@ -39,6 +40,16 @@ def label_free_scores(clusters: np.ndarray, token_counts: np.ndarray, pooled: np
         "cluster_size_entropy": cluster_size_entropy(clusters),
         "length_eta2_pvalue": length_eta2_pvalue(lengths, clusters, permutations=permutations, seed=seed),
     }
+
+
+def label_free_notes(scores: dict[str, float], clusters: np.ndarray, reduced: np.ndarray, *, seed: int,
+                     max_points: int) -> dict[str, str]:
+    """Tags saying why a label-free score is NaN (``harness.nan_reason.<score>``), for the seed run."""
+    notes = {}
+    if np.isnan(scores.get("dbcv", 0.0)):
+        reason = density_validity_undefined(reduced, clusters, max_points=max_points, seed=seed)
+        notes["harness.nan_reason.dbcv"] = reason or "the hdbscan package's validity_index gave no value"
+    return notes
 
 
 def described_clusters(terms: TermCounts, clusters: np.ndarray, token_counts: np.ndarray, *, top: int) -> tuple[list[dict], float]:

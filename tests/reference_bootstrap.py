@@ -1,9 +1,15 @@
-"""The per-resample bootstrap of commit 3a07799, frozen here as the reference for the batched one.
+"""A plain per-resample bootstrap, the reference for the batched one (harness/evidence.py).
 
-Kept verbatim (one Python call of ``scores_from_table`` per resample and seed) so that
-tests/test_evidence.py can check the array implementation against it to 1e-12 for the
-same resample indices, and benchmarks/run.py can time one against the other. Not a
-test module (no ``test_`` prefix): nothing here is collected.
+The per-resample loop of commit 3a07799 (one Python call of ``scores_from_table`` per
+resample and seed), brought to the corrected definition of the resample scores and
+written independently of harness/metrics: ARI counts pairs of distinct texts only (a
+text drawn w times contributes w * w ordered pairs of copies, removed from the pair
+counts; with w = 1 for every text this is scikit-learn's ARI), and AMI, NMI and V are
+shifted so that their mean over resamples is the sample's score (the bootstrap bias
+correction). tests/test_evidence.py checks the array implementation against it to 1e-12
+for the same resample indices, and ARI here against explicit pair enumeration;
+benchmarks/run.py times one against the other. Not a test module (no ``test_`` prefix):
+nothing here is collected.
 """
 
 from __future__ import annotations
@@ -42,17 +48,22 @@ def _entropy(counts: np.ndarray, total: float) -> float:
     return float(-(p * np.log(p)).sum())
 
 
-def scores_from_table(table: np.ndarray) -> dict[str, float]:
-    """ARI, AMI, NMI and V-measure of one contingency table (rows: gold labels, columns: clusters)."""
+def scores_from_table(table: np.ndarray, copy_pairs: float | None = None) -> dict[str, float]:
+    """ARI, AMI, NMI and V-measure of one contingency table (rows: gold labels, columns: clusters).
+
+    ``copy_pairs``: ordered pairs of a text with a copy of itself, itself included (the sum of squared draw counts);
+    default: the table's total (every item a distinct text).
+    """
     table = table[table.sum(axis=1) > 0][:, table.sum(axis=0) > 0]
     n = float(table.sum())
+    copies = n if copy_pairs is None else float(copy_pairs)
     rows, cols = table.sum(axis=1), table.sum(axis=0)
 
     sum_squares = float((table ** 2).sum())
-    tp = sum_squares - n
+    tp = sum_squares - copies
     fp = float((cols ** 2).sum()) - sum_squares
     fn = float((rows ** 2).sum()) - sum_squares
-    tn = n * n - fp - fn - sum_squares
+    tn = n * n - copies - tp - fp - fn
     if fn == 0 and fp == 0:
         ari = 1.0
     else:
@@ -88,29 +99,28 @@ def scores_from_table(table: np.ndarray) -> dict[str, float]:
 
 
 BOOTSTRAPPED = ("ari", "ami", "nmi", "v_measure")
+RECENTRED = ("ami", "nmi", "v_measure")
 
 
 def per_resample_scores(labels_true: np.ndarray, clusters: np.ndarray, resamples: int, seed: int) -> dict[str, np.ndarray]:
-    """Each score on each resample of one clustering: one ``scores_from_table`` call per resample."""
+    """Each score on each resample of one clustering: one ``scores_from_table`` call per resample; the information
+    scores then shifted by (their mean over resamples - the sample's score)."""
     n = labels_true.size
     codes = PairCodes(labels_true, clusters)
     out = {name: np.empty(resamples) for name in BOOTSTRAPPED}
     for b, indices in enumerate(resample_indices(n, resamples, seed)):
-        scores = scores_from_table(codes.table(np.bincount(indices, minlength=n).astype(float)))
+        counts = np.bincount(indices, minlength=n).astype(float)
+        scores = scores_from_table(codes.table(counts), copy_pairs=float((counts ** 2).sum()))
         for name in BOOTSTRAPPED:
             out[name][b] = scores[name]
+    sample = scores_from_table(codes.table())
+    for name in RECENTRED:
+        out[name] = out[name] - (np.nanmean(out[name]) - sample[name])
     return out
 
 
 def bootstrap_distributions(labels_true: np.ndarray, seed_clusterings: list[np.ndarray], *, resamples: int,
                             seed: int) -> dict[str, np.ndarray]:
-    """Per bootstrapped score, its value on each resample (mean over the seeds' clusterings), as at 3a07799."""
-    n = labels_true.size
-    codes = [PairCodes(labels_true, clusters) for clusters in seed_clusterings]
-    out = {name: np.empty(resamples) for name in BOOTSTRAPPED}
-    for b, indices in enumerate(resample_indices(n, resamples, seed)):
-        counts = np.bincount(indices, minlength=n).astype(float)
-        per_seed = [scores_from_table(code.table(counts)) for code in codes]
-        for name in BOOTSTRAPPED:
-            out[name][b] = np.mean([scores[name] for scores in per_seed])
-    return out
+    """Per bootstrapped score, its value on each resample: the plain mean over the seeds' clusterings."""
+    per_seed = [per_resample_scores(labels_true, clusters, resamples, seed) for clusters in seed_clusterings]
+    return {name: np.mean([scores[name] for scores in per_seed], axis=0) for name in BOOTSTRAPPED}

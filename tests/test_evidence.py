@@ -46,6 +46,7 @@ from harness.metrics import (
     length_leakage_r2,
     scores_from_table,
     scores_from_tables,
+    self_pair_counts,
     silhouette_cosine,
 )
 
@@ -59,16 +60,57 @@ def _noisy(labels: np.ndarray, share: float, rng) -> np.ndarray:
     return np.where(rng.random(labels.size) < share, rng.integers(0, labels.max() + 1, labels.size), labels)
 
 
+def distinct_pair_ari(labels: np.ndarray, clusters: np.ndarray, texts: np.ndarray) -> float:
+    """ARI by explicit enumeration of the pairs of draws that are two different texts (copies of one text left out).
+
+    The pair-counting form of scikit-learn's adjusted_rand_score (its pair_confusion_matrix):
+    2 (tp tn - fn fp) / ((tp + fn)(fn + tn) + (tp + fp)(fp + tn)), 1.0 when fn = fp = 0.
+    """
+    first, second = np.triu_indices(labels.size, k=1)
+    keep = texts[first] != texts[second]
+    first, second = first[keep], second[keep]
+    same_label, same_cluster = labels[first] == labels[second], clusters[first] == clusters[second]
+    tp = float(np.sum(same_label & same_cluster))
+    fn = float(np.sum(same_label & ~same_cluster))
+    fp = float(np.sum(~same_label & same_cluster))
+    tn = float(np.sum(~same_label & ~same_cluster))
+    if fn == 0 and fp == 0:
+        return 1.0
+    return 2.0 * (tp * tn - fn * fp) / ((tp + fn) * (fn + tn) + (tp + fp) * (fp + tn))
+
+
 def test_bootstrap_interval_equals_scipy_percentile_bootstrap():
-    # Reference: scipy.stats.bootstrap(method="percentile", paired=True) on the same statistic with the same seed;
-    # both draw rng.integers(0, n, (B, n)) from numpy's default generator.
+    # Reference: scipy.stats.bootstrap(method="percentile", paired=True) with the same seed (both draw
+    # rng.integers(0, n, (B, n)) from numpy's default generator), of ARI over pairs of distinct texts computed by
+    # explicit pair enumeration: the text ids travel with the resample, so copies of one text are recognised.
     labels = RNG.integers(0, 4, 300)
     clusters = _noisy(labels, 0.4, RNG)
     ours = percentile_interval(bootstrap_distributions(labels, [clusters], resamples=199, seed=5)["ari"], 0.95)
-    reference = stats.bootstrap((labels, clusters), skm.adjusted_rand_score, paired=True, vectorized=False,
+    reference = stats.bootstrap((labels, clusters, np.arange(300)), distinct_pair_ari, paired=True, vectorized=False,
                                 n_resamples=199, method="percentile", confidence_level=0.95,
                                 random_state=np.random.default_rng(5)).confidence_interval
     assert ours == pytest.approx((reference.low, reference.high), rel=1e-9)
+
+
+CHANCE_CASES = [(n, k) for n in (60, 150, 500, 2000) for k in (2, 5, 12)]
+
+
+@pytest.mark.parametrize("n, k", CHANCE_CASES)
+def test_at_chance_the_interval_covers_the_score_and_the_resamples_centre_on_it(n, k):
+    # The rule: on random partitions (gold and clusters independent, k groups each) the bootstrap of texts must not
+    # move the scores; each score's 95% interval contains the sample's score (scikit-learn's on the arrays) and the
+    # mean over resamples is within a quarter of their standard deviation of it. Before the fix, copies of a text
+    # agreeing with each other moved ARI, AMI, NMI and V up by 1.7 to 8 standard deviations.
+    rng = np.random.default_rng(1000 * n + k)
+    labels, clusters = rng.integers(0, k, n), rng.integers(0, k, n)
+    sample = {"ari": skm.adjusted_rand_score(labels, clusters), "ami": skm.adjusted_mutual_info_score(labels, clusters),
+              "nmi": skm.normalized_mutual_info_score(labels, clusters), "v_measure": skm.v_measure_score(labels, clusters)}
+    distributions = bootstrap_distributions(labels, [clusters], resamples=400, seed=n + k)
+    for name, value in sample.items():
+        low, high = percentile_interval(distributions[name], 0.95)
+        assert low <= value <= high, (name, value, low, high)
+        spread = distributions[name].std()
+        assert abs(distributions[name].mean() - value) <= 0.25 * spread, (name, value, distributions[name].mean(), spread)
 
 
 labelings = st.integers(min_value=2, max_value=80).flatmap(lambda n: st.tuples(
@@ -100,14 +142,13 @@ BATCH_CASES = [  # (texts, gold classes, cluster ids drawn from -1 .. clusters-1
 
 @pytest.mark.parametrize("n, classes, clusters, kept", BATCH_CASES)
 def test_batched_scores_equal_the_per_resample_reference(n, classes, clusters, kept):
-    # Reference: the per-resample implementation of 3a07799 (tests/reference_bootstrap.py), one scores_from_table call
-    # per resample, on the same resample indices (same generator, same seed).
+    # Reference: the plain per-resample implementation (tests/reference_bootstrap.py), one scores_from_table call
+    # per resample, on the same resample indices (same generator, same seed), of the same corrected definition.
     rng = np.random.default_rng(n)
     labels = rng.integers(0, classes, n)
     predicted = np.where(rng.random(n) < kept, labels, rng.integers(-1, clusters, n))
     reference = reference_bootstrap.per_resample_scores(labels, predicted, 120, seed=9)
-    blocks = np.vstack(list(reference_bootstrap.resample_indices(n, 120, 9)))
-    ours = scores_from_tables(PairCodes(labels, predicted).resampled_tables(blocks))
+    ours = bootstrap_distributions(labels, [predicted], resamples=120, seed=9)
     for name in ("ari", "ami", "nmi", "v_measure"):
         np.testing.assert_allclose(ours[name], reference[name], rtol=0, atol=1e-12, err_msg=name)
     mean_of_seeds = reference_bootstrap.bootstrap_distributions(labels, [predicted, labels], resamples=70, seed=4)
@@ -117,19 +158,32 @@ def test_batched_scores_equal_the_per_resample_reference(n, classes, clusters, k
 
 
 def test_batched_scores_equal_scikit_learn_on_resampled_arrays():
-    # Reference: scikit-learn's scores on the label arrays of the first resamples, rebuilt text by text.
+    # Reference: scikit-learn's AMI, NMI and V-measure on the label arrays of the resamples, rebuilt text by text
+    # (before the bootstrap's re-centring, which harness/evidence.py applies afterwards); ARI against pair
+    # enumeration over distinct texts, since scikit-learn counts the pairs of two copies of one text as agreeing.
     rng = np.random.default_rng(3)
     labels = rng.integers(0, 5, 700)
     predicted = np.where(rng.random(700) < 0.5, labels, rng.integers(-1, 8, 700))
     blocks = next(iter(reference_bootstrap.resample_indices(700, 1, 2)))[None]
     blocks = np.vstack([blocks, np.random.default_rng(8).integers(0, 700, (4, 700))])
-    ours = scores_from_tables(PairCodes(labels, predicted).resampled_tables(blocks))
+    ours = scores_from_tables(PairCodes(labels, predicted).resampled_tables(blocks), self_pair_counts(blocks, 700))
     for row, indices in enumerate(blocks):
         a, b = labels[indices], predicted[indices]
-        reference = {"ari": skm.adjusted_rand_score(a, b), "ami": skm.adjusted_mutual_info_score(a, b),
-                     "nmi": skm.normalized_mutual_info_score(a, b), "v_measure": skm.v_measure_score(a, b)}
+        reference = {"ami": skm.adjusted_mutual_info_score(a, b), "nmi": skm.normalized_mutual_info_score(a, b),
+                     "v_measure": skm.v_measure_score(a, b), "ari": distinct_pair_ari(a, b, indices)}
         for name, value in reference.items():
             assert ours[name][row] == pytest.approx(value, abs=1e-12), name
+
+
+@pytest.mark.parametrize("n, k, drawn", [(40, 2, 20), (200, 5, 150), (700, 8, 699), (300, 30, 100)])
+def test_distinct_pair_ari_is_scikit_learn_where_no_text_repeats(n, k, drawn):
+    # Reference: scikit-learn's adjusted_rand_score on a draw without replacement (no text twice), where counting
+    # pairs of distinct texts is its own definition; and the same draw given as a 0/1 weighted table.
+    rng = np.random.default_rng(n + k)
+    labels, predicted = rng.integers(0, k, n), np.where(rng.random(n) < 0.5, 0, rng.integers(0, k, n))
+    indices = rng.choice(n, size=drawn, replace=False)[None]
+    ours = scores_from_tables(PairCodes(labels, predicted).resampled_tables(indices), self_pair_counts(indices, n))
+    assert ours["ari"][0] == pytest.approx(skm.adjusted_rand_score(labels[indices[0]], predicted[indices[0]]), abs=1e-12)
 
 
 margins = st.lists(st.lists(st.integers(0, 40), min_size=1, max_size=6), min_size=1, max_size=6).filter(
@@ -329,14 +383,15 @@ def test_every_seed_of_a_resample_sees_the_same_texts():
 
 
 def test_two_seed_interval_equals_scipy_paired_bootstrap_of_the_seed_mean():
-    # Reference: scipy.stats.bootstrap((labels, seed 1, seed 2), paired=True, method="percentile") of the mean ARI over
-    # the two seeds, same generator and seed: the texts-only bootstrap (fewer than 3 seeds) draws the same indices for
-    # both seeds, as scipy's paired resampling does.
+    # Reference: scipy.stats.bootstrap((labels, seed 1, seed 2, text ids), paired=True, method="percentile") of the
+    # mean over the two seeds of ARI over pairs of distinct texts (explicit enumeration), same generator and seed: the
+    # texts-only bootstrap (fewer than 3 seeds) draws the same indices for both seeds, as scipy's paired resampling does.
     labels = RNG.integers(0, 4, 250)
     first, second = _noisy(labels, 0.3, np.random.default_rng(1)), _noisy(labels, 0.6, np.random.default_rng(2))
     ours = percentile_interval(bootstrap_distributions(labels, [first, second], resamples=199, seed=5)["ari"])
     reference = stats.bootstrap(
-        (labels, first, second), lambda y, a, b: (skm.adjusted_rand_score(y, a) + skm.adjusted_rand_score(y, b)) / 2,
+        (labels, first, second, np.arange(250)),
+        lambda y, a, b, t: (distinct_pair_ari(y, a, t) + distinct_pair_ari(y, b, t)) / 2,
         paired=True, vectorized=False, n_resamples=199, method="percentile", confidence_level=0.95,
         random_state=np.random.default_rng(5)).confidence_interval
     assert ours == pytest.approx((reference.low, reference.high), rel=1e-9)
@@ -344,15 +399,18 @@ def test_two_seed_interval_equals_scipy_paired_bootstrap_of_the_seed_mean():
 
 def test_the_seed_draws_leave_the_text_draws_equal_to_scipy():
     # Reference: scipy.stats.bootstrap on one clustering. Three identical seeds take the two-level path (seeds are
-    # resampled), yet the distribution must equal scipy's: the seed draws have a stream of their own.
+    # resampled), yet the distribution must equal scipy's: the seed draws have a stream of their own. scipy's
+    # resampled AMI (scikit-learn's on the drawn arrays) is shifted by its bootstrap bias, mean - sample AMI
+    # (Efron & Tibshirani 1993, section 10.2), as harness/evidence.py re-centres the information scores.
     labels = RNG.integers(0, 3, 200)
     clusters = _noisy(labels, 0.5, np.random.default_rng(6))
     copies = [clusters, clusters + 10, clusters + 20]  # one partition, three id sets: scored as three seeds
-    ours = percentile_interval(bootstrap_distributions(labels, copies, resamples=199, seed=8)["ami"])
-    reference = stats.bootstrap((labels, clusters), skm.adjusted_mutual_info_score, paired=True, vectorized=False,
-                                n_resamples=199, method="percentile", confidence_level=0.95,
-                                random_state=np.random.default_rng(8)).confidence_interval
-    assert ours == pytest.approx((reference.low, reference.high), rel=1e-9)
+    ours = bootstrap_distributions(labels, copies, resamples=199, seed=8)["ami"]
+    drawn = stats.bootstrap((labels, clusters), skm.adjusted_mutual_info_score, paired=True, vectorized=False,
+                            n_resamples=199, method="percentile", confidence_level=0.95,
+                            random_state=np.random.default_rng(8)).bootstrap_distribution
+    reference = drawn - (drawn.mean() - skm.adjusted_mutual_info_score(labels, clusters))
+    np.testing.assert_allclose(ours, reference, rtol=0, atol=1e-9)
 
 
 def test_configurations_are_resampled_on_the_same_seed_and_text_draws():

@@ -236,3 +236,59 @@ def test_renaming_cluster_ids_changes_no_score(case):
     after = trial_scores(noise_kept, lengths, labels)
     for name, value in before.items():
         assert after[name] == pytest.approx(value, abs=1e-9, nan_ok=True), name
+
+
+def _duplicated_vectors(seed: int, width: int = 384) -> tuple[np.ndarray, np.ndarray]:
+    """80 random vectors, each twice (texts that occur twice in a corpus), and clusters that give both copies the
+    same id: the hdbscan package's validity_index fails its spanning-tree assertion on these."""
+    rng = np.random.default_rng(seed)
+    base = rng.normal(size=(80, width)).astype(np.float32) * 10
+    return np.vstack([base, base]).astype(np.float64), np.tile(rng.integers(0, 3, 80), 2)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_dbcv_of_identical_points_is_nan_with_its_reason(seed):
+    # Reference: the hdbscan package itself raises on this input (its AssertionError is the bug), and DBCV is
+    # undefined for identical points (Moulavi et al. 2014, the all-points core distance; scikit-learn pull request
+    # 28244 refuses identical points). The same vectors without the copies keep a finite value.
+    from hdbscan.validity import validity_index
+
+    from harness.metrics import density_validity, density_validity_undefined
+
+    vectors, clusters = _duplicated_vectors(seed)
+    with pytest.raises(AssertionError):
+        validity_index(vectors, clusters)
+    assert math.isnan(density_validity(vectors, clusters))
+    assert "identical points" in density_validity_undefined(vectors, clusters)
+    assert density_validity_undefined(vectors[:80], clusters[:80]) == ""
+    assert math.isfinite(density_validity(vectors[:80], clusters[:80]))
+
+
+def test_a_trial_on_duplicate_vectors_finishes_with_dbcv_nan_and_its_reason(tmp_path):
+    # A real sweep on the user's own vectors (family precomputed) in which every text's vector occurs twice: the
+    # trial must finish, log every other score, and say on the seed run why DBCV is NaN.
+    from harness.runner import run_sweep_file
+
+    from conftest import finished_runs, write_sweep
+
+    vectors, _ = _duplicated_vectors(0)
+    np.save(tmp_path / "v.npy", vectors.astype(np.float32))
+    sweep = write_sweep(tmp_path, """name: duplicates
+datasets: [{source: synthetic, n_texts: 160, topic_share: 0.4, seed: 4}]
+models: [{name: mine, family: precomputed, vectors: v.npy}]
+grid:
+  pooling: [mean]
+  normalize: [none]
+  reduce: [{method: none}]
+  cluster: [{method: kmeans, k: labels}]
+evidence: {resamples: 20, permutations: 19}
+""")
+    result = run_sweep_file(sweep, tmp_path / "results")
+    assert not result.failed, [f.error for f in result.failed]
+    _, _, trials = finished_runs(f"sqlite:///{tmp_path / 'results' / 'mlflow.db'}", "duplicates")
+    (trial,) = trials
+    metrics = trial.data.metrics
+    assert math.isnan(metrics["dbcv"])
+    assert "identical points" in trial.data.tags["harness.nan_reason.dbcv"]
+    for name in ("ari", "ami", "nmi", "v_measure", "silhouette", "cluster_size_entropy", "length_eta2_clusters"):
+        assert math.isfinite(metrics[name]), name

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import html
 import os
+import re
 import shutil
 import signal
 import subprocess
@@ -11,6 +12,7 @@ import sys
 from html.parser import HTMLParser
 from pathlib import Path
 
+import pandas as pd
 import pytest
 import yaml
 
@@ -235,6 +237,27 @@ def test_report_and_cite_describe_the_newest_run_and_say_that_trials_failed(reru
     card = (results / "reports" / "rerun" / "winner.md").read_text()
     assert "**This run is not complete.**" in card and "2 of 4 trials of this run FAILED" in card
     assert f"sweep run `{second.parent_run_id}` (status FAILED)" in card
+
+
+def test_report_cite_and_export_describe_the_same_run_when_the_newest_failed(rerun_with_a_failure, capsys):
+    # The three readers of a sweep choose its run one way: the newest, whatever its status, with the failed-trial
+    # note on stderr; the exported rows name that run and its status, and hold its failed configuration.
+    results, first, second = rerun_with_a_failure
+    described = {}
+    for command in (["report", "rerun", "--no-map"], ["cite", "rerun"], ["export", "rerun", "--to", str(results / "rerun.csv")]):
+        assert main(command + ["--results-dir", str(results)]) == 0, command
+        out, err = capsys.readouterr()
+        assert "warning: 2 of 4 trials of this run FAILED" in err, command
+        described[command[0]] = re.findall(r"sweep run (\w+) of 'rerun' \(status (\w+)\)", out)
+    assert described["report"] == described["cite"] == described["export"] == [(second.parent_run_id, "FAILED")]
+    table = pd.read_csv(results / "rerun.csv")
+    assert set(table["sweep_run_id"]) == {second.parent_run_id} and set(table["sweep_status"]) == {"FAILED"}
+    assert set(table["run_id"]) == {c.run_id for c in second.configurations}
+    # --run-id alone, as report takes it: the older, finished run.
+    assert main(["export", "--run-id", first.parent_run_id, "--to", str(results / "first.csv"),
+                 "--results-dir", str(results)]) == 0
+    assert f"sweep run {first.parent_run_id} of 'rerun' (status FINISHED)" in capsys.readouterr().out
+    assert set(pd.read_csv(results / "first.csv")["sweep_status"]) == {"FINISHED"}
 
 
 def test_run_id_picks_an_older_run_and_bad_ids_are_one_line_errors(rerun_with_a_failure, capsys):

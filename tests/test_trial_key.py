@@ -507,3 +507,51 @@ grid:
     assert len(set(keys)) == len(keys), keys
     monkeypatch.setattr(harness.onnx_backend, "OPSET", harness.onnx_backend.OPSET - 1)
     assert encode_key(", backend: onnx") == keys[-2]  # and the same inputs give the same key
+
+
+def test_the_scores_version_enters_every_trial_and_configuration_key(tmp_path, monkeypatch):
+    # A formula change bumps harness.plan.SCORES_VERSION; the same sweep then plans no trial key or configuration
+    # key it planned before, so resuming reuses no metric logged under the old formulas.
+    import harness.plan
+
+    sweep = write_sweep(tmp_path, """name: versioned
+datasets: [{source: synthetic, n_texts: 80, seed: 1}]
+models: [{name: tfidf, family: lexical, dimensions: 5}]
+grid:
+  pooling: [mean]
+  reduce: [{method: pca, n_components: 3}]
+  cluster: [{method: kmeans, k: labels}]
+  seeds: [0, 1]
+""")
+    before = prepared_sweep(sweep).trials
+    monkeypatch.setattr(harness.plan, "SCORES_VERSION", harness.plan.SCORES_VERSION + 1)
+    after = prepared_sweep(sweep).trials
+    assert len(before) == len(after) == 2
+    assert not {t.key for t in before} & {t.key for t in after}
+    assert not {t.config_key for t in before} & {t.config_key for t in after}
+
+
+def test_the_cited_winner_sweep_plans_the_winner_for_every_model_family(tmp_path, resources):
+    # For every base sweep (together they hold every family of MODEL_FAMILIES, both precomputed file kinds), the
+    # one-configuration sweep `harness cite` writes for a trial must parse and plan exactly that trial: the same
+    # trial key and configuration key.
+    from harness.cite import winner_sweep
+    from harness.readback import SweepRecord
+
+    record = SweepRecord(tracking_uri="sqlite:///unused.db", experiment="hermetic", run_id="0" * 32, tags={},
+                         params={}, sweep_text="", cards={}, configurations=[])
+    covered = set()
+    for i, data in enumerate(_base_sweeps(resources)):
+        path = tmp_path / f"base{i}.yaml"
+        path.write_text(yaml.safe_dump(data))
+        prepared = prepared_sweep(path)
+        (trial,) = prepared.trials
+        cited = tmp_path / f"winner{i}.yaml"
+        cited.write_text(yaml.safe_dump(winner_sweep(record, prepared, trial, "hermetic-winner", "ari"), sort_keys=False))
+        try:
+            (planned,) = prepared_sweep(cited).trials
+        except (HarnessError, ValidationError) as err:
+            pytest.fail(f"family {trial.model.family}: the cited winner sweep does not parse or plan: {err}")
+        assert (planned.key, planned.config_key) == (trial.key, trial.config_key), trial.model.family
+        covered.add(trial.model.family)
+    assert covered == set(MODEL_FAMILIES)

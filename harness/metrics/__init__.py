@@ -10,9 +10,14 @@ from harness.metrics._external import (
     noise_aware_scores,
     normalized_mutual_info,
 )
-from harness.metrics._contingency import PairCodes, scores_from_table, scores_from_tables
+from harness.metrics._contingency import PairCodes, scores_from_table, scores_from_tables, self_pair_counts
 from harness.metrics._expected_mi import expected_mutual_info
-from harness.metrics._internal import cluster_size_entropy, density_validity, silhouette_cosine
+from harness.metrics._internal import (
+    cluster_size_entropy,
+    density_validity,
+    density_validity_undefined,
+    silhouette_cosine,
+)
 from harness.metrics._length import (
     length_confound_index,
     length_epsilon_squared,
@@ -28,10 +33,12 @@ __all__ = sorted(
         "PairCodes",
         "cluster_size_entropy",
         "density_validity",
+        "density_validity_undefined",
         "length_eta2_pvalue",
         "length_leakage_r2",
         "scores_from_table",
         "scores_from_tables",
+        "self_pair_counts",
         "expected_mutual_info",
         "silhouette_cosine",
         "adjusted_mutual_info",

@@ -40,23 +40,60 @@ def silhouette_cosine(vectors: np.ndarray, clusters: np.ndarray, *, max_points: 
     return float(silhouette_score(vectors[rows], clusters[rows], metric="cosine"))
 
 
+def _dbcv_sample(clusters: np.ndarray, max_points: int, seed: int) -> np.ndarray:
+    """The rows DBCV is computed on: all of them, or a seeded sample of ``max_points``."""
+    rows = np.arange(clusters.size)
+    if rows.size > max_points:
+        rows = np.sort(np.random.default_rng(seed).choice(rows, size=max_points, replace=False))
+    return rows
+
+
+def density_validity_undefined(vectors: np.ndarray, clusters: np.ndarray, *, max_points: int = 5000,
+                               seed: int = 0) -> str:
+    """Why DBCV has no value on this clustering ('' when it has one as far as can be told before computing it).
+
+    Identical clustered points leave it undefined: the all-points core distance averages inverse powers of the
+    distances to the other points of the cluster (Moulavi et al. 2014, Density-Based Clustering Validation, SDM,
+    definition 1), infinite at distance 0, and two identical points in different clusters separate them by 0.
+    scikit-learn's proposed DBCV refuses identical points for this reason (scikit-learn pull request 28244); the
+    hdbscan package skips zero distances, and on high-dimensional data its spanning-tree check then fails with an
+    AssertionError, because the rounding of the distances of duplicates differs by direction.
+    """
+    (clusters,) = check_same_length(clusters, names=("clusters",))
+    labels = clusters[_dbcv_sample(clusters, max_points, seed)]
+    present, sizes = np.unique(labels[labels != NOISE], return_counts=True)
+    if present.size < 2:
+        return "fewer than 2 clusters"
+    if sizes.min() < 2:
+        return "a cluster of a single point"
+    clustered = np.asarray(vectors)[_dbcv_sample(clusters, max_points, seed)][labels != NOISE]
+    distinct = np.unique(clustered, axis=0).shape[0]
+    if distinct < clustered.shape[0]:
+        return (f"{clustered.shape[0] - distinct} clustered points repeat another's vector exactly; DBCV is undefined "
+                "for identical points (zero distance in the all-points core distance)")
+    return ""
+
+
 def density_validity(vectors: np.ndarray, clusters: np.ndarray, *, max_points: int = 5000, seed: int = 0) -> float:
     """DBCV (the hdbscan package's validity index) on the space that was clustered, noise included.
 
     Sampled to at most ``max_points`` (seeded): the index needs all pairwise distances
-    within clusters. NaN when fewer than 2 clusters are present.
+    within clusters. NaN when fewer than 2 clusters are present, when a cluster has one point, when clustered
+    points are identical (``density_validity_undefined`` says which), and when the hdbscan package's own check
+    fails (an AssertionError in its spanning tree, seen on near-identical points).
     """
     from hdbscan.validity import validity_index
 
     (clusters,) = check_same_length(clusters, names=("clusters",))
-    rows = np.arange(clusters.size)
-    if rows.size > max_points:
-        rows = np.sort(np.random.default_rng(seed).choice(rows, size=max_points, replace=False))
-    labels = clusters[rows]
-    present, sizes = np.unique(labels[labels != NOISE], return_counts=True)
-    if present.size < 2 or sizes.min() < 2:
+    if density_validity_undefined(vectors, clusters, max_points=max_points, seed=seed):
         return float("nan")
+    rows = _dbcv_sample(clusters, max_points, seed)
+    labels = clusters[rows]
+    present = np.unique(labels[labels != NOISE])
     contiguous = np.where(labels == NOISE, NOISE, np.searchsorted(present, labels))  # the index expects ids 0..k-1
-    with np.errstate(divide="ignore", invalid="ignore"):
-        value = validity_index(np.asarray(vectors[rows], dtype=np.float64), contiguous)
+    try:
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            value = validity_index(np.asarray(vectors[rows], dtype=np.float64), contiguous)
+    except AssertionError:
+        return float("nan")
     return float(value)
