@@ -109,17 +109,19 @@ def _images(page: str) -> dict[str, bytes]:
 
 
 def test_the_report_of_a_moved_store_shows_the_map_the_run_computed(moved, capsys):
+    elsewhere, original, result, expected = moved
+    assert main(["report", "moving", "--results-dir", str(elsewhere)]) == 0
+    assert not original.exists()  # nothing was read from, or written to, the folder the run used
+    page = (elsewhere / "reports" / "moving" / "report.html").read_text()
+    images = _images(page)
+    assert {f"cluster-map-d{i}-{dataset}" for i, dataset in enumerate((CLEAR, FAINT))} <= set(images)
+
     from harness.readback import sweep_record
     from harness.report import cluster_map_png
     from harness.reporting import logged_map
 
-    elsewhere, original, result, expected = moved
-    assert main(["report", "moving", "--results-dir", str(elsewhere)]) == 0
-    assert not original.exists()  # nothing was read from, or written to, the folder the run used
 
     record = sweep_record(f"sqlite:///{elsewhere / 'mlflow.db'}", "moving")
-    page = (elsewhere / "reports" / "moving" / "report.html").read_text()
-    images = _images(page)
     for index, dataset in enumerate((CLEAR, FAINT)):
         wanted = expected[dataset]
         winner = next(c for c in record.configurations if c.run_id == wanted["configuration"].run_id)
