@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import subprocess
 from dataclasses import dataclass
 from importlib import metadata
@@ -13,6 +14,7 @@ import yaml
 from harness import __version__
 from harness.errors import HarnessError
 from harness.readback import ConfigurationRecord, SweepRecord
+from harness.tracking import CONFIGURATION_ARTIFACT
 from harness.report import (
     DatasetRanking,
     dataset_rankings,
@@ -53,40 +55,37 @@ def tool_commit() -> str:
     return commit.stdout.strip() + ("-dirty" if dirty.stdout.strip() else "")
 
 
-def winner_sweep(record: SweepRecord, prepared, trial, name: str, metric: str) -> dict[str, Any]:
-    """The winning configuration as a sweep: one dataset, one model, one option per axis, the same seeds, and
-    the same texts (a dataset that balanced lengths names the tokenizer it balanced with)."""
-    from harness.datasets import dataset_name
-    from harness.plan import SINGLE_VECTOR_FAMILIES
-    from harness.runner import length_tokenizer_setting
+def logged_configuration(record: SweepRecord, configuration: ConfigurationRecord) -> dict[str, Any]:
+    """The configuration's settings as the run logged them (``configuration.json``: a one-configuration sweep,
+    resolved at run time); a one-line error where the run logged none or it is unreadable."""
+    text = record.artifact_text(configuration.run_id, CONFIGURATION_ARTIFACT)
+    if text is None:
+        raise HarnessError(f"sweep '{record.name}': configuration run {configuration.run_id} has no {CONFIGURATION_ARTIFACT} "
+                           "(runs made before harness logged each configuration's settings have none); a citation needs "
+                           "the exact settings: run the sweep again, finished trials are reused")
+    try:
+        settings = json.loads(text)
+    except ValueError:
+        settings = None
+    if not isinstance(settings, dict) or not all(key in settings for key in CONFIGURATION_KEYS):
+        raise HarnessError(f"sweep '{record.name}': {CONFIGURATION_ARTIFACT} of configuration run {configuration.run_id}: "
+                           f"expected a JSON object with the keys {', '.join(CONFIGURATION_KEYS)}")
+    return settings
 
-    dataset = next(spec for spec in prepared.sweep.datasets if dataset_name(spec) == trial.dataset)
-    entry = {k: v for k, v in dataset.as_params().items() if v is not None}
-    tokenizer = length_tokenizer_setting(prepared, trial.dataset)
-    if tokenizer is not None:
-        entry["length_tokenizer"] = tokenizer
-    seeds = sorted({t.seed for t in prepared.trials if t.config_key == trial.config_key})
-    # A family with one vector per text (lexical, precomputed) plans its own pooling name (tfidf_svd, precomputed)
-    # for any pooling of the grid, and the grid accepts only registered poolings: cite one the sweep itself gave.
-    single = trial.model.family in SINGLE_VECTOR_FAMILIES
-    pooling = prepared.sweep.grid.pooling[0] if single else trial.pooling
+
+CONFIGURATION_KEYS = ("datasets", "models", "grid", "rank_by", "evidence", "storage_dtype")
+
+
+def winner_sweep(record: SweepRecord, ranking: DatasetRanking, name: str) -> dict[str, Any]:
+    """The winning configuration as a sweep: one dataset, one model, one option per axis, the same seeds, and
+    the same texts (a dataset that balanced lengths names the tokenizer it was balanced with), all as the run
+    logged them."""
+    settings = logged_configuration(record, ranking.winner)
     return {
         "name": name,
-        "question": f"Reproduces the winner on dataset '{trial.dataset}' of sweep '{record.name}' (MLflow run {record.run_id}).",
-        "datasets": [entry],
-        "models": [{"name": trial.model.name, **trial.model.model_dump(mode="json", exclude_defaults=True)}],
-        "grid": {
-            "pooling": [pooling],
-            "layers": [trial.layers],
-            "transform": [[step.as_params() for step in trial.transform]],
-            "normalize": [trial.normalize],
-            "reduce": [trial.reducer.as_params()],
-            "cluster": [trial.clusterer.as_params()],
-            "seeds": seeds,
-        },
-        "rank_by": prepared.sweep.rank_by or metric,
-        "evidence": prepared.sweep.evidence.as_params(),
-        "storage_dtype": prepared.sweep.storage_dtype,
+        "question": f"Reproduces the winner on dataset '{ranking.dataset}' of sweep '{record.name}' (MLflow run {record.run_id}).",
+        **{key: settings[key] for key in CONFIGURATION_KEYS},
+        "rank_by": settings["rank_by"] or ranking.metric,
     }
 
 
@@ -172,7 +171,7 @@ class Citation:
 def write_citations(record: SweepRecord, reports_dir: Path, results_dir: Path, dataset: Optional[str] = None) -> list[Citation]:
     """One card per dataset (the winner of each), or only ``dataset``'s. With one dataset the files are
     winner.yaml and winner.md; with several, winner-DATASET.yaml and winner-DATASET.md."""
-    from harness.reporting import report_folder, winner_trial
+    from harness.reporting import report_folder
 
     rankings = dataset_rankings(record)
     if dataset is not None:
@@ -186,22 +185,21 @@ def write_citations(record: SweepRecord, reports_dir: Path, results_dir: Path, d
         raise HarnessError(f"sweep '{record.name}': no configuration finished on {where}; nothing to cite")
     several = len(record.datasets) > 1
     suffixes = {name: f"-{safe}" for name, safe in distinct_safe_names(record.datasets).items()} if several else {}
+    # Every card's settings first: a run that logged none is refused before anything is written.
+    sweeps = {ranking.dataset: winner_sweep(record, ranking, f"{safe_name(record.name, 'sweep')}-winner"
+                                             f"{suffixes.get(ranking.dataset, '')}") for ranking in cited}
     folder = report_folder(reports_dir, record)
     folder.mkdir(parents=True, exist_ok=True)
     citations = []
     for ranking in cited:
-        prepared, trial = winner_trial(record, ranking.winner)
-        if trial is None:
-            raise HarnessError(f"sweep '{record.name}': the sweep file {record.tags.get('harness.sweep_path')} is gone or "
-                               "changed since the run; a citation needs the exact settings")
         suffix = suffixes.get(ranking.dataset, "")
-        sweep = winner_sweep(record, prepared, trial, f"{safe_name(record.name, 'sweep')}-winner{suffix}", ranking.metric)
+        sweep = sweeps[ranking.dataset]
         sweep_file = folder / f"winner{suffix}.yaml"
         sweep_file.write_text(yaml.safe_dump(sweep, sort_keys=False))
         command = f"harness run {sweep_file.resolve()} --results-dir {results_dir.resolve()}"
         card = folder / f"winner{suffix}.md"
         card.write_text(citation_markdown(record, ranking, command))
-        record.client.log_artifact(record.run_id, str(sweep_file), "citation")
-        record.client.log_artifact(record.run_id, str(card), "citation")
+        record.log_artifact(record.run_id, sweep_file, "citation")
+        record.log_artifact(record.run_id, card, "citation")
         citations.append(Citation(ranking.dataset, sweep_file, card, command))
     return citations

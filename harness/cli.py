@@ -105,7 +105,7 @@ def command_run(args: argparse.Namespace) -> int:
         args.sweep, Path(args.results_dir), args.tracking_uri,
         cache_dir=Path(args.cache_dir) if args.cache_dir else None, use_cache=not args.no_cache,
         resume=not args.rerun_finished, progress=progress, encode_progress=encode_progress,
-        executor=args.executor, scheduler=args.scheduler,
+        executor=args.executor, scheduler=args.scheduler, winner_map=not args.no_map,
     )
     for ranking in result.rankings.values():
         print(table(ranking))
@@ -336,6 +336,8 @@ def parser() -> argparse.ArgumentParser:
     run.add_argument("--rerun-finished", action="store_true",
                      help="run trials again even where the experiment has a FINISHED run with the same key")
     run.add_argument("--no-progress", action="store_true", help="no progress bars")
+    run.add_argument("--no-map", action="store_true",
+                     help="do not compute the 2-D map of each dataset's winner at the end (the report then has none)")
     run.add_argument("--executor", choices=("local", "dask"), default="local",
                      help="where reductions and clusterings run: local, this process (the default), or dask, a Dask cluster")
     run.add_argument("--scheduler", default=None, metavar="tcp://HOST:PORT",

@@ -7,6 +7,7 @@ import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Optional
+from urllib.parse import unquote, urlparse
 
 import pandas as pd
 
@@ -42,6 +43,39 @@ class UnfinishedTrial:
     error: str
 
 
+def store_folder(tracking_uri: str) -> Optional[Path]:
+    """The folder of a local SQLite store (``sqlite:///PATH``), or None for any other store."""
+    prefix = "sqlite:///"
+    if not tracking_uri.startswith(prefix):
+        return None
+    return Path(unquote(tracking_uri[len(prefix):])).resolve().parent
+
+
+def _local_path(uri: str) -> Optional[Path]:
+    """The local path of a ``file:`` URI or of a plain absolute path; None for any other scheme."""
+    parsed = urlparse(uri)
+    if parsed.scheme == "file":
+        return Path(unquote(parsed.path))
+    if parsed.scheme == "" and uri.startswith("/"):
+        return Path(uri)
+    return None
+
+
+def relocated_artifact_uri(artifact_uri: str, recorded_results_dir: str, folder: Optional[Path]) -> Optional[str]:
+    """Where a run's artifacts lie when its results folder was moved, or None where nothing moved.
+
+    A local store records absolute artifact locations (RESULTS_DIR/artifacts/...). When the store is read from
+    another folder than the results folder the run recorded (``harness.results_dir``), its artifacts are looked
+    for at the same place relative to the store's folder: a results folder copied whole works anywhere. Artifacts
+    outside the recorded results folder, on a server or in object storage are not moved."""
+    if folder is None or not recorded_results_dir:
+        return None
+    path, recorded = _local_path(artifact_uri), Path(recorded_results_dir)
+    if path is None or not path.is_relative_to(recorded) or folder == recorded:
+        return None
+    return (folder / path.relative_to(recorded)).as_uri()
+
+
 @dataclass
 class SweepRecord:
     """A sweep run and everything under it that a report or a citation needs."""
@@ -58,6 +92,7 @@ class SweepRecord:
     status: str = "FINISHED"
     metrics: dict[str, float] = field(default_factory=dict)
     unfinished_trials: list[UnfinishedTrial] = field(default_factory=list)
+    artifact_uris: dict[str, str] = field(default_factory=dict, repr=False)  # run id -> artifact URI as recorded
 
     @property
     def name(self) -> str:
@@ -68,20 +103,55 @@ class SweepRecord:
         """Dataset names in the sweep's order (the cards'), then any others its configurations name."""
         return list(dict.fromkeys([*self.cards, *(c.dataset for c in self.configurations)]))
 
+    def artifact_folder(self, run_id: str) -> Optional[Path]:
+        """The local folder of a run's artifacts where the results folder was moved (see relocated_artifact_uri);
+        None where MLflow's own location stands. The recorded one is kept where the moved one is missing and the
+        recorded one is there (a store copied without its artifacts, next to the original)."""
+        recorded = self.artifact_uris.get(run_id)
+        if recorded is None:
+            recorded = self.client.get_run(run_id).info.artifact_uri
+            self.artifact_uris[run_id] = recorded
+        moved = relocated_artifact_uri(recorded, self.tags.get("harness.results_dir", ""), store_folder(self.tracking_uri))
+        if moved is None:
+            return None
+        moved_path, recorded_path = _local_path(moved), _local_path(recorded)
+        if not moved_path.exists() and recorded_path is not None and recorded_path.exists():
+            return None
+        return moved_path
+
+    def artifact_file(self, run_id: str, name: str, folder: str) -> Path:
+        """A run's artifact as a local file (downloaded into ``folder`` where it is not local); raises if absent."""
+        moved = self.artifact_folder(run_id)
+        if moved is None:
+            return Path(self.client.download_artifacts(run_id, name, folder))
+        path = moved / name
+        if not path.is_file():
+            raise FileNotFoundError(f"{path}: no such artifact")
+        return path
+
     def artifact_table(self, run_id: str, name: str) -> Optional[pd.DataFrame]:
         with tempfile.TemporaryDirectory() as folder:
             try:
-                return pd.read_parquet(self.client.download_artifacts(run_id, name, folder))
+                return pd.read_parquet(self.artifact_file(run_id, name, folder))
             except Exception:  # an artifact that is missing (a failed run) is reported as absent
                 return None
 
+    def artifact_text(self, run_id: str, name: str) -> Optional[str]:
+        with tempfile.TemporaryDirectory() as folder:
+            try:
+                return self.artifact_file(run_id, name, folder).read_text()
+            except Exception:  # absent artifact
+                return None
 
-def _text_artifact(client, run_id: str, name: str) -> Optional[str]:
-    with tempfile.TemporaryDirectory() as folder:
-        try:
-            return Path(client.download_artifacts(run_id, name, folder)).read_text()
-        except Exception:  # absent artifact
-            return None
+    def log_artifact(self, run_id: str, path: Path, artifact_path: Optional[str] = None) -> None:
+        """Log a file to a run, next to the run's other artifacts wherever the results folder now is."""
+        moved = self.artifact_folder(run_id)
+        if moved is None:
+            self.client.log_artifact(run_id, str(path), artifact_path)
+            return
+        from mlflow.store.artifact.local_artifact_repo import LocalArtifactRepository
+
+        LocalArtifactRepository(moved.as_uri()).log_artifact(str(path), artifact_path)
 
 
 def _sweep_run(client, tracking_uri: str, sweep: Optional[str], run_id: Optional[str]):
@@ -123,6 +193,7 @@ def sweep_record(tracking_uri: str, sweep: Optional[str] = None, run_id: Optiona
     parent, experiment = _sweep_run(client, tracking_uri, sweep, run_id)
     children = client.search_runs([experiment.experiment_id], f"tags.`{PARENT_TAG}` = '{parent.info.run_id}'", max_results=5000)
     configurations, unfinished = [], []
+    artifact_uris = {parent.info.run_id: parent.info.artifact_uri}
     for run in children:
         if run.data.tags.get(KIND_TAG) != "configuration":
             continue
@@ -135,6 +206,7 @@ def sweep_record(tracking_uri: str, sweep: Optional[str] = None, run_id: Optiona
         for seed in sorted(seeds, key=lambda s: s.info.start_time):
             newest[seed.data.tags.get("harness.trial_key")] = seed
         seeds = list(newest.values())
+        artifact_uris.update({r.info.run_id: r.info.artifact_uri for r in [run, *seeds]})
         configurations.append(ConfigurationRecord(
             run_id=run.info.run_id, name=run.info.run_name, params=dict(run.data.params), metrics=dict(run.data.metrics),
             tags=dict(run.data.tags), seed_run_ids=[s.info.run_id for s in sorted(seeds, key=lambda s: s.info.start_time)],
@@ -144,10 +216,13 @@ def sweep_record(tracking_uri: str, sweep: Optional[str] = None, run_id: Optiona
             own = client.search_runs([experiment.experiment_id], f"tags.`{PARENT_TAG}` = '{run.info.run_id}'", max_results=1000)
             unfinished += [UnfinishedTrial(seed.info.run_name, seed.info.status, seed.data.tags.get("harness.error", ""))
                            for seed in sorted(own, key=lambda s: s.info.start_time) if seed.info.status != "FINISHED"]
-    cards = _text_artifact(client, parent.info.run_id, "dataset_cards.json")
-    return SweepRecord(
+    record = SweepRecord(
         tracking_uri=tracking_uri, experiment=experiment.name, run_id=parent.info.run_id, tags=dict(parent.data.tags),
-        params=dict(parent.data.params), sweep_text=_text_artifact(client, parent.info.run_id, "sweep.yaml") or "",
-        cards=json.loads(cards) if cards else {}, configurations=configurations, client=client,
+        params=dict(parent.data.params), sweep_text="", cards={}, configurations=configurations, client=client,
         status=parent.info.status, metrics=dict(parent.data.metrics), unfinished_trials=unfinished,
+        artifact_uris=artifact_uris,
     )
+    record.sweep_text = record.artifact_text(parent.info.run_id, "sweep.yaml") or ""
+    cards = record.artifact_text(parent.info.run_id, "dataset_cards.json")
+    record.cards = json.loads(cards) if cards else {}
+    return record

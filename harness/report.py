@@ -375,6 +375,7 @@ class DatasetSection:
     front: list[int] = field(default_factory=list)
     caveats: list[str] = field(default_factory=list)
     images: dict[str, bytes] = field(default_factory=dict)  # element -> PNG
+    missing: dict[str, str] = field(default_factory=dict)  # element -> why it is not shown
     winner_clusters: list[dict] = field(default_factory=list)
 
     @property
@@ -470,7 +471,8 @@ def _html_list(items: list[str], element_id: str, css: str = "") -> str:
 def _html_image(section: DatasetSection, element: str, alt: str) -> str:
     element_id = _e(section.image_name(element))
     if element not in section.images:
-        return f"<p id='{element_id}' class='{_e(element)}'><i>not available: {_e(alt)}</i></p>"
+        why = f": {section.missing[element]}" if element in section.missing else ""
+        return f"<p id='{element_id}' class='{_e(element)}'><i>not available: {_e(alt)}{_e(why)}</i></p>"
     data = base64.b64encode(section.images[element]).decode("ascii")
     return f"<img id='{element_id}' class='{_e(element)}' alt='{_e(alt)}' src='data:image/png;base64,{data}'>"
 
@@ -570,6 +572,8 @@ def render_markdown(content: ReportContent, image_paths: dict[str, str]) -> str:
             name = section.image_name(element)
             if name in image_paths:
                 lines += ["", f"### {title}", "", f"![{title}]({image_paths[name]})"]
+            elif element in section.missing:
+                lines += ["", f"### {title}", "", f"*Not available: {md_text(section.missing[element])}*"]
         lines += ["", "| cluster | size | median tokens | NPMI | distinctive terms |", "|---|---|---|---|---|"]
         lines += ["| " + " | ".join(md_text(cell) for cell in (c.get("cluster"), c.get("size"), _fmt(c.get("median_tokens"), 0),
                                                                _fmt(c.get("npmi"), 2), c.get("top_terms"))) + " |"

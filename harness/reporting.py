@@ -1,12 +1,18 @@
-"""Building a report or a citation card from a finished sweep (the edge: MLflow, cache, files)."""
+"""Building a report from a finished sweep (the edge: it reads the MLflow store, and only the store).
+
+Everything comes from what the run logged: its runs' params, metrics and tags, and artifacts such as each
+seed run's assignments and the winner's 2-D map. No sweep file, corpus, model or stage cache is opened, so
+a copy of the results folder reports the same anywhere."""
 
 from __future__ import annotations
 
-import hashlib
+import json
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Optional
 
 import numpy as np
+import pandas as pd
 
 from harness.errors import HarnessError
 from harness.readback import ConfigurationRecord, SweepRecord
@@ -28,36 +34,57 @@ from harness.report import (
     safe_name,
     section_slug,
 )
+from harness.winner_map import MAP_INFO, MAP_LOGGED, MAP_POINTS, MAP_TAG
 
 
-def winner_trial(record: SweepRecord, configuration: ConfigurationRecord):
-    """The planned trial (first seed) of a configuration, from the sweep file the run recorded, or None."""
-    from harness.runner import prepared_sweep
+@dataclass(frozen=True)
+class LoggedMap:
+    """The winner's 2-D map as the run logged it: one row per text (id, label, cluster, token_count, x, y) and where
+    the points come from, with the legend (cluster -> distinctive terms)."""
 
-    path = Path(record.tags.get("harness.sweep_path", ""))
-    if not path.is_file() or hashlib.sha256(path.read_bytes()).hexdigest() != record.tags.get("harness.sweep_sha256"):
-        return None, None
-    prepared = prepared_sweep(path)
-    trials = [t for t in prepared.trials if t.config_key == configuration.tags.get("harness.config_key")]
-    return (prepared, trials[0]) if trials else (prepared, None)
+    points: pd.DataFrame
+    info: dict
+
+    @property
+    def xy(self) -> np.ndarray:
+        return self.points[["x", "y"]].to_numpy(np.float64)
+
+    @property
+    def clusters(self) -> np.ndarray:
+        return self.points["cluster"].to_numpy(np.int64)
+
+    @property
+    def legend(self) -> dict[int, str]:
+        return {int(cluster): str(terms) for cluster, terms in (self.info.get("legend") or {}).items()}
 
 
-def winner_coordinates(record: SweepRecord, configuration: ConfigurationRecord) -> Optional[np.ndarray]:
-    """2-D UMAP of the winner's pooled vectors (from the stage cache; recomputed if it was pruned)."""
-    from harness.cache import StageCache
-    from harness.reduce import UmapSettings, umap_reduced
-    from harness.runner import loaded_corpora
-    from harness.stages import StageExecutor
+NO_MAP_LOGGED = ("the run logged no map for its winner (runs made before harness computed the map at the end of a "
+                 "run have none; the report does not recompute it): run the sweep again, finished trials are reused")
 
-    prepared, trial = winner_trial(record, configuration)
-    if trial is None:
-        return None
-    cache_dir = record.tags.get("harness.cache_dir") or None
-    corpora = {k: v for k, v in loaded_corpora(prepared).items() if k == trial.dataset}
-    executor = StageExecutor(corpora, [trial], StageCache(Path(cache_dir)) if cache_dir else None)
-    vectors = executor.transformed(trial)
-    settings = UmapSettings(method="umap", n_components=2, n_neighbors=min(15, len(vectors) - 1), metric="cosine")
-    return umap_reduced(np.asarray(vectors, dtype=np.float32), settings, 0)
+
+def logged_map(record: SweepRecord, configuration: ConfigurationRecord) -> tuple[Optional[LoggedMap], str]:
+    """The map the run logged with this configuration run, or None and why there is none. Read from the store only:
+    no sweep file, data, model or cache is opened, and nothing is recomputed."""
+    state = configuration.tags.get(MAP_TAG)
+    if state is not None and state != MAP_LOGGED:
+        return None, f"the run logged no map for its winner ({state})"
+    points = record.artifact_table(configuration.run_id, MAP_POINTS)
+    info_text = record.artifact_text(configuration.run_id, MAP_INFO)
+    if points is None or info_text is None:
+        if state is None:
+            return None, NO_MAP_LOGGED
+        missing = MAP_POINTS if points is None else MAP_INFO
+        return None, f"the run logged a map, but its {missing} cannot be read from the store's artifacts"
+    try:
+        info = json.loads(info_text)
+    except ValueError:
+        return None, f"the run's {MAP_INFO} is not valid JSON"
+    if not isinstance(info, dict):
+        return None, f"the run's {MAP_INFO} is not a JSON object"
+    absent = [column for column in ("x", "y", "cluster") if column not in points.columns]
+    if absent:
+        return None, f"the run's {MAP_POINTS} lacks the column(s) {', '.join(absent)}"
+    return LoggedMap(points, info), ""
 
 
 def dataset_section(record: SweepRecord, ranking: DatasetRanking, slug: str, with_map: bool = True) -> DatasetSection:
@@ -85,12 +112,14 @@ def dataset_section(record: SweepRecord, ranking: DatasetRanking, slug: str, wit
         section.images["length-plot"] = length_png(tables)
     described = record.artifact_table(winner.seed_run_ids[0], "clusters.parquet")
     section.winner_clusters = described.to_dict("records") if described is not None else []
-    if with_map:
-        xy = winner_coordinates(record, winner)
-        assignments = record.artifact_table(winner.seed_run_ids[0], "assignments.parquet")
-        if xy is not None and assignments is not None:
-            legend = {int(r["cluster"]): str(r["top_terms"]) for r in section.winner_clusters}
-            section.images["cluster-map"] = cluster_map_png(xy, assignments["cluster"].to_numpy(), legend)
+    if not with_map:
+        section.missing["cluster-map"] = "left out (harness report --no-map)"
+        return section
+    found, why = logged_map(record, winner)
+    if found is None:
+        section.missing["cluster-map"] = why
+    else:
+        section.images["cluster-map"] = cluster_map_png(found.xy, found.clusters, found.legend)
     return section
 
 
@@ -123,6 +152,6 @@ def write_report(record: SweepRecord, reports_dir: Path, with_map: bool = True) 
             image_paths[name] = f"{name}.png"
     markdown = folder / "report.md"
     markdown.write_text(render_markdown(content, image_paths))
-    record.client.log_artifact(record.run_id, str(page), "report")
-    record.client.log_artifact(record.run_id, str(markdown), "report")
+    record.log_artifact(record.run_id, page, "report")
+    record.log_artifact(record.run_id, markdown, "report")
     return page, markdown

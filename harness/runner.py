@@ -24,7 +24,7 @@ from harness.datasets import Corpus, dataset_name, loaded_corpus, needs_tokenize
 from harness.errors import HarnessError
 from harness.layers import layer_choice_fits, output_width
 from harness.models import ResolvedModel, model_device, resolve_family_model
-from harness.plan import Trial, aligned_params, dataset_key, planned_trials
+from harness.plan import SINGLE_VECTOR_FAMILIES, Trial, aligned_params, dataset_key, planned_trials
 from harness.reduce import reduction_limits
 from harness.transforms import chain_width, transform_limits
 from harness.sweep import (
@@ -166,6 +166,38 @@ def length_tokenizer_setting(prepared: PreparedSweep, dataset: str) -> Optional[
         return WORD_COUNTS
     first = prepared.sweep.models[0]
     return str(model.folder) if first.revision is not None else model.name
+
+
+def configuration_settings(prepared: PreparedSweep, configuration: list[Trial]) -> dict[str, Any]:
+    """Everything a one-configuration sweep needs to run this configuration again, as resolved for this run (paths
+    absolute, the tokenizer a balanced dataset was measured with named): logged with the configuration run, so
+    that a citation needs neither the sweep file nor its data. ``rank_by`` is None where the sweep left the default."""
+    trial = configuration[0]
+    dataset = next(spec for spec in prepared.sweep.datasets if dataset_name(spec) == trial.dataset)
+    entry = {k: v for k, v in dataset.as_params().items() if v is not None}
+    tokenizer = length_tokenizer_setting(prepared, trial.dataset)
+    if tokenizer is not None:
+        entry["length_tokenizer"] = tokenizer
+    # A family with one vector per text (lexical, precomputed) plans its own pooling name (tfidf_svd, precomputed)
+    # for any pooling of the grid, and the grid accepts only registered poolings: name one the sweep itself gave.
+    single = trial.model.family in SINGLE_VECTOR_FAMILIES
+    pooling = prepared.sweep.grid.pooling[0] if single else trial.pooling
+    return {
+        "datasets": [entry],
+        "models": [{"name": trial.model.name, **trial.model.model_dump(mode="json", exclude_defaults=True)}],
+        "grid": {
+            "pooling": [pooling],
+            "layers": [trial.layers],
+            "transform": [[step.as_params() for step in trial.transform]],
+            "normalize": [trial.normalize],
+            "reduce": [trial.reducer.as_params()],
+            "cluster": [trial.clusterer.as_params()],
+            "seeds": sorted({t.seed for t in configuration}),
+        },
+        "rank_by": prepared.sweep.rank_by,
+        "evidence": prepared.sweep.evidence.as_params(),
+        "storage_dtype": prepared.sweep.storage_dtype,
+    }
 
 
 def _loaded(path: Path, sweep: Sweep, tokenizers: dict[str, Optional[ResolvedModel]]) -> dict[str, Corpus]:
@@ -326,9 +358,10 @@ def _trial_tags(trial: Trial, corpus: Corpus) -> dict[str, str]:
 
 
 def _run_configuration(tracker, executor, configuration: list[Trial], done: dict, corpus: Corpus, params: dict,
-                       evidence: EvidenceSettings, parent: str, on_trial) -> ConfigurationResult:
+                       evidence: EvidenceSettings, parent: str, on_trial, settings: dict[str, Any]) -> ConfigurationResult:
     """The seed runs of one configuration under one configuration run, then the evidence over seeds."""
     from harness.evidence import configuration_evidence, seed_free
+    from harness.tracking import CONFIGURATION_ARTIFACT
 
     first = configuration[0]
     config_params = {k: v for k, v in params[first.key].items() if k != "seed"}
@@ -336,6 +369,7 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
     result = ConfigurationResult(trials=configuration, seeds=[], run_id=config_run)
     current: Optional[str] = None
     try:
+        tracker.log_text(config_run, json.dumps(settings, indent=2), CONFIGURATION_ARTIFACT)
         for trial in configuration:
             if trial.key in done:
                 run, clusters = done[trial.key]
@@ -384,6 +418,44 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
     return result
 
 
+def _log_winner_map(tracker, executor, ranking: "Ranking", corpus: Corpus, evidence: EvidenceSettings,
+                    wanted: bool) -> None:
+    """Compute the 2-D map of the dataset's winner from its first seed and log it with the winner's configuration
+    run, so that a report needs nothing but the store. A map that cannot be computed is a tag saying why, never a
+    failed run: the scores stand without it."""
+    from harness.describe import cluster_descriptions
+    from harness.winner_map import (
+        MAP_INFO, MAP_LEFT_OUT, MAP_LOGGED, MAP_POINTS, MAP_TAG, map_coordinates, map_failed, map_info, map_points,
+    )
+
+    winner = ranking.winner
+    if winner is None or not winner.configuration.complete or winner.value != winner.value:
+        return  # no winner: the report has none to map either
+    configuration = winner.configuration
+    if not wanted:
+        tracker.log_results(configuration.run_id, {}, tags={MAP_TAG: MAP_LEFT_OUT})
+        return
+    first = configuration.seeds[0]
+    trial = first.trial
+    try:
+        counts = executor.token_counts(trial)
+        xy = map_coordinates(executor.transformed(trial))
+        descriptions = cluster_descriptions(executor.term_counts(trial), first.clusters, counts, top=evidence.top_terms)
+        info = map_info(dataset=ranking.dataset, configuration=configuration.name, seed_run_id=first.run_id or "",
+                        trial_key=trial.key, seed=trial.seed, n_texts=corpus.n_texts, descriptions=descriptions)
+        with tempfile.TemporaryDirectory() as folder:
+            points = Path(folder) / MAP_POINTS
+            map_points(corpus.ids, corpus.labels, first.clusters, counts, xy).to_parquet(points, index=False)
+            (Path(folder) / MAP_INFO).write_text(json.dumps(info, indent=2))
+            tracker.log_files(configuration.run_id, [points, Path(folder) / MAP_INFO])
+    except (KeyboardInterrupt, SystemExit):
+        raise
+    except Exception as err:
+        tracker.log_results(configuration.run_id, {}, tags={MAP_TAG: map_failed(err)})
+        return
+    tracker.log_results(configuration.run_id, {}, tags={MAP_TAG: MAP_LOGGED})
+
+
 def _reusable_runs(tracker, trials: list[Trial], corpora: dict[str, Corpus]) -> dict[str, tuple[Any, np.ndarray]]:
     """FINISHED runs of these trials with the cluster labels of their own assignments.parquet, by trial key.
 
@@ -415,10 +487,13 @@ def execute_sweep(
     progress: Optional[ProgressFactory] = None,
     encode_progress=None,
     dask_client=None,
+    winner_map: bool = True,
 ) -> SweepResult:
     """Run every trial not already FINISHED in the experiment: sweep run -> configuration runs -> seed runs.
 
-    With a Dask client, the reductions and clusterings are computed on its cluster first.
+    With a Dask client, the reductions and clusterings are computed on its cluster first. At the end, each
+    dataset's winner gets its 2-D map, logged with its configuration run (``winner_map=False``: left out, and
+    the run says so).
     """
     from harness.cache import StageCache
     from harness.leaderboard import rank_configurations, ranking_metric, table as leaderboard_table
@@ -455,12 +530,14 @@ def execute_sweep(
         tracker.log_text(parent, json.dumps(dataset_cards(corpora, prepared.models), indent=2), "dataset_cards.json")
         for configuration in configurations(prepared.trials):
             results.append(_run_configuration(tracker, executor, configuration, done, corpora[configuration[0].dataset],
-                                              params, sweep.evidence, parent, bar.update if bar else (lambda: None)))
+                                              params, sweep.evidence, parent, bar.update if bar else (lambda: None),
+                                              configuration_settings(prepared, configuration)))
         rankings = rank_configurations(results, sweep, corpora)
         for ranking in rankings.values():
             for row in ranking.rows:
                 tracker.log_results(row.configuration.run_id, {"rank": row.rank, "tied_with_leader": float(row.tied)}
                                     if row.tied is not None else {"rank": row.rank}, tags=ranking.tags)
+            _log_winner_map(tracker, executor, ranking, corpora[ranking.dataset], sweep.evidence, winner_map)
         tracker.log_text(parent, "\n\n".join(leaderboard_table(r) for r in rankings.values()), "leaderboard.txt")
         trial_results = [r for c in results for r in c.seeds]
         tracker.log_results(parent, {"n_finished": sum(r.status == "FINISHED" for r in trial_results),
@@ -481,7 +558,7 @@ def execute_sweep(
 def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None = None, *,
                    cache_dir: Optional[Path] = None, use_cache: bool = True, resume: bool = True,
                    progress: Optional[ProgressFactory] = None, encode_progress=None,
-                   executor: str = "local", scheduler: Optional[str] = None) -> SweepResult:
+                   executor: str = "local", scheduler: Optional[str] = None, winner_map: bool = True) -> SweepResult:
     """Everything ``harness run`` does, minus printing. The cache defaults to RESULTS_DIR/cache."""
     from harness.tracking import default_tracking_uri
 
@@ -502,7 +579,7 @@ def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None
         return execute_sweep(
             prepared, corpora, results_dir=results_dir, tracking_uri=tracking_uri or default_tracking_uri(results_dir),
             cache_dir=(cache_dir or results_dir / "cache") if use_cache else None, resume=resume,
-            progress=progress, encode_progress=encode_progress, dask_client=client,
+            progress=progress, encode_progress=encode_progress, dask_client=client, winner_map=winner_map,
         )
     finally:
         if client is not None:

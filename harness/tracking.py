@@ -24,6 +24,8 @@ TRIAL_KEY_TAG = "harness.trial_key"
 HOST_TAG = "harness.host"
 PID_TAG = "harness.pid"
 MAX_TAG_LENGTH = 5000
+# Each configuration run's settings as a one-configuration sweep (resolved at run time): what a citation reruns.
+CONFIGURATION_ARTIFACT = "configuration.json"
 
 
 def _owner_gone(tags: dict[str, str]) -> bool:

@@ -384,14 +384,15 @@ def test_every_field_written_into_the_page_is_escaped():
     section = DatasetSection(
         ranking=DatasetRanking(p("dataset"), p("metric"), [finished, failed]), slug=p("slug"),
         effects={p("axis"): [Effect(p("effect.option"), 0.5, 0.4, 0.6, 2), Effect("other", 0.1, 0.0, 0.2, 2)]},
-        caveats=[p("caveat")], images={"main-effects": b"\x89PNG"},
+        caveats=[p("caveat")], images={"main-effects": b"\x89PNG"}, missing={"cluster-map": p("missing")},
         winner_clusters=[{key: p(f"clusters.{key}") for key in ("cluster", "size", "median_tokens", "npmi", "top_terms")}])
     content = ReportContent(record=record, sections=[section], run_notes=run_notes(record))
     fields = ["configuration.name", "dataset", "metric", "tags.interval_scope", "failed.name", "status", "tracking_uri",
               "experiment", "run_id", "question", "sweep_text", "params.n_trials", "trial.name", "trial.error",
               "cards.name", "cards.rows", "cards.n_classes", "cards.route", "cards.fingerprint",
               "cards.length_eta2_labels", "cards.q50", "record.status", "axis", "effect.option", "caveat",
-              "clusters.cluster", "clusters.size", "clusters.median_tokens", "clusters.npmi", "clusters.top_terms"]
+              "clusters.cluster", "clusters.size", "clusters.median_tokens", "clusters.npmi", "clusters.top_terms",
+              "missing"]
 
     page = render_html(content)
     markup = _Markup()

@@ -7,6 +7,7 @@ import signal
 import subprocess
 import sys
 
+from harness.cli import main
 from harness.runner import run_sweep_file
 
 from conftest import configuration_runs, finished_runs, free_port, wait_healthy, write_sweep
@@ -43,6 +44,15 @@ evidence: {{resamples: 50}}
         assert len(sweeps) == 1 and len(trials) == 2 and len(configuration_runs(uri, "served")) == 2
         assert {a.path for a in client.list_artifacts(trials[0].info.run_id)} >= {"assignments.parquet", "clusters.parquet"}
         assert not (tmp_path / "results" / "mlflow.db").exists()  # nothing went to the local store
+        # The report and the card read the served store only: the winner's map and settings were logged there.
+        winner = result.rankings["town_requests"].winner.configuration
+        assert {a.path for a in client.list_artifacts(winner.run_id)} >= {"configuration.json", "winner_map.json",
+                                                                          "winner_map.parquet"}
+        for command in ("report", "cite"):
+            assert main([command, "served", "--tracking-uri", uri, "--results-dir", str(tmp_path / "results")]) == 0
+        page = (tmp_path / "results" / "reports" / "served" / "report.html").read_text()
+        assert "<img id='cluster-map-" in page
+        assert {a.path for a in client.list_artifacts(sweeps[0].info.run_id, "report")} >= {"report/report.html"}
     finally:
         os.killpg(server.pid, signal.SIGTERM)  # the server and its workers, by the PID we started
         server.wait(30)

@@ -533,21 +533,20 @@ grid:
 
 def test_the_cited_winner_sweep_plans_the_winner_for_every_model_family(tmp_path, resources):
     # For every base sweep (together they hold every family of MODEL_FAMILIES, both precomputed file kinds), the
-    # one-configuration sweep `harness cite` writes for a trial must parse and plan exactly that trial: the same
-    # trial key and configuration key.
-    from harness.cite import winner_sweep
-    from harness.readback import SweepRecord
+    # settings a configuration run logs (configuration.json, from which `harness cite` writes its one-configuration
+    # sweep) must parse and plan exactly that trial: the same trial key and configuration key.
+    from harness.runner import configuration_settings
 
-    record = SweepRecord(tracking_uri="sqlite:///unused.db", experiment="hermetic", run_id="0" * 32, tags={},
-                         params={}, sweep_text="", cards={}, configurations=[])
     covered = set()
     for i, data in enumerate(_base_sweeps(resources)):
         path = tmp_path / f"base{i}.yaml"
         path.write_text(yaml.safe_dump(data))
         prepared = prepared_sweep(path)
         (trial,) = prepared.trials
+        settings = configuration_settings(prepared, [trial])
+        cited_sweep = {"name": "hermetic-winner", **settings, "rank_by": settings["rank_by"] or "ari"}
         cited = tmp_path / f"winner{i}.yaml"
-        cited.write_text(yaml.safe_dump(winner_sweep(record, prepared, trial, "hermetic-winner", "ari"), sort_keys=False))
+        cited.write_text(yaml.safe_dump(cited_sweep, sort_keys=False))
         try:
             (planned,) = prepared_sweep(cited).trials
         except (HarnessError, ValidationError) as err:
