@@ -401,6 +401,30 @@ def _reusable_runs(tracker, trials: list[Trial], corpora: dict[str, Corpus]) -> 
     return reusable
 
 
+def _log_across_verdict(tracker, parent: str, rankings: dict, params: dict, sweep_name: str) -> None:
+    """The across-corpus verdict over the configurations every dataset ran, logged to the sweep run: its
+    numbers as metrics, its best and winner as tags, the whole of it as JSON and its diagram as a PNG.
+    A verdict that cannot be made (fewer than 2 shared configurations) is logged as a tag saying why."""
+    from harness.across_corpora import (
+        DIAGRAM_ARTIFACT, VERDICT_ARTIFACT, gathered_scores, run_metrics, run_tags, scored_from_rankings, verdict_of,
+        verdict_payload, verdict_png,
+    )
+
+    gathered = gathered_scores(scored_from_rankings(rankings, params, sweep_name))
+    try:
+        verdict, note = verdict_of(gathered)
+    except HarnessError as err:
+        tracker.log_results(parent, {}, tags={"harness.across_skipped": str(err)})
+        return
+    payload = verdict_payload(verdict, gathered, note)
+    tracker.log_results(parent, run_metrics(payload), tags=run_tags(payload))
+    tracker.log_text(parent, json.dumps(payload, indent=2), VERDICT_ARTIFACT)
+    with tempfile.TemporaryDirectory() as folder:
+        diagram = Path(folder) / DIAGRAM_ARTIFACT
+        diagram.write_bytes(verdict_png(payload))
+        tracker.log_files(parent, [diagram])
+
+
 def execute_sweep(
     prepared: PreparedSweep,
     corpora: dict[str, Corpus],
@@ -459,6 +483,8 @@ def execute_sweep(
                 tracker.log_results(row.configuration.run_id, {"rank": row.rank, "tied_with_leader": float(row.tied)}
                                     if row.tied is not None else {"rank": row.rank}, tags=ranking.tags)
         tracker.log_text(parent, "\n\n".join(leaderboard_table(r) for r in rankings.values()), "leaderboard.txt")
+        if len(rankings) >= 2:
+            _log_across_verdict(tracker, parent, rankings, params, sweep.name)
         trial_results = [r for c in results for r in c.seeds]
         tracker.log_results(parent, {"n_finished": sum(r.status == "FINISHED" for r in trial_results),
                                      "n_reused": sum(r.status == "REUSED" for r in trial_results),
