@@ -21,6 +21,7 @@ from typing import Optional
 import numpy as np
 
 from harness.across_report import DIAGRAM_NAME as ACROSS_DIAGRAM, AcrossSection, across_html, across_markdown
+from harness.halving_report import halving_html, halving_markdown
 from harness.readback import ConfigurationRecord, SweepRecord
 from harness.sweep import DEFAULT_LABEL_FREE_METRIC, DEFAULT_LABELLED_METRIC
 
@@ -403,6 +404,7 @@ class ReportContent:
     sections: list[DatasetSection]
     run_notes: list[str] = field(default_factory=list)
     across: Optional[AcrossSection] = None  # the across-corpus verdict the run logged (two or more datasets)
+    halving: Optional[dict] = None  # the rounds of a successive-halving search, as the run logged them
 
 
 def section_slug(index: int, dataset: str) -> str:
@@ -539,6 +541,7 @@ th {{ background: #f0f0f0; }} img {{ max-width: 100%; }} code {{ font-size: 12px
 <ul id="winners">{winners}</ul>
 <h2>Datasets</h2><ul id="datasets">{cards}</ul>
 <h2>Grid</h2><pre id="grid">{_e(r.sweep_text)}</pre>
+{halving_html(content.halving)}
 {across_html(content.across)}
 {"".join(_html_section(section) for section in content.sections)}
 </body></html>
@@ -559,6 +562,7 @@ def render_markdown(content: ReportContent, image_paths: dict[str, str]) -> str:
     lines += ["**Winners, one per dataset** (ranked within a dataset, never across datasets):", ""]
     lines += [f"- {md_text(winner_line(section))}" for section in content.sections] + ["", "## Datasets", ""]
     lines += [f"- {md_text(_card_line(name, card))}" for name, card in r.cards.items()]
+    lines += halving_markdown(content.halving)
     lines += across_markdown(content.across, image_paths.get(ACROSS_DIAGRAM))
     for section in content.sections:
         header = [h.format(metric=section.metric) for h in LEADERBOARD_HEADER]

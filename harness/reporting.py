@@ -10,6 +10,7 @@ import numpy as np
 
 from harness.errors import HarnessError
 from harness.across_report import DIAGRAM_NAME as ACROSS_DIAGRAM, AcrossSection
+from harness.halving_report import logged_halving
 from harness.readback import ConfigurationRecord, SweepRecord
 from harness.report import (
     DatasetRanking,
@@ -98,7 +99,8 @@ def dataset_section(record: SweepRecord, ranking: DatasetRanking, slug: str, wit
 def report_content(record: SweepRecord, with_map: bool = True) -> ReportContent:
     sections = [dataset_section(record, ranking, section_slug(i, ranking.dataset), with_map)
                 for i, ranking in enumerate(dataset_rankings(record))]
-    return ReportContent(record=record, sections=sections, run_notes=run_notes(record), across=across_section(record))
+    return ReportContent(record=record, sections=sections, run_notes=run_notes(record), across=across_section(record),
+                         halving=logged_halving(record))
 
 
 def across_section(record: SweepRecord) -> Optional[AcrossSection]:
