@@ -68,6 +68,15 @@ def command_plan(args: argparse.Namespace) -> int:
         print("\nmean and mean_sqrt_len differ by a positive factor per text (under long_texts: truncate, and for static")
         print("vectors without remove_first_component): after l2 normalisation or a cosine UMAP they give the same")
         print("clusters; seed-free stages give the same result for every seed.")
+    search = prepared.sweep.search
+    if search.strategy == "halving":
+        from harness.halving import round_sizes
+
+        print(f"\nsearch: halving (factor {search.factor}); the work above is the full grid's, an upper bound: each round "
+              "runs the survivors of the round before on a nested subsample of")
+        for name, corpus in prepared.corpora.items():
+            print(f"  {name}: " + ", ".join(str(n) for n in round_sizes(corpus.n_texts, search.start_texts, search.factor))
+                  + " texts")
     return 0
 
 

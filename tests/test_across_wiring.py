@@ -145,3 +145,48 @@ def test_a_one_dataset_sweep_logs_no_verdict(tmp_path, tiny_model_dir):
     assert "harness.across_best" not in parents[0].data.tags
     assert main(["report", "single", "--results-dir", str(results), "--no-map"]) == 0
     assert "across-corpora" not in (results / "reports" / "single" / "report.html").read_text()
+
+
+# --- gathering and matching, on plain values ------------------------------------------------------------------
+
+def _scored(dataset, settings, label, value, source="s"):
+    from harness.across_corpora import Scored, configuration_identity
+
+    return Scored(dataset, configuration_identity({"dataset": dataset, **settings}), label, value, "ari", source)
+
+
+def test_configurations_are_matched_by_settings_not_by_name():
+    from harness.across_corpora import gathered_scores
+
+    gathered = gathered_scores([
+        _scored("a", {"pooling": "mean"}, "m/mean", 0.5), _scored("a", {"pooling": "max"}, "m/max", 0.4),
+        # The same settings under another name (another sweep's model label) is the same configuration...
+        _scored("b", {"pooling": "mean"}, "other/mean", 0.3, "t"), _scored("b", {"pooling": "max"}, "other/max", 0.2, "t"),
+        # ...and the same name with other settings is another one, which dataset a lacks.
+        _scored("b", {"pooling": "cls"}, "m/mean", 0.9, "t"),
+    ])
+    assert gathered.scores == {"a": {"m/mean": 0.5, "m/max": 0.4}, "b": {"m/mean": 0.3, "m/max": 0.2, "m/mean [3]": 0.9}}
+    assert gathered.dropped == ["configuration m/mean [3]: not run on dataset a"]
+    assert gathered.settings["m/mean [3]"] == {"pooling": "cls"}
+
+
+def test_a_dataset_met_again_in_another_sweep_is_dropped_not_counted_twice():
+    from harness.across_corpora import gathered_scores
+
+    gathered = gathered_scores([_scored("a", {"p": "1"}, "x", 0.5, "first"), _scored("a", {"p": "1"}, "x", 0.1, "second")])
+    assert gathered.scores == {"a": {"x": 0.5}}
+    assert gathered.dropped == ["dataset a of sweep second: already given by sweep first"]
+
+
+def test_without_baycomp_the_verdict_says_how_to_get_the_bayesian_comparison(monkeypatch):
+    import sys
+
+    from harness.across_corpora import BAYES_HINT, gathered_scores, verdict_of
+
+    rows = [_scored(d, {"p": c}, c, v) for d, values in {"a": (0.5, 0.4, 0.1), "b": (0.6, 0.2, 0.3), "c": (0.9, 0.5, 0.4)}.items()
+            for c, v in zip("xyz", values)]
+    with_bayes, note = verdict_of(gathered_scores(rows))
+    assert note is None and with_bayes.bayesian is not None and with_bayes.bayesian.first == with_bayes.best
+    monkeypatch.setitem(sys.modules, "baycomp", None)  # what an environment without the package sees: ImportError
+    without, note = verdict_of(gathered_scores(rows))
+    assert without.bayesian is None and note == BAYES_HINT and "harness[bayes]" in note
