@@ -23,7 +23,7 @@ DIAGRAM_ARTIFACT = "across_corpora_cd.png"
 DEFAULT_ROPE = 0.01
 BAYES_HINT = "install the optional extra for the Bayesian comparison of the two finalists: pip install 'harness[bayes]'"
 # Params that say where and with which seed a configuration ran, not what it is.
-NOT_CONFIGURATION = frozenset({"dataset", "seed"})
+NOT_CONFIGURATION = frozenset({"dataset", "seed", "round", "round_texts"})  # round: a halving search's
 NOT_APPLICABLE = "n/a"
 
 
