@@ -124,6 +124,12 @@ def command_run(args: argparse.Namespace) -> int:
             print(descriptions_table(winner.configuration.descriptions))
         print()
     print("tie: the paired bootstrap interval of the difference to the leader contains 0 (see README: how to read it)")
+    if result.across is not None:
+        print("\nacross corpora (average ranks over datasets; report: the 'Across corpora' section):")
+        print("\n".join(f"  {line}" for line in result.across["lines"]))
+        if result.across.get("bayes_note"):
+            print(f"  note: {result.across['bayes_note']}")
+        print()
     reused = sum(r.status == "REUSED" for r in result.results)
     work = ", ".join(f"{k} {v}" for k, v in sorted(result.work.items())) or "none"
     print(f"{len(result.results) - reused} trials run, {reused} reused from earlier runs; work done: {work}")

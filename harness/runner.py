@@ -95,6 +95,7 @@ class SweepResult:
     rankings: dict[str, "Ranking"]
     configurations: list[ConfigurationResult] = field(default_factory=list)
     stage_log: list[dict[str, Any]] = field(default_factory=list)
+    across: Optional[dict] = None  # the across-corpus verdict (two or more datasets), as logged
 
     @property
     def failed(self) -> list[TrialResult]:
@@ -427,7 +428,7 @@ def _reusable_runs(tracker, trials: list[Trial], corpora: dict[str, Corpus]) -> 
     return reusable
 
 
-def _log_across_verdict(tracker, parent: str, rankings: dict, params: dict, sweep_name: str) -> None:
+def _log_across_verdict(tracker, parent: str, rankings: dict, params: dict, sweep_name: str) -> Optional[dict]:
     """The across-corpus verdict over the configurations every dataset ran, logged to the sweep run: its
     numbers as metrics, its best and winner as tags, the whole of it as JSON and its diagram as a PNG.
     A verdict that cannot be made (fewer than 2 shared configurations) is logged as a tag saying why."""
@@ -441,7 +442,7 @@ def _log_across_verdict(tracker, parent: str, rankings: dict, params: dict, swee
         verdict, note = verdict_of(gathered)
     except HarnessError as err:
         tracker.log_results(parent, {}, tags={"harness.across_skipped": str(err)})
-        return
+        return None
     payload = verdict_payload(verdict, gathered, note)
     tracker.log_results(parent, run_metrics(payload), tags=run_tags(payload))
     tracker.log_text(parent, json.dumps(payload, indent=2), VERDICT_ARTIFACT)
@@ -449,6 +450,7 @@ def _log_across_verdict(tracker, parent: str, rankings: dict, params: dict, swee
         diagram = Path(folder) / DIAGRAM_ARTIFACT
         diagram.write_bytes(verdict_png(payload))
         tracker.log_files(parent, [diagram])
+    return payload
 
 
 HALVING_ARTIFACT = "halving.json"
@@ -588,13 +590,14 @@ def execute_sweep(
         executor.work.update(halving_work)
         executor.stage_log += halving_stages
         rankings = rank_configurations(results, sweep, corpora)
+        across = None
         for ranking in rankings.values():
             for row in ranking.rows:
                 tracker.log_results(row.configuration.run_id, {"rank": row.rank, "tied_with_leader": float(row.tied)}
                                     if row.tied is not None else {"rank": row.rank}, tags=ranking.tags)
         tracker.log_text(parent, "\n\n".join(leaderboard_table(r) for r in rankings.values()), "leaderboard.txt")
         if len(rankings) >= 2:
-            _log_across_verdict(tracker, parent, rankings, params, sweep.name)
+            across = _log_across_verdict(tracker, parent, rankings, params, sweep.name)
         trial_results = halving_seeds if halving else [r for c in results for r in c.seeds]
         tracker.log_results(parent, {"n_finished": sum(r.status == "FINISHED" for r in trial_results),
                                      "n_reused": sum(r.status == "REUSED" for r in trial_results),
@@ -608,7 +611,7 @@ def execute_sweep(
         if bar is not None:
             bar.close()
     return SweepResult(parent_run_id=parent, tracking_uri=tracking_uri, results=trial_results, work=dict(executor.work),
-                       rankings=rankings, configurations=results, stage_log=executor.stage_log)
+                       rankings=rankings, configurations=results, stage_log=executor.stage_log, across=across)
 
 
 def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None = None, *,

@@ -16,9 +16,10 @@ import pytest
 
 from harness.cli import main
 
-from conftest import configuration_runs, finished_runs, write_sweep
+from conftest import configuration_runs, finished_runs, needs_mirror, write_sweep
 
 DATASETS = ("clear", "middle", "faint")
+NEWSGROUPS, AG_NEWS = "twenty_newsgroups.parquet", "ag_news.parquet"  # mirror files (tests/test_public_datasets.py)
 SWEEP = """
 name: {name}
 question: Which setup finds the topics across corpora?
@@ -190,3 +191,17 @@ def test_without_baycomp_the_verdict_says_how_to_get_the_bayesian_comparison(mon
     monkeypatch.setitem(sys.modules, "baycomp", None)  # what an environment without the package sees: ImportError
     without, note = verdict_of(gathered_scores(rows))
     assert without.bayesian is None and note == BAYES_HINT and "harness[bayes]" in note
+
+
+@pytest.mark.slow
+@needs_mirror(NEWSGROUPS, AG_NEWS)
+def test_the_shipped_across_corpora_sweep_reports_its_diagram_over_five_corpora(tmp_path, capsys):
+    from conftest import REPO
+
+    results = tmp_path / "results"
+    assert main(["run", str(REPO / "experiments" / "across_corpora.yaml"), "--results-dir", str(results), "--no-progress"]) == 0
+    assert "across corpora (average ranks over datasets" in capsys.readouterr().out
+    assert main(["report", "across_corpora", "--results-dir", str(results), "--no-map"]) == 0
+    page = (results / "reports" / "across_corpora" / "report.html").read_text()
+    assert "id='across-corpora-cd' class='cd-diagram'" in page and "Friedman test over 5 datasets" in page
+    assert "Only 5 datasets" not in page and "fewer than about 5" not in page  # five corpora: no power caveat
