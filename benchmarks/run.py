@@ -266,6 +266,19 @@ GROUPS = {"encode": encode_figures, "rerun_fraction": rerun_figures, "dask": das
           "bootstrap_speedup": bootstrap_figures}
 
 
+
+def halving_group(n_texts: int, repeats: int) -> dict:
+    """benchmarks/halving.py: successive halving against the full grid, 96 configurations (one run, not repeated)."""
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from halving import halving_figures
+
+    return halving_figures(n_texts, max(n_texts // 9, 50), 3, small=False)
+
+
+# Groups run only when named with --only (outside the default `make bench` time budget).
+ON_REQUEST = {"halving": halving_group}
+
+
 def environment() -> dict:
     versions = {}
     for name in LIBRARIES:
@@ -281,14 +294,14 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--texts", type=int, default=2000)
     parser.add_argument("--repeats", type=int, default=3)
-    parser.add_argument("--only", choices=sorted(GROUPS), action="append")
+    parser.add_argument("--only", choices=sorted(GROUPS | ON_REQUEST), action="append")
     args = parser.parse_args()
     (REPO / "results").mkdir(exist_ok=True)
     report = json.loads(RESULTS.read_text()) if RESULTS.exists() else {}
     report.setdefault("figures", {})
     for name in args.only or sorted(GROUPS):
         print(f"running {name} ...", file=sys.stderr, flush=True)
-        figures = GROUPS[name](args.texts, args.repeats)
+        figures = {**GROUPS, **ON_REQUEST}[name](args.texts, args.repeats)
         figures.pop("texts", None)
         for figure, data in figures.items():
             report["figures"][figure] = {**data, "texts": args.texts, "repeats": args.repeats, **environment()}

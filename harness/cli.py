@@ -68,6 +68,15 @@ def command_plan(args: argparse.Namespace) -> int:
         print("\nmean and mean_sqrt_len differ by a positive factor per text (under long_texts: truncate, and for static")
         print("vectors without remove_first_component): after l2 normalisation or a cosine UMAP they give the same")
         print("clusters; seed-free stages give the same result for every seed.")
+    search = prepared.sweep.search
+    if search.strategy == "halving":
+        from harness.halving import round_sizes
+
+        print(f"\nsearch: halving (factor {search.factor}); the work above is the full grid's, an upper bound: each round "
+              "runs the survivors of the round before on a nested subsample of")
+        for name, corpus in prepared.corpora.items():
+            print(f"  {name}: " + ", ".join(str(n) for n in round_sizes(corpus.n_texts, search.start_texts, search.factor))
+                  + " texts")
     return 0
 
 
@@ -115,6 +124,12 @@ def command_run(args: argparse.Namespace) -> int:
             print(descriptions_table(winner.configuration.descriptions))
         print()
     print("tie: the paired bootstrap interval of the difference to the leader contains 0 (see README: how to read it)")
+    if result.across is not None:
+        print("\nacross corpora (average ranks over datasets; report: the 'Across corpora' section):")
+        print("\n".join(f"  {line}" for line in result.across["lines"]))
+        if result.across.get("bayes_note"):
+            print(f"  note: {result.across['bayes_note']}")
+        print()
     reused = sum(r.status == "REUSED" for r in result.results)
     work = ", ".join(f"{k} {v}" for k, v in sorted(result.work.items())) or "none"
     print(f"{len(result.results) - reused} trials run, {reused} reused from earlier runs; work done: {work}")
@@ -246,9 +261,33 @@ def command_cite(args: argparse.Namespace) -> int:
 
     _quiet_libraries()
     record = _finished_sweep(args)
+    if args.across:
+        from harness.cite_across import write_across_card
+
+        print(f"across corpora\n  citation: {write_across_card(record, Path(args.results_dir) / 'reports')}")
+        return 0
     for citation in write_citations(record, Path(args.results_dir) / "reports", Path(args.results_dir), args.dataset):
         print(f"dataset {citation.dataset}\n  citation: {citation.card}\n  runnable sweep: {citation.sweep_file}\n"
               f"  reproduce: {citation.command}")
+    return 0
+
+
+def command_verdict(args: argparse.Namespace) -> int:
+    from harness.cite_across import write_verdict
+    from harness.readback import sweep_record
+
+    _quiet_libraries()
+    uri = _tracking_uri(args)
+    records = [sweep_record(uri, name) for name in args.sweeps]
+    payload, folder = write_verdict(records, Path(args.results_dir) / "reports")
+    for record in records:
+        print(f"sweep run {record.run_id} of '{record.name}' (status {record.status})")
+    print("\n".join(payload["lines"]))
+    if payload.get("bayesian") is None and payload.get("bayes_note"):
+        print(f"note: {payload['bayes_note']}")
+    for note in payload["dropped"]:
+        print(f"dropped: {note}")
+    print(f"verdict: {folder / 'verdict.md'}\njson: {folder / 'verdict.json'}")
     return 0
 
 
@@ -387,6 +426,18 @@ def parser() -> argparse.ArgumentParser:
     cite = finished_sweep_command("cite", "write a citation card for each dataset's winner, with the command that "
                                   "reproduces it", command_cite)
     cite.add_argument("--dataset", default=None, metavar="NAME", help="only this dataset's winner")
+    cite.add_argument("--across", action="store_true",
+                      help="cite the across-corpus winner instead: average rank over datasets, the test, per-corpus scores")
+
+    verdict = commands.add_parser(
+        "verdict", help="which configuration wins across the datasets of one or more finished sweeps",
+        description="Rank the configurations shared by every dataset of the named sweeps (matched by their settings, "
+                    "not their names) within each dataset, average the ranks, and test the differences (Friedman / "
+                    "Iman-Davenport, Nemenyi critical difference, Holm against the best). Says what was dropped.")
+    verdict.add_argument("sweeps", nargs="+", metavar="SWEEP", help="sweep names (the newest run of each)")
+    _add_results_option(verdict)
+    verdict.add_argument("--tracking-uri", default=None, help="MLflow tracking URI (default: sqlite:///RESULTS_DIR/mlflow.db)")
+    verdict.set_defaults(handler=command_verdict)
 
     export = finished_sweep_command("export", "write one row per configuration of a sweep run to CSV or Parquet "
                                     "(the run report and cite describe)", command_export)

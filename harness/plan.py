@@ -66,6 +66,11 @@ RESULT_NEUTRAL: dict[str, str] = {
                                 "to float rounding (measured: within 2 float32 ulps of the scale for every pooling; "
                                 "tests/test_pooling.py checks 1e-5 over batch sizes 1, 2, 3, 7, 32), and the "
                                 "pooled-vector cache holds one of them",
+    "SearchSettings.strategy": "which configurations run on which subsample; a round's subsample enters its trials' "
+                               "keys by its content (dataset_key), so no seed run's figure depends on the setting",
+    "SearchSettings.start_texts": "as strategy: the subsample's texts are keyed by content",
+    "SearchSettings.seed": "as strategy: the subsample's texts are keyed by content",
+    "SearchSettings.factor": "as strategy: the subsample's texts are keyed by content",
     "FileSource.format": "how the file is parsed; the corpus read is keyed by its content",
     "FileSource.max_chars": "a refusal threshold: a corpus that loads is the same under any value",
 }

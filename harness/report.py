@@ -1,7 +1,8 @@
 """The report a reviewer reads: what was compared, what won, by how much, and what the length check says.
 
 Verdicts are per dataset: configurations are ranked, and everything read off a
-ranking is drawn, within one dataset. Analysis functions are pure (records in,
+ranking is drawn, within one dataset; a sweep over two or more datasets adds the across-corpus verdict it logged
+(average ranks over datasets, harness/across_report.py). Analysis functions are pure (records in,
 tables out); the renderers lay out a self-contained HTML page (images embedded,
 no network resources, every value escaped) and a Markdown twin without raw HTML.
 """
@@ -19,6 +20,8 @@ from typing import Optional
 
 import numpy as np
 
+from harness.across_report import DIAGRAM_NAME as ACROSS_DIAGRAM, AcrossSection, across_html, across_markdown
+from harness.halving_report import halving_html, halving_markdown
 from harness.readback import ConfigurationRecord, SweepRecord
 from harness.sweep import DEFAULT_LABEL_FREE_METRIC, DEFAULT_LABELLED_METRIC
 
@@ -401,6 +404,8 @@ class ReportContent:
     record: SweepRecord
     sections: list[DatasetSection]
     run_notes: list[str] = field(default_factory=list)
+    across: Optional[AcrossSection] = None  # the across-corpus verdict the run logged (two or more datasets)
+    halving: Optional[dict] = None  # the rounds of a successive-halving search, as the run logged them
 
 
 def section_slug(index: int, dataset: str) -> str:
@@ -538,6 +543,8 @@ th {{ background: #f0f0f0; }} img {{ max-width: 100%; }} code {{ font-size: 12px
 <ul id="winners">{winners}</ul>
 <h2>Datasets</h2><ul id="datasets">{cards}</ul>
 <h2>Grid</h2><pre id="grid">{_e(r.sweep_text)}</pre>
+{halving_html(content.halving)}
+{across_html(content.across)}
 {"".join(_html_section(section) for section in content.sections)}
 </body></html>
 """
@@ -557,6 +564,8 @@ def render_markdown(content: ReportContent, image_paths: dict[str, str]) -> str:
     lines += ["**Winners, one per dataset** (ranked within a dataset, never across datasets):", ""]
     lines += [f"- {md_text(winner_line(section))}" for section in content.sections] + ["", "## Datasets", ""]
     lines += [f"- {md_text(_card_line(name, card))}" for name, card in r.cards.items()]
+    lines += halving_markdown(content.halving)
+    lines += across_markdown(content.across, image_paths.get(ACROSS_DIAGRAM))
     for section in content.sections:
         header = [h.format(metric=section.metric) for h in LEADERBOARD_HEADER]
         lines += ["", f"## Dataset {md_text(section.dataset)}", "", f"**Winner.** {md_text(winner_line(section))}", "",

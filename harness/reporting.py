@@ -15,6 +15,8 @@ import numpy as np
 import pandas as pd
 
 from harness.errors import HarnessError
+from harness.across_report import DIAGRAM_NAME as ACROSS_DIAGRAM, AcrossSection
+from harness.halving_report import logged_halving
 from harness.readback import ConfigurationRecord, SweepRecord
 from harness.report import (
     DatasetRanking,
@@ -126,7 +128,16 @@ def dataset_section(record: SweepRecord, ranking: DatasetRanking, slug: str, wit
 def report_content(record: SweepRecord, with_map: bool = True) -> ReportContent:
     sections = [dataset_section(record, ranking, section_slug(i, ranking.dataset), with_map)
                 for i, ranking in enumerate(dataset_rankings(record))]
-    return ReportContent(record=record, sections=sections, run_notes=run_notes(record))
+    return ReportContent(record=record, sections=sections, run_notes=run_notes(record), across=across_section(record),
+                         halving=logged_halving(record))
+
+
+def across_section(record: SweepRecord) -> Optional[AcrossSection]:
+    """The across-corpus verdict the sweep run logged, or None (one dataset, or a run from before it was logged)."""
+    from harness.across_corpora import logged_verdict
+
+    payload, diagram = logged_verdict(record)
+    return None if payload is None else AcrossSection(payload, diagram)
 
 
 def report_folder(reports_dir: Path, record: SweepRecord) -> Path:
@@ -150,6 +161,9 @@ def write_report(record: SweepRecord, reports_dir: Path, with_map: bool = True) 
             name = section.image_name(element)
             (folder / f"{name}.png").write_bytes(data)
             image_paths[name] = f"{name}.png"
+    if content.across is not None and content.across.diagram:
+        (folder / f"{ACROSS_DIAGRAM}.png").write_bytes(content.across.diagram)
+        image_paths[ACROSS_DIAGRAM] = f"{ACROSS_DIAGRAM}.png"
     markdown = folder / "report.md"
     markdown.write_text(render_markdown(content, image_paths))
     record.log_artifact(record.run_id, page, "report")

@@ -95,6 +95,7 @@ class SweepResult:
     rankings: dict[str, "Ranking"]
     configurations: list[ConfigurationResult] = field(default_factory=list)
     stage_log: list[dict[str, Any]] = field(default_factory=list)
+    across: Optional[dict] = None  # the across-corpus verdict (two or more datasets), as logged
 
     @property
     def failed(self) -> list[TrialResult]:
@@ -227,7 +228,30 @@ def loaded_corpora(prepared: PreparedSweep) -> dict[str, Corpus]:
 
 
 def check_against_data(prepared: PreparedSweep, corpora: dict[str, Corpus]) -> None:
-    """Refuse settings that cannot run on these corpora and models, naming the sweep key."""
+    """Refuse settings that cannot run on these corpora and models, naming the sweep key; a halving search
+    also on its first round's subsamples, which are the smallest corpora it runs on."""
+    _check_grid_against(prepared, corpora)
+    search = prepared.sweep.search
+    if search.strategy != "halving":
+        return
+    from harness.halving import nested_order, round_rows, subcorpus
+
+    smallest = min(corpora.values(), key=lambda c: c.n_texts)
+    if search.start_texts >= smallest.n_texts:
+        raise sweep_error_at(prepared.path, ["search", "start_texts"],
+                             f"{search.start_texts} is not fewer than the {smallest.n_texts} texts of dataset "
+                             f"'{smallest.name}'; expected a first round smaller than every dataset")
+    first = {name: subcorpus(c, round_rows(nested_order(c.labels, c.n_texts, search.seed), search.start_texts))
+             for name, c in corpora.items()}
+    try:
+        _check_grid_against(prepared, first)
+    except HarnessError as err:
+        raise sweep_error_at(prepared.path, ["search", "start_texts"],
+                             f"{search.start_texts} texts are too few for the grid's first round: "
+                             f"{str(err).split(': ', 1)[-1]}") from None
+
+
+def _check_grid_against(prepared: PreparedSweep, corpora: dict[str, Corpus]) -> None:
     grid = prepared.sweep.grid
     for corpus in corpora.values():
         for m_index, spec in enumerate(prepared.sweep.models):
@@ -358,18 +382,24 @@ def _trial_tags(trial: Trial, corpus: Corpus) -> dict[str, str]:
 
 
 def _run_configuration(tracker, executor, configuration: list[Trial], done: dict, corpus: Corpus, params: dict,
-                       evidence: EvidenceSettings, parent: str, on_trial, settings: dict[str, Any]) -> ConfigurationResult:
-    """The seed runs of one configuration under one configuration run, then the evidence over seeds."""
+                       evidence: EvidenceSettings, parent: str, on_trial, settings: Optional[dict[str, Any]], *,
+                       kind: str = "configuration", extra_params: Optional[dict] = None,
+                       extra_tags: Optional[dict] = None) -> ConfigurationResult:
+    """The seed runs of one configuration under one configuration run, then the evidence over seeds.
+    ``kind`` "round": an early round of a halving search (a subsample), which the leaderboard does not read and
+    which logs no ``settings`` (a citation reruns a configuration on the whole corpus, never on a round's sample)."""
     from harness.evidence import configuration_evidence, seed_free
     from harness.tracking import CONFIGURATION_ARTIFACT
 
     first = configuration[0]
-    config_params = {k: v for k, v in params[first.key].items() if k != "seed"}
-    config_run = tracker.start_run(first.config_name, parent, "configuration", config_params, _trial_tags(first, corpus))
+    config_params = {**{k: v for k, v in params[first.key].items() if k != "seed"}, **(extra_params or {})}
+    config_run = tracker.start_run(first.config_name, parent, kind, config_params,
+                                   {**_trial_tags(first, corpus), **(extra_tags or {})})
     result = ConfigurationResult(trials=configuration, seeds=[], run_id=config_run)
     current: Optional[str] = None
     try:
-        tracker.log_text(config_run, json.dumps(settings, indent=2), CONFIGURATION_ARTIFACT)
+        if settings is not None:
+            tracker.log_text(config_run, json.dumps(settings, indent=2), CONFIGURATION_ARTIFACT)
         for trial in configuration:
             if trial.key in done:
                 run, clusters = done[trial.key]
@@ -476,6 +506,105 @@ def _reusable_runs(tracker, trials: list[Trial], corpora: dict[str, Corpus]) -> 
     return reusable
 
 
+def _log_across_verdict(tracker, parent: str, rankings: dict, params: dict, sweep_name: str) -> Optional[dict]:
+    """The across-corpus verdict over the configurations every dataset ran, logged to the sweep run: its
+    numbers as metrics, its best and winner as tags, the whole of it as JSON and its diagram as a PNG.
+    A verdict that cannot be made (fewer than 2 shared configurations) is logged as a tag saying why."""
+    from harness.across_corpora import (
+        DIAGRAM_ARTIFACT, VERDICT_ARTIFACT, gathered_scores, run_metrics, run_tags, scored_from_rankings, verdict_of,
+        verdict_payload, verdict_png,
+    )
+
+    gathered = gathered_scores(scored_from_rankings(rankings, params, sweep_name))
+    try:
+        verdict, note = verdict_of(gathered)
+    except HarnessError as err:
+        tracker.log_results(parent, {}, tags={"harness.across_skipped": str(err)})
+        return None
+    payload = verdict_payload(verdict, gathered, note)
+    tracker.log_results(parent, run_metrics(payload), tags=run_tags(payload))
+    tracker.log_text(parent, json.dumps(payload, indent=2), VERDICT_ARTIFACT)
+    with tempfile.TemporaryDirectory() as folder:
+        diagram = Path(folder) / DIAGRAM_ARTIFACT
+        diagram.write_bytes(verdict_png(payload))
+        tracker.log_files(parent, [diagram])
+    return payload
+
+
+HALVING_ARTIFACT = "halving.json"
+
+
+def _halving_search(tracker, prepared: PreparedSweep, corpora: dict[str, Corpus], done: dict, parent: str,
+                    cache_dir: Optional[Path], encode_progress, resume: bool, on_trial) -> tuple[list, list, dict, list, dict]:
+    """Successive halving, per dataset: every configuration on the first nested subsample, the best 1/factor
+    on to the next, up to the whole corpus. Early rounds are logged as "round" runs (param ``round``, tag
+    ``harness.round``; a configuration cut there gets ``harness.cut_at``); the last round, on the whole corpus,
+    as the usual configuration runs, so the leaderboard and the verdict are on the survivors only.
+    Returns (last-round results, every trial result, work, stage log, the halving log)."""
+    from collections import Counter
+
+    from harness.across_corpora import configuration_identity, configuration_label
+    from harness.cache import StageCache
+    from harness.halving import nested_order, round_rows, round_sizes, subcorpus, survivors
+    from harness.leaderboard import ranking_metric
+    from harness.plan import configurations
+    from harness.stages import StageExecutor
+
+    sweep, search = prepared.sweep, prepared.sweep.search
+    final, seeds, work, stage_log, log = [], [], Counter(), [], {}
+    for dataset, corpus in corpora.items():
+        sizes = round_sizes(corpus.n_texts, search.start_texts, search.factor)
+        order = nested_order(corpus.labels, corpus.n_texts, search.seed)
+        metric = ranking_metric(sweep.rank_by, corpus.labels is not None)
+        alive: Optional[set[str]] = None
+        rounds = []
+        for index, size in enumerate(sizes):
+            last = index == len(sizes) - 1
+            part = corpus if last else subcorpus(corpus, round_rows(order, size))
+            if last:
+                trials = [t for t in prepared.trials if t.dataset == dataset]
+            else:
+                keys = {**prepared.dataset_keys, dataset: dataset_key(part)}  # the subsample's content keys its trials
+                trials = [t for t in planned_trials(sweep, keys, prepared.models) if t.dataset == dataset]
+            if alive is not None:
+                trials = [t for t in trials if configuration_identity(t.config_params) in alive]
+            reusable = done if last else (_reusable_runs(tracker, trials, {dataset: part}) if resume else {})
+            executor = StageExecutor({dataset: part}, trials, StageCache(cache_dir) if cache_dir else None, encode_progress)
+            params = aligned_params(trials)
+            results = [_run_configuration(tracker, executor, group, reusable, part, params, sweep.evidence, parent, on_trial,
+                                          configuration_settings(prepared, group) if last else None,
+                                          kind="configuration" if last else "round",
+                                          extra_params={"round": index, "round_texts": size},
+                                          extra_tags={"harness.round": str(index), "harness.round_texts": str(size)})
+                       for group in configurations(trials)]
+            work.update(executor.work)
+            stage_log += executor.stage_log
+            seeds += [r for c in results for r in c.seeds]
+            values = {configuration_identity(c.trials[0].config_params): _ranked_value(c, metric) for c in results}
+            kept = set(values) if last else set(survivors(values, search.factor))
+            for c in results:
+                if configuration_identity(c.trials[0].config_params) not in kept:
+                    tracker.log_results(c.run_id, {}, tags={"harness.cut_at": str(index)})
+            rounds.append({"round": index, "texts": size, "metric": metric, "configurations": [
+                {"configuration": configuration_label(c.name), "run_id": c.run_id,
+                 "value": _json_number(_ranked_value(c, metric)),
+                 "kept": configuration_identity(c.trials[0].config_params) in kept} for c in results]})
+            alive = kept
+            if last:
+                final += results
+        log[dataset] = {"sizes": sizes, "factor": search.factor, "seed": search.seed, "rounds": rounds}
+    return final, seeds, dict(work), stage_log, log
+
+
+def _ranked_value(configuration: ConfigurationResult, metric: str) -> float:
+    value = configuration.metrics.get(metric)
+    return float("nan") if value is None else float(value)
+
+
+def _json_number(value: float) -> Optional[float]:
+    return value if np.isfinite(value) else None
+
+
 def execute_sweep(
     prepared: PreparedSweep,
     corpora: dict[str, Corpus],
@@ -516,30 +645,44 @@ def execute_sweep(
          "harness.question": sweep.question, "harness.reused_trials": str(len(prepared.trials) - len(pending)),
          "harness.orphans_marked_killed": str(killed)})
     tracker.show_ranking(parent, sorted({ranking_metric(sweep.rank_by, c.labels is not None) for c in corpora.values()}))
-    executor = StageExecutor(corpora, prepared.trials, StageCache(cache_dir) if cache_dir else None, encode_progress)
+    halving = sweep.search.strategy == "halving"
+    executor = StageExecutor(corpora, [] if halving else prepared.trials, StageCache(cache_dir) if cache_dir else None,
+                             encode_progress)
     params = aligned_params(prepared.trials)
     bar = progress(total=len(pending), desc="trials", unit="trial") if progress else None
     results: list[ConfigurationResult] = []
     try:
-        if dask_client is not None:
+        if dask_client is not None and not halving:
             from harness.distributed import precompute_on_cluster
 
             # Inside the try: whatever the cluster does, the sweep run is closed, never left RUNNING.
             precompute_on_cluster(executor, prepared.trials, dask_client)
         tracker.log_text(parent, prepared.path.read_text(), "sweep.yaml")
         tracker.log_text(parent, json.dumps(dataset_cards(corpora, prepared.models), indent=2), "dataset_cards.json")
-        for configuration in configurations(prepared.trials):
-            results.append(_run_configuration(tracker, executor, configuration, done, corpora[configuration[0].dataset],
-                                              params, sweep.evidence, parent, bar.update if bar else (lambda: None),
-                                              configuration_settings(prepared, configuration)))
+        halving_seeds, halving_work, halving_stages = [], {}, []
+        if halving:
+            results, halving_seeds, halving_work, halving_stages, halving_log = _halving_search(
+                tracker, prepared, corpora, done, parent, cache_dir, encode_progress, resume,
+                bar.update if bar else (lambda: None))
+            tracker.log_text(parent, json.dumps(halving_log, indent=2), HALVING_ARTIFACT)
+        else:
+            for configuration in configurations(prepared.trials):
+                results.append(_run_configuration(tracker, executor, configuration, done, corpora[configuration[0].dataset],
+                                                  params, sweep.evidence, parent, bar.update if bar else (lambda: None),
+                                                  configuration_settings(prepared, configuration)))
+        executor.work.update(halving_work)
+        executor.stage_log += halving_stages
         rankings = rank_configurations(results, sweep, corpora)
+        across = None
         for ranking in rankings.values():
             for row in ranking.rows:
                 tracker.log_results(row.configuration.run_id, {"rank": row.rank, "tied_with_leader": float(row.tied)}
                                     if row.tied is not None else {"rank": row.rank}, tags=ranking.tags)
             _log_winner_map(tracker, executor, ranking, corpora[ranking.dataset], sweep.evidence, winner_map)
         tracker.log_text(parent, "\n\n".join(leaderboard_table(r) for r in rankings.values()), "leaderboard.txt")
-        trial_results = [r for c in results for r in c.seeds]
+        if len(rankings) >= 2:
+            across = _log_across_verdict(tracker, parent, rankings, params, sweep.name)
+        trial_results = halving_seeds if halving else [r for c in results for r in c.seeds]
         tracker.log_results(parent, {"n_finished": sum(r.status == "FINISHED" for r in trial_results),
                                      "n_reused": sum(r.status == "REUSED" for r in trial_results),
                                      "n_failed": sum(r.status == "FAILED" for r in trial_results),
@@ -552,7 +695,7 @@ def execute_sweep(
         if bar is not None:
             bar.close()
     return SweepResult(parent_run_id=parent, tracking_uri=tracking_uri, results=trial_results, work=dict(executor.work),
-                       rankings=rankings, configurations=results, stage_log=executor.stage_log)
+                       rankings=rankings, configurations=results, stage_log=executor.stage_log, across=across)
 
 
 def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None = None, *,

@@ -27,6 +27,13 @@ DESCRIPTIONS: dict[str, str] = {
     "Sweep.rank_by": "the score that ranks configurations (default: `ari` with labels, `silhouette` without)",
     "Sweep.evidence": "how much resampling backs each claim",
     "Sweep.storage_dtype": "how pooled vectors are kept in the cache; `float16` halves the space",
+    "Sweep.search": "how the grid is searched: every configuration on the whole corpus (`grid`), or successive halving",
+    "SearchSettings.strategy": "`grid` runs every configuration on the whole corpus; `halving` runs them all on a "
+                               "nested stratified subsample, keeps the best 1/`factor` and multiplies the texts by "
+                               "`factor`, round after round, up to the whole corpus",
+    "SearchSettings.start_texts": "halving: texts in the first round's subsample (fewer than the smallest dataset has)",
+    "SearchSettings.seed": "halving: seeds the nested stratified subsamples",
+    "SearchSettings.factor": "halving: each round keeps the best 1/factor of the configurations and multiplies the texts by factor",
     # datasets
     "SyntheticSource.source": "the built-in corpus of requests to a fictional town's services",
     "SyntheticSource.name": "the dataset's name in runs and leaderboards",

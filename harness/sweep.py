@@ -209,6 +209,21 @@ class EvidenceSettings(Settings):
     top_terms: PositiveInt = 10
 
 
+class SearchSettings(Settings):
+    """How the grid is searched: every configuration on the whole corpus, or successive halving over sample sizes."""
+
+    strategy: Literal["grid", "halving"] = "grid"
+    start_texts: Optional[PositiveInt] = None  # halving: texts in the first round's stratified subsample
+    factor: int = Field(3, ge=2)  # halving: keep the best 1/factor each round and multiply the texts by factor
+    seed: int = 0  # halving: seeds the nested stratified subsamples
+
+    @model_validator(mode="after")
+    def _halving_needs_a_start(self) -> "SearchSettings":
+        if self.strategy == "halving" and self.start_texts is None:
+            raise ValueError("start_texts: halving needs the first round's number of texts (a positive integer)")
+        return self
+
+
 class Sweep(Settings):
     name: str = Field(min_length=1, pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]*$")
     question: str = ""
@@ -218,6 +233,7 @@ class Sweep(Settings):
     rank_by: Optional[Annotated[str, Field(json_schema_extra={"enum": list(RANKING_METRICS)})]] = None  # default: ari with labels, silhouette without
     evidence: EvidenceSettings = Field(default_factory=EvidenceSettings)
     storage_dtype: Literal["float32", "float16"] = "float32"  # how pooled vectors are kept in the cache
+    search: SearchSettings = Field(default_factory=SearchSettings)
 
     @field_validator("models", mode="before", json_schema_input_type=list[Union[str, ModelSettings]])
     @classmethod
