@@ -126,7 +126,7 @@ def prepared_sweep(path: str | Path) -> PreparedSweep:
     corpora = _loaded(path, sweep, tokenizers)
     keys = {name: dataset_key(corpus) for name, corpus in corpora.items()}
     return PreparedSweep(path=path, sweep=sweep, models=models, dataset_keys=keys,
-                         trials=planned_trials(sweep, keys, models), corpora=corpora, length_tokenizers=tokenizers)
+                         trials=planned_trials(sweep, keys, models, {name: c.n_texts for name, c in corpora.items()}), corpora=corpora, length_tokenizers=tokenizers)
 
 
 WORD_COUNTS = "words"  # length_tokenizer: balance by word counts

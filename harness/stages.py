@@ -25,7 +25,7 @@ from harness.encode import long_text_info, pooled_variants, token_counts
 from harness.keys import settings_key
 from harness.models import LoadedEncoder, loaded_encoder
 from harness.plan import Trial, pool_stage
-from harness.reduce import reduced
+from harness.reduce import neighbour_graph, reduced
 from harness.transforms import transformed
 
 BatchCallback = Callable[[int], None]
@@ -245,7 +245,20 @@ class StageExecutor:
                               lambda: (self.pooled(trial, own), self.token_counts(trial)),
                               lambda pooled, counts: transformed(pooled, counts, trial.steps), stage=stage)
 
+    def neighbour_graph(self, trial: Trial) -> np.ndarray:
+        """The neighbour graph of a UMAP trial's vectors: once per (vectors, metric, n_neighbors), for every seed,
+        n_components and min_dist that share it."""
+        stage = trial.stages["graph"]
+        return self._computed(trial, "graph", "neighbour_graphs", lambda: (self.transformed(trial),),
+                              lambda vectors: neighbour_graph(vectors, stage.settings["metric"],
+                                                              stage.settings["n_neighbors"], stage.settings["method"]),
+                              stage=stage)
+
     def reduced(self, trial: Trial) -> np.ndarray:
+        if "graph" in trial.stages:
+            return self._computed(trial, "reduce", f"{trial.reducer.method}_fits",
+                                  lambda: (self.transformed(trial), self.neighbour_graph(trial)),
+                                  lambda vectors, graph: reduced(vectors, trial.reducer, trial.seed, graph))
         return self._computed(trial, "reduce", f"{trial.reducer.method}_fits", lambda: (self.transformed(trial),),
                               lambda vectors: reduced(vectors, trial.reducer, trial.seed))
 
@@ -279,6 +292,7 @@ class StageExecutor:
         seconds = lambda kind: float(self._info.get(trial.stages[kind].key, {}).get("seconds", 0.0))  # noqa: E731
         return {
             "encode_seconds": seconds("pool"),
-            "reduce_seconds": seconds("transform") + seconds("reduce"),
+            "reduce_seconds": seconds("transform") + seconds("reduce")
+            + (float(self._info.get(trial.stages["graph"].key, {}).get("seconds", 0.0)) if "graph" in trial.stages else 0.0),
             "cluster_seconds": seconds("cluster"),
         }
