@@ -275,8 +275,9 @@ def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings
     counts = executor.token_counts(trial)
     scores = trial_scores(clusters, counts, corpus.labels)
     # Figures of the trial's own vectors come from its own pooling, also where its clusters are computed from another.
-    scores.update(label_free_scores(clusters, counts, executor.pooled(trial, own=True), executor.reduced(trial),
-                                    seed=trial.seed, permutations=evidence.permutations, max_points=evidence.max_points))
+    vector_scores = {name: executor.label_free_score(trial, name, clusters, max_points=evidence.max_points)
+                     for name in ("silhouette", "dbcv")}
+    scores.update(label_free_scores(clusters, counts, vector_scores, seed=trial.seed, permutations=evidence.permutations))
     scores["length_leakage_r2"] = executor.length_leakage(trial, "transform")
     scores["length_leakage_r2_pooled"] = executor.length_leakage(trial, "pool")
     table, scores["npmi_mean"] = described_clusters(executor.term_counts(trial), clusters, counts, top=evidence.top_terms)
@@ -290,21 +291,15 @@ def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings
 
 def _log_trial(tracker, run_id: str, trial: Trial, corpus: Corpus, scores: dict[str, float], table: list[dict],
                clusters: np.ndarray, counts: np.ndarray) -> None:
-    import matplotlib.pyplot as plt
+    """A seed run's two tables in one artifact upload, then its scores in one batch. No figure: the report draws
+    token counts by cluster from assignments.parquet, and a per-seed image was never opened."""
     import pandas as pd
 
-    from harness.plots import token_counts_by_cluster_figure
-
     with tempfile.TemporaryDirectory() as folder:
-        assignments = Path(folder) / "assignments.parquet"
-        _assignments_table(corpus, clusters, counts).to_parquet(assignments, index=False)
-        descriptions = Path(folder) / "clusters.parquet"
-        pd.DataFrame(table, columns=["cluster", "size", "median_tokens", "top_terms", "npmi"]).to_parquet(descriptions, index=False)
-        figure = token_counts_by_cluster_figure(counts, clusters, trial.name)
-        plot = Path(folder) / "token_counts_by_cluster.png"
-        figure.savefig(plot)
-        plt.close(figure)
-        tracker.log_files(run_id, [assignments, descriptions, plot])
+        _assignments_table(corpus, clusters, counts).to_parquet(Path(folder) / "assignments.parquet", index=False)
+        pd.DataFrame(table, columns=["cluster", "size", "median_tokens", "top_terms", "npmi"]).to_parquet(
+            Path(folder) / "clusters.parquet", index=False)
+        tracker.log_folder(run_id, Path(folder))
     crash_point("mlflow_write")
     tracker.log_results(run_id, scores)
 
