@@ -104,3 +104,13 @@ def test_seeds_share_the_graph_stage_in_the_plan(tmp_path):
     assert len({t.stages["graph"].key for t in trials}) == 1
     assert len({t.stages["reduce"].key for t in trials}) == 6
     assert all(t.stages["reduce"].parent == t.stages["graph"].key for t in trials)
+
+
+def test_the_approximate_graph_finds_nearly_the_exact_neighbours_and_is_seed_fixed():
+    # Above EXACT_NEIGHBOURS_UP_TO the graph comes from NN-descent; checked here on a small set against the exact one.
+    vectors = np.random.default_rng(4).normal(size=(500, 8)).astype(np.float32)
+    exact = neighbour_graph(vectors, "cosine", 10, "exact")
+    approximate = neighbour_graph(vectors, "cosine", 10, "nndescent")
+    recall = np.mean([len(set(a) & set(e)) / 10 for a, e in zip(approximate[0].astype(int), exact[0].astype(int))])
+    assert recall >= 0.95
+    assert np.array_equal(approximate, neighbour_graph(vectors, "cosine", 10, "nndescent"))  # fixed graph seed
