@@ -32,6 +32,9 @@ def trial_scores(clusters: np.ndarray, token_counts: np.ndarray, labels: np.ndar
 # Each is a function of (vectors, labels, max_points) and, only where the points are subsampled, of the seed;
 # the executor computes each once per distinct labelling of the same vectors (StageExecutor.label_free_score).
 VECTOR_SCORES = {"silhouette": silhouette_cosine, "dbcv": density_validity}
+# Enters the key of every cached vector score with the harness version: raise it when how silhouette or DBCV
+# is computed changes, so that no score computed by the former code is read back from the cache.
+VECTOR_SCORES_VERSION = 1
 
 
 def subsampled_points(score: str, clusters: np.ndarray) -> int:

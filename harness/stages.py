@@ -274,14 +274,16 @@ class StageExecutor:
         only where the score subsamples (more than ``max_points`` points), the one case where it enters. Seeds of a
         seed-free clustering share their labels, so they share the score.
         """
-        from harness.scoring import VECTOR_SCORES, subsampled_points
+        from harness import __version__
+        from harness.scoring import VECTOR_SCORES, VECTOR_SCORES_VERSION, subsampled_points
 
         vectors_stage = trial.own_stages["pool"] if name == "silhouette" else trial.stages["reduce"]
         vectors = (lambda: self.pooled(trial, own=True)) if name == "silhouette" else (lambda: self.reduced(trial))
         subsampled = subsampled_points(name, clusters) > max_points
         stage = make_stage("score", vectors_stage.key, {
             "score": name, "labels": array_digest(np.asarray(clusters, dtype=np.int64)), "max_points": max_points,
-            "sample_seed": trial.seed if subsampled else None})
+            "sample_seed": trial.seed if subsampled else None,
+            "code": {"harness": __version__, "vector_scores": VECTOR_SCORES_VERSION}})
         compute = VECTOR_SCORES[name]
         value = self._computed(trial, "score", f"{name}_computations", lambda: (vectors(),),
                                lambda points: np.array([compute(points, clusters, max_points=max_points, seed=trial.seed)]),
