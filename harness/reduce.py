@@ -67,9 +67,13 @@ def neighbour_graph(vectors: np.ndarray, metric: str, n_neighbors: int, method: 
     """
     if method == "exact":
         from sklearn.neighbors import NearestNeighbors
+        from threadpoolctl import threadpool_limits
 
-        found = NearestNeighbors(n_neighbors=n_neighbors, metric=metric, algorithm="brute").fit(vectors)
-        distances, indices = found.kneighbors(vectors)
+        # One BLAS thread: a multi-threaded product may round differently with the thread count, and a layout
+        # is sensitive to the last bit of a distance; the graph must be the same here and on a Dask worker.
+        with threadpool_limits(limits=1):
+            found = NearestNeighbors(n_neighbors=n_neighbors, metric=metric, algorithm="brute", n_jobs=1).fit(vectors)
+            distances, indices = found.kneighbors(vectors)
     elif method == "nndescent":
         from umap.umap_ import nearest_neighbors
 
