@@ -10,8 +10,10 @@ import statistics
 import sys
 import tempfile
 import time
+from dataclasses import dataclass
 from importlib import metadata
 from pathlib import Path
+from typing import Callable
 
 os.environ.setdefault("HF_HUB_DISABLE_PROGRESS_BARS", "1")
 os.environ.setdefault("MLFLOW_LOGGING_LEVEL", "WARNING")
@@ -24,6 +26,27 @@ POOLINGS = ("cls", "mean", "max", "mean_sqrt_len")
 LAYERS = ("last", "second_last", "mean_last_4")
 ST_MODES = {"cls": "cls", "mean": "mean", "max": "max", "mean_sqrt_len": "mean_sqrt_len_tokens"}
 LIBRARIES = ("torch", "transformers", "sentence-transformers", "umap-learn", "hdbscan", "scikit-learn", "mlflow", "numpy")
+
+
+@dataclass(frozen=True)
+class Group:
+    """One group of figures: ``measure(texts, repeats)`` returns {figure: data}. Groups with ``default`` run under
+    ``make bench``; the others (long comparisons) only when named with ``--only`` or ``--with``."""
+
+    name: str
+    measure: Callable[[int, int], dict]
+    default: bool
+
+
+GROUPS: dict[str, Group] = {}
+
+
+def group(name: str, default: bool = True):
+    """Register a group of figures under ``name`` (order of registration is the order they run in)."""
+    def register(measure):
+        GROUPS[name] = Group(name, measure, default)
+        return measure
+    return register
 
 
 def median_seconds(action, repeats: int) -> float:
@@ -41,6 +64,7 @@ def corpus_texts(n_texts: int) -> list[str]:
     return loaded_corpus(SyntheticSource(source="synthetic", n_texts=n_texts, min_words=5, max_words=60)).texts
 
 
+@group("encode")
 def encode_figures(n_texts: int, repeats: int) -> dict:
     """variants_over_single_encode, loop_over_variants and forward_efficiency, measured in one go."""
     import torch
@@ -65,21 +89,21 @@ def encode_figures(n_texts: int, repeats: int) -> dict:
     def single_encode() -> None:
         plain.encode(texts, batch_size=64)
 
-    def user_loop() -> None:
-        # What a user writes without the tool: one encode per pooling for the last layer (a Pooling module each),
-        # and for other layers a forward pass with hidden states per (layer, pooling).
-        transformer = plain[0]
-        for pooling in POOLINGS:
-            SentenceTransformer(modules=[transformer, Pooling(transformer.get_embedding_dimension(), pooling_mode=ST_MODES[pooling])],
-                                device="cpu").encode(texts, batch_size=64)
-        for layers in LAYERS[1:]:
-            for pooling in POOLINGS:
-                with torch.inference_mode():
-                    for start in range(0, len(texts), 64):
-                        inputs = encoder.tokenizer(texts[start:start + 64], padding=True, truncation=True,
-                                                   max_length=256, return_tensors="pt")
-                        states = encoder.transformer(**inputs, output_hidden_states=True).hidden_states
-                        POOL_FNS[pooling](selected_hidden(states, layers), inputs["attention_mask"])
+    transformer = plain[0]
+
+    def user_loop_last_layer(pooling: str) -> None:
+        # What a user writes without the tool, for the last layer: one encode per pooling (a Pooling module each).
+        SentenceTransformer(modules=[transformer, Pooling(transformer.get_embedding_dimension(), pooling_mode=ST_MODES[pooling])],
+                            device="cpu").encode(texts, batch_size=64)
+
+    def user_loop_other_layer(layers: str, pooling: str) -> None:
+        # ... and for another layer choice, a forward pass with hidden states per (layer, pooling).
+        with torch.inference_mode():
+            for start in range(0, len(texts), 64):
+                inputs = encoder.tokenizer(texts[start:start + 64], padding=True, truncation=True,
+                                           max_length=256, return_tensors="pt")
+                states = encoder.transformer(**inputs, output_hidden_states=True).hidden_states
+                POOL_FNS[pooling](selected_hidden(states, layers), inputs["attention_mask"])
 
     counts = token_counts(encoder, texts)
     batches = [encoder.tokenizer([texts[i] for i in batch], padding=True, truncation=True, max_length=256, return_tensors="pt")
@@ -94,13 +118,21 @@ def encode_figures(n_texts: int, repeats: int) -> dict:
     t_tool = median_seconds(tool, repeats)
     t_encode = median_seconds(single_encode, repeats)
     t_bare = median_seconds(bare_forward, repeats)
-    t_loop = median_seconds(user_loop, repeats)
+    # The user's loop is 12 passes of two kinds, each kind's passes costing the same (the pooling is a negligible
+    # share of a pass): one of each kind is timed and multiplied by its count, instead of timing all 12.
+    t_last = median_seconds(lambda: user_loop_last_layer("mean"), repeats)
+    t_other = median_seconds(lambda: user_loop_other_layer("mean_last_4", "mean"), repeats)
+    n_last, n_other = len(POOLINGS), len(POOLINGS) * (len(LAYERS) - 1)
+    t_loop = n_last * t_last + n_other * t_other
     return {
-        "variants_over_single_encode": {"value": t_tool / t_encode, "target": "<= 1.15", "met": t_tool / t_encode <= 1.15,
+        "variants_over_single_encode": {"value": t_tool / t_encode, "target": "<= 1.05", "met": t_tool / t_encode <= 1.05,
                                         "seconds": {"tool_12_variants": t_tool, "single_encode": t_encode}},
         "loop_over_variants": {"value": t_loop / t_tool, "target": ">= 8", "met": t_loop / t_tool >= 8,
-                               "seconds": {"user_loop_12_variants": t_loop, "tool_12_variants": t_tool}},
-        "forward_efficiency": {"value": t_bare / t_tool, "target": ">= 0.90", "met": t_bare / t_tool >= 0.90,
+                               "seconds": {"user_loop_12_variants_estimated": t_loop, "tool_12_variants": t_tool,
+                                           "one_last_layer_encode": t_last, "one_hidden_states_pass": t_other},
+                               "note": f"user loop estimated as {n_last} x one last-layer encode + {n_other} x one "
+                                       "hidden-states pass, each timed on the same texts"},
+        "forward_efficiency": {"value": t_bare / t_tool, "target": ">= 0.95", "met": t_bare / t_tool >= 0.95,
                                "seconds": {"bare_forward": t_bare, "tool_12_variants": t_tool},
                                "note": "throughput ratio = bare seconds / tool seconds; the tool's time includes tokenising, "
                                        "counting tokens, hidden states and pooling 12 variants"},
@@ -126,25 +158,27 @@ CLUSTER_FIRST = "    - {method: hdbscan, min_cluster_size: 15}\n    - {method: h
 CLUSTER_SECOND = "    - {method: hdbscan, min_cluster_size: 20}\n    - {method: hdbscan, min_cluster_size: 40, cluster_selection_method: leaf}\n    - {method: kmeans, k: 8}"
 
 
+@group("rerun_fraction")
 def rerun_figures(n_texts: int, repeats: int) -> dict:
     """rerun_fraction: a 24-trial sweep, then the same sweep with only clustering settings changed."""
     import numpy as np
 
     from harness.reduce import UmapSettings, umap_reduced
     from harness.runner import run_sweep_file
+    from harness.tracking import SweepTracker, default_tracking_uri
 
     # UMAP compiles once per process (numba); pay it before timing, as any later run in the process would.
     umap_reduced(np.random.default_rng(0).normal(size=(300, 20)).astype(np.float32), UmapSettings(method="umap"), 0)
     ratios, firsts, seconds, work = [], [], [], {}
-    for _ in range(repeats):
+    for _ in range(1):  # a full sweep run each: one repeat (the figure is a ratio of two runs taken side by side)
         with tempfile.TemporaryDirectory(dir=REPO / "results") as folder:
             folder = Path(folder)
             first_sweep = folder / "first.yaml"
             second_sweep = folder / "second.yaml"
             first_sweep.write_text(RERUN_SWEEP.format(n_texts=n_texts, model=MINILM, cluster=CLUSTER_FIRST))
             second_sweep.write_text(RERUN_SWEEP.format(n_texts=n_texts, model=MINILM, cluster=CLUSTER_SECOND))
-            run_sweep_file(first_sweep, folder, None)  # creates the MLflow store, not timed
-            (folder / "cache").exists() and __import__("shutil").rmtree(folder / "cache")
+            # The MLflow store's creation (schema migrations) is paid once per store, not timed.
+            SweepTracker(default_tracking_uri(folder), folder / "artifacts", "bench_rerun")
             started = time.perf_counter()
             first = run_sweep_file(first_sweep, folder, None, resume=False)
             first_seconds = time.perf_counter() - started
@@ -159,8 +193,8 @@ def rerun_figures(n_texts: int, repeats: int) -> dict:
     value = statistics.median(ratios)
     no_recompute = work["second"].get("forward_passes", 0) == 0 and work["second"].get("umap_fits", 0) == 0
     return {"rerun_fraction": {
-        "value": value, "target": "<= 0.10 with 0 forward passes and 0 UMAP fits",
-        "met": value <= 0.10 and no_recompute,
+        "value": value, "target": "<= 0.05 with 0 forward passes and 0 UMAP fits",
+        "met": value <= 0.05 and no_recompute,
         "seconds": {"first_run": statistics.median(firsts), "second_run": statistics.median(seconds)},
         "forward_passes_second_run": work["second"].get("forward_passes", 0),
         "umap_fits_second_run": work["second"].get("umap_fits", 0),
@@ -168,6 +202,7 @@ def rerun_figures(n_texts: int, repeats: int) -> dict:
     }}
 
 
+@group("dask", default=False)
 def dask_figures(n_texts: int, repeats: int) -> dict:
     """dask_over_local: wall time of the demo sweep on a 2-worker LocalCluster over the local executor (cold caches).
 
@@ -188,6 +223,7 @@ def dask_figures(n_texts: int, repeats: int) -> dict:
                                 "met": True, "seconds": seconds, "work": work, "workers": 2}}
 
 
+@group("onnx")
 def onnx_figures(n_texts: int, repeats: int) -> dict:
     """onnx_int8_speedup (encode throughput, int8 ONNX over fp32 PyTorch, same texts and batches) and
     onnx_int8_ari_delta (|ARI difference| of mean pooling + cosine UMAP + k-means on the demo corpus)."""
@@ -226,6 +262,7 @@ def onnx_figures(n_texts: int, repeats: int) -> dict:
     }
 
 
+@group("bootstrap_speedup")
 def bootstrap_figures(n_texts: int, repeats: int) -> dict:
     """bootstrap_speedup: the per-resample bootstrap of 3a07799 (one Python call per resample and seed, kept in
     tests/reference_bootstrap.py) over the batched one, same labels, 3 seeds' clusterings, B = 1,000, same seed."""
@@ -262,21 +299,79 @@ def bootstrap_figures(n_texts: int, repeats: int) -> dict:
     }}
 
 
-GROUPS = {"encode": encode_figures, "rerun_fraction": rerun_figures, "dask": dask_figures, "onnx": onnx_figures,
-          "bootstrap_speedup": bootstrap_figures}
+GRAPH_TEXTS = 5000  # above umap-learn's 4,096-point threshold, where a fit without a graph searches with NN-descent
 
 
+@group("umap_shared_graph")
+def umap_graph_figures(n_texts: int, repeats: int) -> dict:
+    """umap_shared_graph_ratio: 3 seeds x 2 n_components fitted on one shared neighbour graph (built once) over the
+    same 6 fits each finding its own neighbours (umap-learn's own search, as every fit did before the graph stage).
+    Clustered 384-d vectors (6 Gaussian topics), GRAPH_TEXTS points."""
+    import numpy as np
 
+    from harness.reduce import UmapSettings, neighbour_graph, neighbour_method, umap_reduced
+
+    rng = np.random.default_rng(0)
+    centres = rng.normal(size=(6, 384))
+    vectors = (centres[rng.integers(0, 6, GRAPH_TEXTS)] + rng.normal(scale=2.0, size=(GRAPH_TEXTS, 384))).astype(np.float32)
+    fits = [(UmapSettings(method="umap", n_components=k, n_neighbors=15), seed) for k in (2, 5) for seed in (0, 1, 2)]
+    method = neighbour_method(GRAPH_TEXTS)
+    warm = vectors[:300]  # numba compiles both paths once per process: paid before timing
+    umap_reduced(warm, fits[0][0], 0)
+    umap_reduced(warm, fits[0][0], 0, neighbour_graph(warm, "cosine", 15, "exact"))
+
+    def shared() -> None:
+        graph = neighbour_graph(vectors, "cosine", 15, method)
+        for settings, seed in fits:
+            umap_reduced(vectors, settings, seed, graph)
+
+    def own() -> None:
+        for settings, seed in fits:
+            umap_reduced(vectors, settings, seed)
+
+    started = time.perf_counter()
+    neighbour_graph(vectors, "cosine", 15, method)
+    t_graph = time.perf_counter() - started
+    t_shared = median_seconds(shared, 1)
+    t_own = median_seconds(own, 1)
+    value = t_shared / t_own
+    return {"umap_shared_graph_ratio": {
+        "value": value, "target": "<= 0.6", "met": value <= 0.6,
+        "seconds": {"shared_graph_6_fits": t_shared, "own_search_6_fits": t_own, "one_graph": t_graph},
+        "points": GRAPH_TEXTS, "graph_method": method,
+        "note": "one repeat each; the graph's share of a fit is what sharing can save, the layout is the rest",
+    }}
+
+
+@group("sweep_overhead")
+def sweep_overhead_figures(n_texts: int, repeats: int) -> dict:
+    """sweep_overhead_fraction: (demo wall - the summed seconds of its encode, reduction and clustering stages)
+    / demo wall, cold cache and a new MLflow store; the rest is scoring, logging, imports and bookkeeping."""
+    from harness.runner import run_sweep_file
+
+    with tempfile.TemporaryDirectory(dir=REPO / "results") as folder:
+        started = time.perf_counter()
+        result = run_sweep_file(REPO / "experiments" / "demo.yaml", Path(folder))
+        wall = time.perf_counter() - started
+    by_kind: dict[str, float] = {}
+    for entry in result.stage_log:
+        by_kind[entry["kind"]] = by_kind.get(entry["kind"], 0.0) + entry["seconds"]
+    essential = sum(by_kind.get(kind, 0.0) for kind in ("encode", "transform", "graph", "reduce", "cluster"))
+    value = (wall - essential) / wall
+    return {"sweep_overhead_fraction": {
+        "value": value, "target": "<= 0.25", "met": value <= 0.25,
+        "seconds": {"demo_wall": wall, "stages": essential, **{f"stage_{k}": v for k, v in sorted(by_kind.items())}},
+        "work": dict(result.work), "note": "one cold run of experiments/demo.yaml in this process",
+    }}
+
+
+@group("halving", default=False)
 def halving_group(n_texts: int, repeats: int) -> dict:
     """benchmarks/halving.py: successive halving against the full grid, 96 configurations (one run, not repeated)."""
     sys.path.insert(0, str(Path(__file__).resolve().parent))
     from halving import halving_figures
 
     return halving_figures(n_texts, max(n_texts // 9, 50), 3, small=False)
-
-
-# Groups run only when named with --only (outside the default `make bench` time budget).
-ON_REQUEST = {"halving": halving_group}
 
 
 def environment() -> dict:
@@ -294,14 +389,22 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--texts", type=int, default=2000)
     parser.add_argument("--repeats", type=int, default=3)
-    parser.add_argument("--only", choices=sorted(GROUPS | ON_REQUEST), action="append")
+    parser.add_argument("--only", choices=list(GROUPS), action="append", help="run only these groups")
+    parser.add_argument("--with", dest="extra", choices=list(GROUPS), action="append", default=[],
+                        help="add an on-request group to the default ones")
+    parser.add_argument("--list", action="store_true", help="list the groups and exit")
     args = parser.parse_args()
+    if args.list:
+        for entry in GROUPS.values():
+            print(f"{entry.name:<22} {'default' if entry.default else 'on request'}  {(entry.measure.__doc__ or '').splitlines()[0]}")
+        return 0
     (REPO / "results").mkdir(exist_ok=True)
     report = json.loads(RESULTS.read_text()) if RESULTS.exists() else {}
     report.setdefault("figures", {})
-    for name in args.only or sorted(GROUPS):
+    chosen = args.only or [g.name for g in GROUPS.values() if g.default or g.name in args.extra]
+    for name in chosen:
         print(f"running {name} ...", file=sys.stderr, flush=True)
-        figures = {**GROUPS, **ON_REQUEST}[name](args.texts, args.repeats)
+        figures = GROUPS[name].measure(args.texts, args.repeats)
         figures.pop("texts", None)
         for figure, data in figures.items():
             report["figures"][figure] = {**data, "texts": args.texts, "repeats": args.repeats, **environment()}

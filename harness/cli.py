@@ -93,7 +93,6 @@ def next_steps(sweep_name: str, args: argparse.Namespace) -> str:
 
 
 def command_run(args: argparse.Namespace) -> int:
-    from harness.leaderboard import descriptions_table, table
     from harness.runner import run_sweep_file
     from harness.sweep import load_sweep
 
@@ -116,6 +115,8 @@ def command_run(args: argparse.Namespace) -> int:
         resume=not args.rerun_finished, progress=progress, encode_progress=encode_progress,
         executor=args.executor, scheduler=args.scheduler, winner_map=not args.no_map,
     )
+    from harness.leaderboard import descriptions_table, table  # scoring libraries: only once the sweep has run
+
     for ranking in result.rankings.values():
         print(table(ranking))
         winner = ranking.winner

@@ -20,23 +20,27 @@ LOCAL_WORKERS = 2
 
 
 def reduce_and_cluster(pooled: np.ndarray, counts: np.ndarray, steps: list, reducer, seed: int,
-                       clusterings: list[tuple[str, object, int]], n_classes: Optional[int]) -> dict:
+                       clusterings: list[tuple[str, object, int]], n_classes: Optional[int],
+                       graph: Optional[dict] = None) -> dict:
     """One task: transform, reduce, then every clustering of that reduction. Pure; runs on a worker.
 
+    ``graph`` (a graph stage's settings) makes the reduction start from that neighbour graph, computed here as
+    the local executor computes it, so a layout is the same wherever it is fitted.
     A stage that raises does not fail the task: its error comes back under ``failed`` (stage kind -> error,
     clusterings by key), so that each trial that needs it fails alone, as with the local executor.
     """
     import joblib
 
     from harness.cluster import cluster_labels
-    from harness.reduce import reduced
+    from harness.reduce import neighbour_graph, reduced
     from harness.transforms import transformed
 
     result: dict = {"clusters": {}, "failed": {}, "cluster_failed": {}}
     # Nested joblib calls inside a task would otherwise be sent back to the cluster (ENVIRONMENT.md).
     with joblib.parallel_config(backend="sequential"):
         for kind, compute in (("transformed", lambda: transformed(pooled, counts, steps)),
-                              ("reduced", lambda: reduced(result["transformed"][0], reducer, seed))):
+                              ("reduced", lambda: reduced(result["transformed"][0], reducer, seed, None if graph is None
+                                                          else neighbour_graph(result["transformed"][0], **graph)))):
             started = time.perf_counter()
             try:
                 result[kind] = (compute(), time.perf_counter() - started)
@@ -95,7 +99,8 @@ def precompute_on_cluster(executor, trials: list[Trial], client) -> int:
         clusterings = list({t.stages["cluster"].key: (t.stages["cluster"].key, t.clusterer, t.seed) for t in members}.values())
         n_classes = executor.corpora[first.dataset].n_classes
         futures[key] = (members, client.submit(reduce_and_cluster, pooled, counts, first.steps, first.reducer, first.seed,
-                                               clusterings, n_classes, pure=False))
+                                               clusterings, n_classes, first.stages["graph"].settings
+                                               if "graph" in first.stages else None, pure=False))
     for key, (members, future) in futures.items():
         first = members[0]
         try:

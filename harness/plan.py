@@ -26,7 +26,7 @@ from harness.lexical import LEXICAL_POOLING
 from harness.pooling import MEAN_SCALED
 from harness.precomputed import PRECOMPUTED_POOLING, vectors_source
 from harness.static_vectors import STATIC_POOLINGS
-from harness.reduce import SCALE_INVARIANT_REDUCERS, SEEDED_REDUCERS
+from harness.reduce import GRAPH_REDUCERS, SCALE_INVARIANT_REDUCERS, SEEDED_REDUCERS, neighbour_method
 from harness.sweep import KEY_FAMILIES, TRANSFORMER_FAMILIES, ModelSettings, Sweep
 from harness.transforms import NORMALIZATIONS, SCALE_REMOVING, chain_label
 
@@ -37,6 +37,7 @@ STAGE_LIBRARIES: dict[str, tuple[str, ...]] = {
     "encode": ("torch", "transformers", "sentence-transformers", "tokenizers"),
     "pool": ("torch",),
     "transform": ("numpy",),
+    "graph": ("umap-learn", "pynndescent", "scikit-learn", "numba"),
     "reduce": ("umap-learn", "scikit-learn", "numba"),
     "cluster": ("hdbscan", "scikit-learn"),
     "score": ("scikit-learn", "scipy", "numpy", "pandas", "hdbscan"),
@@ -329,7 +330,10 @@ def computed_pooling(pooling: str, chain: list[Settings], reducer: Settings, mod
 def trial_stages(
     dataset_key_: str, model: ModelSettings, resolved: ResolvedModel, layers: LayerChoice, pooling: str,
     chain: list[Settings], reducer: Settings, clusterer: Settings, seed: int, dtype: str = "float32",
+    n_texts: int | None = None,
 ) -> dict[str, Stage]:
+    """The trial's stage chain; a graph-based reducer (UMAP) adds a ``graph`` stage between transform and reduce,
+    whose exact-or-approximate choice follows ``n_texts`` (exact when unknown)."""
     encode = make_stage("encode", dataset_key_, {
         "model": resolved.name, "family": model.family, "weights": resolved.weights_digest,
         "max_length": model.max_length, "long_texts": model.long_texts, "backend": model.backend,
@@ -340,12 +344,24 @@ def trial_stages(
     reduce_settings = reducer.as_params()
     if reduce_settings["method"] in SEEDED_REDUCERS:
         reduce_settings["seed"] = seed
-    reduce = make_stage("reduce", transform.key, reduce_settings)
+    graph = None
+    if reduce_settings["method"] in GRAPH_REDUCERS:
+        graph = graph_stage(transform.key, reducer, n_texts)
+    reduce = make_stage("reduce", graph.key if graph else transform.key, reduce_settings)
     cluster_settings = clusterer.as_params()
     if cluster_settings["method"] in SEEDED_CLUSTERERS:
         cluster_settings["seed"] = seed
     cluster = make_stage("cluster", reduce.key, cluster_settings)
-    return {"encode": encode, "pool": pool, "transform": transform, "reduce": reduce, "cluster": cluster}
+    stages = {"encode": encode, "pool": pool, "transform": transform, "reduce": reduce, "cluster": cluster}
+    return stages if graph is None else {**stages, "graph": graph}
+
+
+def graph_stage(transform_key: str, reducer: Settings, n_texts: int | None) -> Stage:
+    """The neighbour graph a UMAP fit starts from: keyed by the vectors (their transform key), the metric,
+    n_neighbors and whether it is exact, never by the seed, n_components or min_dist, which only shape the layout."""
+    method = neighbour_method(0 if n_texts is None else n_texts)
+    return make_stage("graph", transform_key, {"metric": reducer.metric, "n_neighbors": reducer.n_neighbors,
+                                               "method": method})
 
 
 def own_stages(stages: dict[str, Stage], layers: LayerChoice, pooling: str) -> dict[str, Stage]:
@@ -356,8 +372,10 @@ def own_stages(stages: dict[str, Stage], layers: LayerChoice, pooling: str) -> d
     return {"pool": pool, "transform": make_stage("transform", pool.key, stages["transform"].settings)}
 
 
-def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str, ResolvedModel]) -> list[Trial]:
-    """The cartesian product datasets x models x grid axes, in a stable order."""
+def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str, ResolvedModel],
+                   dataset_sizes: dict[str, int] | None = None) -> list[Trial]:
+    """The cartesian product datasets x models x grid axes, in a stable order. ``dataset_sizes`` (texts per
+    dataset) choose exact or approximate neighbour graphs; unknown sizes plan exact ones."""
     grid = sweep.grid
     shared = sweep_params(sweep)
     shown = distinct_model_labels([m.label for m in sweep.models])
@@ -377,7 +395,7 @@ def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str,
             layers, pooling = point
             chain = effective_chain(transform, normalize)
             stages = trial_stages(dataset_keys[name], model, resolved, layers, pooling, chain, reducer, clusterer,
-                                  seed, sweep.storage_dtype)
+                                  seed, sweep.storage_dtype, n_texts=(dataset_sizes or {}).get(name))
             trial = Trial(
                 dataset=name, model=model, resolved_model=resolved, layers=layers, pooling=pooling,
                 normalize=normalize, transform=tuple(transform), reducer=reducer, clusterer=clusterer, seed=seed,

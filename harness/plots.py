@@ -15,15 +15,6 @@ def pyplot():
     return plt
 
 
-def token_counts_by_cluster_figure(token_counts: np.ndarray, clusters: np.ndarray, title: str = ""):
-    """Box plot of token counts per cluster, clusters ordered by median length, noise in grey."""
-    plt = pyplot()
-    figure, axes = plt.subplots(figsize=(max(6, 0.35 * np.unique(clusters).size + 2), 4), dpi=100)
-    draw_token_counts_by_cluster(axes, token_counts, clusters, title)
-    figure.tight_layout()
-    return figure
-
-
 def draw_token_counts_by_cluster(axes, token_counts: np.ndarray, clusters: np.ndarray, title: str = "") -> None:
     ids = np.unique(clusters)
     medians = {c: np.median(token_counts[clusters == c]) for c in ids}

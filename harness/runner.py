@@ -127,7 +127,7 @@ def prepared_sweep(path: str | Path) -> PreparedSweep:
     corpora = _loaded(path, sweep, tokenizers)
     keys = {name: dataset_key(corpus) for name, corpus in corpora.items()}
     return PreparedSweep(path=path, sweep=sweep, models=models, dataset_keys=keys,
-                         trials=planned_trials(sweep, keys, models), corpora=corpora, length_tokenizers=tokenizers)
+                         trials=planned_trials(sweep, keys, models, {name: c.n_texts for name, c in corpora.items()}), corpora=corpora, length_tokenizers=tokenizers)
 
 
 WORD_COUNTS = "words"  # length_tokenizer: balance by word counts
@@ -333,8 +333,9 @@ def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings
     counts = executor.token_counts(trial)
     scores = trial_scores(clusters, counts, corpus.labels)
     # Figures of the trial's own vectors come from its own pooling, also where its clusters are computed from another.
-    scores.update(label_free_scores(clusters, counts, executor.pooled(trial, own=True), executor.reduced(trial),
-                                    seed=trial.seed, permutations=evidence.permutations, max_points=evidence.max_points))
+    vector_scores = {name: executor.label_free_score(trial, name, clusters, max_points=evidence.max_points)
+                     for name in ("silhouette", "dbcv")}
+    scores.update(label_free_scores(clusters, counts, vector_scores, seed=trial.seed, permutations=evidence.permutations))
     notes = label_free_notes(scores, clusters, executor.reduced(trial), seed=trial.seed, max_points=evidence.max_points)
     scores["length_leakage_r2"] = executor.length_leakage(trial, "transform")
     scores["length_leakage_r2_pooled"] = executor.length_leakage(trial, "pool")
@@ -349,21 +350,15 @@ def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings
 
 def _log_trial(tracker, run_id: str, trial: Trial, corpus: Corpus, scores: dict[str, float], table: list[dict],
                clusters: np.ndarray, counts: np.ndarray, notes: dict[str, str]) -> None:
-    import matplotlib.pyplot as plt
+    """A seed run's two tables in one artifact upload, then its scores and notes in one batch. No figure: the
+    report draws token counts by cluster from assignments.parquet, and a per-seed image was never opened."""
     import pandas as pd
 
-    from harness.plots import token_counts_by_cluster_figure
-
     with tempfile.TemporaryDirectory() as folder:
-        assignments = Path(folder) / "assignments.parquet"
-        _assignments_table(corpus, clusters, counts).to_parquet(assignments, index=False)
-        descriptions = Path(folder) / "clusters.parquet"
-        pd.DataFrame(table, columns=["cluster", "size", "median_tokens", "top_terms", "npmi"]).to_parquet(descriptions, index=False)
-        figure = token_counts_by_cluster_figure(counts, clusters, trial.name)
-        plot = Path(folder) / "token_counts_by_cluster.png"
-        figure.savefig(plot)
-        plt.close(figure)
-        tracker.log_files(run_id, [assignments, descriptions, plot])
+        _assignments_table(corpus, clusters, counts).to_parquet(Path(folder) / "assignments.parquet", index=False)
+        pd.DataFrame(table, columns=["cluster", "size", "median_tokens", "top_terms", "npmi"]).to_parquet(
+            Path(folder) / "clusters.parquet", index=False)
+        tracker.log_folder(run_id, Path(folder))
     crash_point("mlflow_write")
     tracker.log_results(run_id, scores, tags=notes or None)
 

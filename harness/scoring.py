@@ -29,14 +29,28 @@ def trial_scores(clusters: np.ndarray, token_counts: np.ndarray, labels: np.ndar
     return scores
 
 
-def label_free_scores(clusters: np.ndarray, token_counts: np.ndarray, pooled: np.ndarray, reduced: np.ndarray, *,
-                      seed: int, permutations: int, max_points: int) -> dict[str, float]:
-    """Scores that need no labels: silhouette on the pooled vectors, DBCV on the clustered space, size entropy,
-    and the permutation p-value of eta^2(log length | cluster)."""
+# Label-free scores computed on vectors: silhouette on the trial's own pooled vectors, DBCV on the clustered space.
+# Each is a function of (vectors, labels, max_points) and, only where the points are subsampled, of the seed;
+# the executor computes each once per distinct labelling of the same vectors (StageExecutor.label_free_score).
+VECTOR_SCORES = {"silhouette": silhouette_cosine, "dbcv": density_validity}
+# Enters the key of every cached vector score with the harness version: raise it when how silhouette or DBCV
+# is computed changes, so that no score computed by the former code is read back from the cache.
+VECTOR_SCORES_VERSION = 1
+
+
+def subsampled_points(score: str, clusters: np.ndarray) -> int:
+    """How many points a vector score samples ``max_points`` from: the clustered ones for the silhouette, all for
+    DBCV (see harness.metrics._internal)."""
+    return int((clusters != -1).sum()) if score == "silhouette" else int(clusters.size)
+
+
+def label_free_scores(clusters: np.ndarray, token_counts: np.ndarray, vector_scores: dict[str, float], *,
+                      seed: int, permutations: int) -> dict[str, float]:
+    """Scores that need no labels: the vector scores given (silhouette, DBCV), size entropy, and the permutation
+    p-value of eta^2(log length | cluster)."""
     lengths = np.maximum(np.asarray(token_counts), 1)
     return {
-        "silhouette": silhouette_cosine(pooled, clusters, max_points=max_points, seed=seed),
-        "dbcv": density_validity(reduced, clusters, max_points=max_points, seed=seed),
+        **vector_scores,
         "cluster_size_entropy": cluster_size_entropy(clusters),
         "length_eta2_pvalue": length_eta2_pvalue(lengths, clusters, permutations=permutations, seed=seed),
     }

@@ -22,10 +22,10 @@ from harness.cache import StageCache
 from harness.cluster import cluster_labels
 from harness.datasets import Corpus
 from harness.encode import long_text_info, pooled_variants, token_counts
-from harness.keys import settings_key
+from harness.keys import array_digest, settings_key
 from harness.models import LoadedEncoder, loaded_encoder
-from harness.plan import Trial, pool_stage
-from harness.reduce import reduced
+from harness.plan import Trial, make_stage, pool_stage
+from harness.reduce import neighbour_graph, reduced
 from harness.transforms import transformed
 
 BatchCallback = Callable[[int], None]
@@ -245,7 +245,20 @@ class StageExecutor:
                               lambda: (self.pooled(trial, own), self.token_counts(trial)),
                               lambda pooled, counts: transformed(pooled, counts, trial.steps), stage=stage)
 
+    def neighbour_graph(self, trial: Trial) -> np.ndarray:
+        """The neighbour graph of a UMAP trial's vectors: once per (vectors, metric, n_neighbors), for every seed,
+        n_components and min_dist that share it."""
+        stage = trial.stages["graph"]
+        return self._computed(trial, "graph", "neighbour_graphs", lambda: (self.transformed(trial),),
+                              lambda vectors: neighbour_graph(vectors, stage.settings["metric"],
+                                                              stage.settings["n_neighbors"], stage.settings["method"]),
+                              stage=stage)
+
     def reduced(self, trial: Trial) -> np.ndarray:
+        if "graph" in trial.stages:
+            return self._computed(trial, "reduce", f"{trial.reducer.method}_fits",
+                                  lambda: (self.transformed(trial), self.neighbour_graph(trial)),
+                                  lambda vectors, graph: reduced(vectors, trial.reducer, trial.seed, graph))
         return self._computed(trial, "reduce", f"{trial.reducer.method}_fits", lambda: (self.transformed(trial),),
                               lambda vectors: reduced(vectors, trial.reducer, trial.seed))
 
@@ -253,6 +266,30 @@ class StageExecutor:
         n_classes = self.corpora[trial.dataset].n_classes
         return self._computed(trial, "cluster", "clusterings", lambda: (self.reduced(trial),),
                               lambda vectors: cluster_labels(vectors, trial.clusterer, trial.seed, n_classes))
+
+    def label_free_score(self, trial: Trial, name: str, clusters: np.ndarray, *, max_points: int) -> float:
+        """Silhouette (on the trial's own pooled vectors) or DBCV (on its clustered space), once per distinct labelling.
+
+        Keyed like a stage: the vectors' stage key, a digest of the labels and the settings, with the trial's seed
+        only where the score subsamples (more than ``max_points`` points), the one case where it enters. Seeds of a
+        seed-free clustering share their labels, so they share the score.
+        """
+        from harness import __version__
+        from harness.plan import SCORES_VERSION
+        from harness.scoring import VECTOR_SCORES, VECTOR_SCORES_VERSION, subsampled_points
+
+        vectors_stage = trial.own_stages["pool"] if name == "silhouette" else trial.stages["reduce"]
+        vectors = (lambda: self.pooled(trial, own=True)) if name == "silhouette" else (lambda: self.reduced(trial))
+        subsampled = subsampled_points(name, clusters) > max_points
+        stage = make_stage("score", vectors_stage.key, {
+            "score": name, "labels": array_digest(np.asarray(clusters, dtype=np.int64)), "max_points": max_points,
+            "sample_seed": trial.seed if subsampled else None,
+            "code": {"harness": __version__, "vector_scores": VECTOR_SCORES_VERSION, "scores": SCORES_VERSION}})
+        compute = VECTOR_SCORES[name]
+        value = self._computed(trial, "score", f"{name}_computations", lambda: (vectors(),),
+                               lambda points: np.array([compute(points, clusters, max_points=max_points, seed=trial.seed)]),
+                               stage=stage)
+        return float(value[0])
 
     def _memo(self, key: tuple, compute: Callable[[], Any]) -> Any:
         if key not in self._derived:
@@ -279,6 +316,7 @@ class StageExecutor:
         seconds = lambda kind: float(self._info.get(trial.stages[kind].key, {}).get("seconds", 0.0))  # noqa: E731
         return {
             "encode_seconds": seconds("pool"),
-            "reduce_seconds": seconds("transform") + seconds("reduce"),
+            "reduce_seconds": seconds("transform") + seconds("reduce")
+            + (float(self._info.get(trial.stages["graph"].key, {}).get("seconds", 0.0)) if "graph" in trial.stages else 0.0),
             "cluster_seconds": seconds("cluster"),
         }

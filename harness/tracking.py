@@ -163,6 +163,10 @@ class SweepTracker:
         for path in files:
             self.client.log_artifact(run_id, str(path), artifact_path)
 
+    def log_folder(self, run_id: str, folder: Path) -> None:
+        """Every file of a folder as the run's artifacts, in one call."""
+        self.client.log_artifacts(run_id, str(folder))
+
     def log_text(self, run_id: str, text: str, file_name: str) -> None:
         with tempfile.TemporaryDirectory() as folder:
             path = Path(folder) / file_name

@@ -3,15 +3,17 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Any, Literal, Optional
+from typing import TYPE_CHECKING, Any, Literal, Optional
 
 import numpy as np
-import pandas as pd
 from pydantic import PositiveInt, ValidationInfo, field_validator, model_validator
 
 from harness._settings import Settings, relative_to_sweep
 from harness.datasets.corpus import Corpus, random_indices, stratified_indices
 from harness.errors import DataError
+
+if TYPE_CHECKING:  # pandas is imported when a file is read, so that parsing a sweep stays fast
+    import pandas as pd
 
 SUFFIX_FORMATS = {".csv": "csv", ".parquet": "parquet", ".pq": "parquet", ".jsonl": "jsonl", ".ndjson": "jsonl"}
 
@@ -51,6 +53,8 @@ class FileSource(Settings):
 
 
 def _read_table(path: Path, file_format: str) -> pd.DataFrame:
+    import pandas as pd
+
     try:
         if file_format == "csv":
             return pd.read_csv(path, dtype=str, keep_default_na=False, encoding="utf-8")
@@ -117,7 +121,7 @@ def file_corpus(spec: FileSource) -> Corpus:
 
     if spec.id_column is not None:
         ids = _column(frame, spec.id_column, "id_column", path).astype(str).to_numpy()
-        if pd.Series(ids).duplicated().any():
+        if len(set(ids.tolist())) < len(ids):
             raise DataError(f"{path}: id_column '{spec.id_column}': ids are not unique")
     else:
         ids = np.array([str(i) for i in range(len(frame))])

@@ -9,16 +9,18 @@ from __future__ import annotations
 
 import os
 from pathlib import Path
-from typing import Callable, Literal, Optional
+from typing import TYPE_CHECKING, Callable, Literal, Optional
 
 import numpy as np
-import pandas as pd
 from pydantic import Field, PositiveInt, ValidationInfo, field_validator, model_validator
 
 from harness._settings import Settings, relative_to_sweep
 from harness.datasets.corpus import Corpus, balanced_length_indices, per_class_indices, stratified_indices
 from harness.datasets.newsgroups_text import PARTS, stripped_message
 from harness.errors import DataError
+
+if TYPE_CHECKING:  # pandas is imported when a table is read, so that parsing a sweep stays fast
+    import pandas as pd
 
 DATA_DIR_VARIABLE = "HARNESS_DATA_DIR"
 MIRROR_FILES = {"twenty_newsgroups": "twenty_newsgroups.parquet", "ag_news": "ag_news.parquet"}
@@ -79,6 +81,8 @@ def _offline() -> bool:
 
 
 def mirror_table(source: str, folder: Path) -> Optional[pd.DataFrame]:
+    import pandas as pd
+
     path = folder / MIRROR_FILES[source]
     if not path.is_file():
         return None
@@ -148,6 +152,7 @@ def download_failure_reason(err: BaseException, offline: bool, data_home: str) -
 
 
 def _public_twenty_newsgroups() -> pd.DataFrame:
+    import pandas as pd
     from sklearn.datasets import fetch_20newsgroups, get_data_home
 
     offline = _offline()
@@ -169,6 +174,8 @@ AG_NEWS_HUB_ID = "ag_news"
 
 def hub_table(loaded, hub_id: str) -> pd.DataFrame:
     """The train and test splits of a loaded ``DatasetDict`` with a text column and a class-label column."""
+    import pandas as pd
+
     found = {split: sorted(loaded[split].column_names) for split in loaded}
     label_names = None
     if all(s in found for s in SPLITS) and all({"text", "label"} <= set(found[s]) for s in SPLITS):
