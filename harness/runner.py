@@ -267,19 +267,27 @@ def _file_sha256(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
-def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings) -> tuple[dict[str, float], list[dict], np.ndarray, np.ndarray]:
-    """Compute (or reuse) the trial's stages; score and describe its clustering."""
+def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings,
+              scored: Optional[dict] = None) -> tuple[dict[str, float], list[dict], np.ndarray, np.ndarray]:
+    """Compute (or reuse) the trial's stages; score and describe its clustering. ``scored`` holds, by trial key,
+    scores and tables computed on a cluster (``distributed_scores``), or the error computing them raised."""
     from harness.scoring import described_clusters, label_free_scores, trial_scores
 
     clusters = executor.clustered(trial)
     counts = executor.token_counts(trial)
-    scores = trial_scores(clusters, counts, corpus.labels)
-    # Figures of the trial's own vectors come from its own pooling, also where its clusters are computed from another.
-    scores.update(label_free_scores(clusters, counts, executor.pooled(trial, own=True), executor.reduced(trial),
-                                    seed=trial.seed, permutations=evidence.permutations, max_points=evidence.max_points))
-    scores["length_leakage_r2"] = executor.length_leakage(trial, "transform")
-    scores["length_leakage_r2_pooled"] = executor.length_leakage(trial, "pool")
-    table, scores["npmi_mean"] = described_clusters(executor.term_counts(trial), clusters, counts, top=evidence.top_terms)
+    if scored is not None and trial.key in scored:
+        found = scored[trial.key]
+        if isinstance(found, BaseException):
+            raise found.with_traceback(None)
+        scores, table = dict(found[0]), found[1]
+    else:
+        scores = trial_scores(clusters, counts, corpus.labels)
+        # Figures of the trial's own vectors come from its own pooling, also where its clusters are computed from another.
+        scores.update(label_free_scores(clusters, counts, executor.pooled(trial, own=True), executor.reduced(trial),
+                                        seed=trial.seed, permutations=evidence.permutations, max_points=evidence.max_points))
+        scores["length_leakage_r2"] = executor.length_leakage(trial, "transform")
+        scores["length_leakage_r2_pooled"] = executor.length_leakage(trial, "pool")
+        table, scores["npmi_mean"] = described_clusters(executor.term_counts(trial), clusters, counts, top=evidence.top_terms)
     if trial.model.family != "precomputed":  # unknown for vectors made elsewhere
         scores.update(executor.long_text_info(trial))
     if trial.model.family == "static":
@@ -323,10 +331,13 @@ def _trial_tags(trial: Trial, corpus: Corpus) -> dict[str, str]:
 
 
 def _run_configuration(tracker, executor, configuration: list[Trial], done: dict, corpus: Corpus, params: dict,
-                       evidence: EvidenceSettings, parent: str, on_trial) -> ConfigurationResult:
-    """The seed runs of one configuration under one configuration run, then the evidence over seeds."""
-    from harness.evidence import configuration_evidence, seed_free
+                       evidence: EvidenceSettings, parent: str, on_trial, scored: Optional[dict] = None,
+                       configuration_evidence: Optional[Callable] = None) -> ConfigurationResult:
+    """The seed runs of one configuration under one configuration run, then the evidence over seeds (with
+    ``scored`` and ``configuration_evidence`` from a cluster where the sweep runs on one)."""
+    from harness.evidence import configuration_evidence as evidence_here, seed_free
 
+    configuration_evidence = configuration_evidence or evidence_here
     first = configuration[0]
     config_params = {k: v for k, v in params[first.key].items() if k != "seed"}
     config_run = tracker.start_run(first.config_name, parent, "configuration", config_params, _trial_tags(first, corpus))
@@ -344,7 +355,7 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
             tracker.log_dataset(current, corpus.name, corpus.fingerprint, _source_type(corpus), corpus.source,
                                 {"rows": corpus.n_texts, "classes": corpus.n_classes})
             try:
-                scores, table, clusters, counts = run_trial(executor, trial, corpus, evidence)
+                scores, table, clusters, counts = run_trial(executor, trial, corpus, evidence, scored)
                 _log_trial(tracker, current, trial, corpus, scores, table, clusters, counts)
                 tracker.end(current, "FINISHED")
                 result.seeds.append(TrialResult(trial, "FINISHED", scores, run_id=current, clusters=clusters))
@@ -412,10 +423,12 @@ def execute_sweep(
     progress: Optional[ProgressFactory] = None,
     encode_progress=None,
     dask_client=None,
+    chunk_texts: Optional[int] = None,
 ) -> SweepResult:
     """Run every trial not already FINISHED in the experiment: sweep run -> configuration runs -> seed runs.
 
-    With a Dask client, the reductions and clusterings are computed on its cluster first.
+    With a Dask client, the forward passes, reductions, clusterings and scores are computed on its cluster
+    first, and each configuration's evidence there as it completes; MLflow is written from here only.
     """
     from harness.cache import StageCache
     from harness.leaderboard import rank_configurations, ranking_metric, table as leaderboard_table
@@ -442,17 +455,24 @@ def execute_sweep(
     params = aligned_params(prepared.trials)
     bar = progress(total=len(pending), desc="trials", unit="trial") if progress else None
     results: list[ConfigurationResult] = []
+    scored, evidence_of = None, None
     try:
         if dask_client is not None:
             from harness.distributed import precompute_on_cluster
+            from harness.distributed_encode import encode_on_cluster
+            from harness.distributed_scores import evidence_on_cluster, score_on_cluster
 
             # Inside the try: whatever the cluster does, the sweep run is closed, never left RUNNING.
-            precompute_on_cluster(executor, prepared.trials, dask_client)
+            encode_on_cluster(executor, pending, dask_client, **({"chunk_size": chunk_texts} if chunk_texts else {}))
+            precompute_on_cluster(executor, pending, dask_client)
+            scored = score_on_cluster(executor, pending, sweep.evidence, dask_client)
+            evidence_of = evidence_on_cluster(dask_client)
         tracker.log_text(parent, prepared.path.read_text(), "sweep.yaml")
         tracker.log_text(parent, json.dumps(dataset_cards(corpora, prepared.models), indent=2), "dataset_cards.json")
         for configuration in configurations(prepared.trials):
             results.append(_run_configuration(tracker, executor, configuration, done, corpora[configuration[0].dataset],
-                                              params, sweep.evidence, parent, bar.update if bar else (lambda: None)))
+                                              params, sweep.evidence, parent, bar.update if bar else (lambda: None),
+                                              scored, evidence_of))
         rankings = rank_configurations(results, sweep, corpora)
         for ranking in rankings.values():
             for row in ranking.rows:
@@ -478,8 +498,10 @@ def execute_sweep(
 def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None = None, *,
                    cache_dir: Optional[Path] = None, use_cache: bool = True, resume: bool = True,
                    progress: Optional[ProgressFactory] = None, encode_progress=None,
-                   executor: str = "local", scheduler: Optional[str] = None) -> SweepResult:
-    """Everything ``harness run`` does, minus printing. The cache defaults to RESULTS_DIR/cache."""
+                   executor: str = "local", scheduler: Optional[str] = None,
+                   chunk_texts: Optional[int] = None) -> SweepResult:
+    """Everything ``harness run`` does, minus printing. The cache defaults to RESULTS_DIR/cache. ``chunk_texts``:
+    texts per encode task on a cluster (default ``distributed_encode.CHUNK_TEXTS``)."""
     from harness.tracking import default_tracking_uri
 
     from harness.tracking import check_reachable
@@ -499,7 +521,7 @@ def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None
         return execute_sweep(
             prepared, corpora, results_dir=results_dir, tracking_uri=tracking_uri or default_tracking_uri(results_dir),
             cache_dir=(cache_dir or results_dir / "cache") if use_cache else None, resume=resume,
-            progress=progress, encode_progress=encode_progress, dask_client=client,
+            progress=progress, encode_progress=encode_progress, dask_client=client, chunk_texts=chunk_texts,
         )
     finally:
         if client is not None:

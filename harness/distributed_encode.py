@@ -1,0 +1,200 @@
+"""The forward pass on a Dask cluster: the texts in chunks, one task per chunk, each chunk stored on its own.
+
+A chunk is a run of consecutive texts; within it the texts are length-sorted into batches as in a local pass
+(``pooled_variants``). Each chunk's token counts and pooled variants come back to the submitting process,
+which stores them as cache entries of their own (kinds ``encode_chunk`` and ``pool_chunk``) as soon as they
+arrive, so a worker that dies costs only the chunks it held; the stage's outputs are then assembled in the
+texts' order and handed to the executor as if computed here.
+
+Each worker process loads a model once and keeps it for the chunks it gets, in a module-level dict keyed by
+the model's identity. A distributed Actor would also hold a model, but it lives on one worker: chunks sent
+to it queue there rather than spread over the cluster, one actor per worker would have to be placed by
+hand, and an actor lost with its worker is not recreated (its calls fail), whereas a plain task whose
+worker dies is rescheduled by the scheduler on another, which finds or loads its own copy.
+
+Torch threads: each chunk task sets ``torch.set_num_threads(cores // task slots on its host)``, so the
+workers of one machine share its cores instead of each assuming all of them.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import time
+from collections import Counter
+from typing import Optional
+
+import numpy as np
+
+from harness._crashpoints import crash_point
+from harness.keys import canonical_json, chained_key, texts_digest
+from harness.plan import Trial
+
+CHUNK_TEXTS = 512  # texts per task: long enough to fill a few batches, short enough that a lost one costs little
+CLUSTER_FAMILIES = ("sentence_transformer", "transformer")  # word vectors, TF-IDF and files stay local
+
+_ENCODERS: dict[tuple, object] = {}  # on a worker process: model identity -> the loaded model
+_WORKER_WORK: Counter = Counter()  # on a worker process: models loaded, chunks encoded
+
+
+# -- keys (pure) -----------------------------------------------------------------------------------------------
+def chunk_bounds(n_texts: int, chunk_size: int) -> list[tuple[int, int]]:
+    """[start, stop) of each chunk of consecutive texts; the last may be shorter."""
+    if chunk_size < 1:
+        raise ValueError(f"chunk_size must be a positive number of texts; got {chunk_size}")
+    return [(start, min(start + chunk_size, n_texts)) for start in range(0, n_texts, chunk_size)]
+
+
+def chunk_identity(ids: list, texts: list[str]) -> dict:
+    """What a chunk's output depends on beyond its stage: its texts (content, in order) and their ids."""
+    ids_digest = hashlib.sha256(canonical_json([str(i) for i in ids]).encode()).hexdigest()
+    return {"ids": ids_digest, "texts": texts_digest(list(texts), None), "n_texts": len(texts)}
+
+
+def chunk_key(stage_key: str, ids: list, texts: list[str]) -> str:
+    """Key of one chunk of a stage: the stage's key (for counts the encode key, for vectors a pool key, which
+    holds the encode key) chained with the chunk's ids and texts."""
+    return chained_key("chunk", stage_key, chunk_identity(ids, texts))
+
+
+# -- on a worker -----------------------------------------------------------------------------------------------
+def _worker_encoder(model, max_length: Optional[int], trust_remote_code: bool):
+    from harness.models import loaded_encoder
+
+    identity = (str(model.folder), model.family, model.weights_digest, max_length, trust_remote_code, model.device.name)
+    if identity not in _ENCODERS:
+        _ENCODERS[identity] = loaded_encoder(model, max_length, trust_remote_code)
+        _WORKER_WORK["model_loads"] += 1
+    return _ENCODERS[identity]
+
+
+def torch_threads(slots_per_host: dict[str, int]) -> int:
+    """This process's share of its machine's cores: cores // task slots on this host (at least 1)."""
+    host = "local"
+    try:
+        from distributed import get_worker
+
+        host = get_worker().address.rsplit(":", 1)[0]
+    except (ImportError, ValueError):
+        pass
+    slots = slots_per_host.get(host) or max(slots_per_host.values(), default=1)
+    return max(1, (os.cpu_count() or 1) // max(1, slots))
+
+
+def encoded_chunk(model, max_length: Optional[int], trust_remote_code: bool, texts: list[str], variants: list,
+                  batch_size: int, long_texts: str, threads: int) -> dict:
+    """One task: token counts and every pooled variant of a chunk of texts (length-sorted within the chunk)."""
+    import torch
+
+    from harness.encode import pooled_variants, token_counts
+
+    torch.set_num_threads(threads)
+    encoder = _worker_encoder(model, max_length, trust_remote_code)
+    started = time.perf_counter()
+    counts = token_counts(encoder, texts)
+    pooled = pooled_variants(encoder, texts, variants, batch_size=batch_size, counts=counts, long_texts=long_texts)
+    _WORKER_WORK["chunks"] += 1
+    crash_point("encode_chunk")  # after the work, before the result leaves: the worst moment to lose a worker
+    return {"counts": counts, "variants": [pooled[tuple(v)] for v in variants], "seconds": time.perf_counter() - started,
+            "worker": os.getpid(), "worker_model_loads": _WORKER_WORK["model_loads"], "threads": torch.get_num_threads()}
+
+
+def encode_summary(model, max_length: Optional[int], trust_remote_code: bool, counts: np.ndarray, long_texts: str) -> dict:
+    """One task: what happened to long texts (``encode.long_text_info``), from all counts and the worker's model."""
+    from harness.encode import long_text_info
+
+    return long_text_info(counts, _worker_encoder(model, max_length, trust_remote_code), long_texts)
+
+
+# -- on the submitter ------------------------------------------------------------------------------------------
+def task_slots_per_host(client) -> dict[str, int]:
+    """Threads Dask may run at once on each host (the sum of its workers' threads)."""
+    slots: Counter = Counter()
+    for address, worker in client.scheduler_info(n_workers=-1)["workers"].items():
+        slots[address.rsplit(":", 1)[0]] += int(worker.get("nthreads", 1))
+    return dict(slots)
+
+
+def _stored_chunk(executor, keys: list[tuple[str, str]]) -> Optional[list[np.ndarray]]:
+    if executor.cache is None:
+        return None
+    arrays = []
+    for kind, key in keys:
+        found = executor.cache.get(kind, key)
+        if found is None:
+            return None
+        arrays.append(np.asarray(found[0]))
+    return arrays
+
+
+def encode_on_cluster(executor, trials: list[Trial], client, chunk_size: int = CHUNK_TEXTS) -> dict:
+    """Encode, on the cluster, every transformer encode key the trials need that is not stored yet.
+
+    Returns what was done: chunks sent, chunks read back from the cache, and the torch threads per task.
+    A chunk that fails on the cluster leaves its encode key to the submitting process, which computes it (or
+    fails the trials that need it, as it would locally) when a trial asks for it.
+    """
+    from dask.distributed import as_completed
+
+    slots = task_slots_per_host(client)
+    threads = max(1, (os.cpu_count() or 1) // max(1, max(slots.values(), default=1)))
+    report = {"chunks_sent": 0, "chunks_cached": 0, "torch_threads": threads, "task_slots": slots}
+    firsts: dict[str, Trial] = {}
+    for trial in trials:
+        if trial.model.family in CLUSTER_FAMILIES and trial.model.backend == "torch":
+            firsts.setdefault(trial.stages["encode"].key, trial)
+    for encode_key, first in firsts.items():
+        wanted = executor.wanted_pools(first)
+        missing = [v for v, key in wanted.items() if not executor.holds("pool", key)]
+        if not missing and executor.holds("encode", encode_key):
+            continue
+        variants = sorted(wanted, key=str)  # every variant: one pass gives them all, and the chunk keys are stable
+        corpus = executor.corpora[first.dataset]
+        spec = first.model
+        started = time.perf_counter()
+        chunks, futures = {}, {}
+        for index, (start, stop) in enumerate(chunk_bounds(corpus.n_texts, chunk_size)):
+            ids, texts = list(corpus.ids[start:stop]), list(corpus.texts[start:stop])
+            keys = [("encode_chunk", chunk_key(encode_key, ids, texts))]
+            keys += [("pool_chunk", chunk_key(wanted[v], ids, texts)) for v in variants]
+            stored = _stored_chunk(executor, keys)
+            if stored is not None:
+                chunks[index] = stored
+                report["chunks_cached"] += 1
+                executor.work["encode_chunk_cache_hits"] += 1
+                continue
+            future = client.submit(encoded_chunk, first.resolved_model, spec.max_length, spec.trust_remote_code, texts,
+                                   variants, spec.batch_size, spec.long_texts, threads,
+                                   key=f"harness-encode-chunk-{keys[0][1]}", pure=False)
+            futures[future] = (index, keys)
+        seen_workers: dict[int, int] = {}
+        failed = False
+        for future in as_completed(list(futures)):
+            index, keys = futures.pop(future)
+            try:
+                result = future.result()
+            except Exception:  # a chunk lost for good: this encode key is computed here when a trial needs it
+                failed = True
+                executor.work["encode_chunks_failed_on_cluster"] += 1
+                continue
+            arrays = [result["counts"], *result["variants"]]
+            if executor.cache is not None:  # stored as it arrives: a later loss costs only the chunks not yet here
+                for (kind, key), array in zip(keys, arrays):
+                    executor.cache.put(kind, key, array, {"seconds": result["seconds"], "computed_on": "dask",
+                                                          "torch_threads": result["threads"]})
+            chunks[index] = arrays
+            seen_workers[result["worker"]] = max(seen_workers.get(result["worker"], 0), result["worker_model_loads"])
+            report["chunks_sent"] += 1
+            executor.work["encode_chunks_from_cluster"] += 1
+            future.release()
+        executor.work["model_loads_on_cluster"] += sum(seen_workers.values())
+        if failed:
+            continue
+        ordered = [chunks[i] for i in range(len(chunks))]
+        counts = np.concatenate([c[0] for c in ordered])
+        pooled = {v: np.concatenate([c[1 + i] for c in ordered]) for i, v in enumerate(variants)}
+        summary = client.submit(encode_summary, first.resolved_model, spec.max_length, spec.trust_remote_code, counts,
+                                spec.long_texts, pure=False).result()
+        executor.adopt_encoding(first, counts, summary, pooled, time.perf_counter() - started, computed_on="dask")
+    executor.work["encode_torch_threads"] = threads
+    return report
