@@ -83,7 +83,7 @@ def dask_encode_figures(n_texts: int = 2000, repeats: int = 1) -> dict:
         "value": dask_seconds / local_seconds, "target": "reported (< 1 means the cluster is faster)", "met": True,
         "seconds": {"local": local_seconds, "dask": dask_seconds}, "texts": n_texts, "workers": WORKERS,
         "chunk_texts": CHUNK_TEXTS, "chunks": report["chunks_sent"],
-        "torch_threads": {"local": local_threads, "per_dask_worker": report["torch_threads"]},
+        "torch_threads": {"local": local_threads, "per_dask_worker": report["torch_threads"]}, "task_slots_per_host": report["task_slots"],
         "cores": os.cpu_count(), "model": MINILM,
     }}
 

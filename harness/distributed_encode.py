@@ -65,6 +65,7 @@ def _worker_encoder(model, max_length: Optional[int], trust_remote_code: bool):
     if identity not in _ENCODERS:
         _ENCODERS[identity] = loaded_encoder(model, max_length, trust_remote_code)
         _WORKER_WORK["model_loads"] += 1
+        _WORKER_WORK["just_loaded"] = 1
     return _ENCODERS[identity]
 
 
@@ -82,21 +83,24 @@ def torch_threads(slots_per_host: dict[str, int]) -> int:
 
 
 def encoded_chunk(model, max_length: Optional[int], trust_remote_code: bool, texts: list[str], variants: list,
-                  batch_size: int, long_texts: str, threads: int) -> dict:
+                  batch_size: int, long_texts: str, slots_per_host: dict[str, int]) -> dict:
     """One task: token counts and every pooled variant of a chunk of texts (length-sorted within the chunk)."""
     import torch
 
     from harness.encode import pooled_variants, token_counts
 
-    torch.set_num_threads(threads)
+    torch.set_num_threads(torch_threads(slots_per_host))
+    _WORKER_WORK["just_loaded"] = 0
     encoder = _worker_encoder(model, max_length, trust_remote_code)
+    loaded = _WORKER_WORK["just_loaded"]  # whether this chunk paid for loading the model on this worker
     started = time.perf_counter()
     counts = token_counts(encoder, texts)
     pooled = pooled_variants(encoder, texts, variants, batch_size=batch_size, counts=counts, long_texts=long_texts)
     _WORKER_WORK["chunks"] += 1
     crash_point("encode_chunk")  # after the work, before the result leaves: the worst moment to lose a worker
     return {"counts": counts, "variants": [pooled[tuple(v)] for v in variants], "seconds": time.perf_counter() - started,
-            "worker": os.getpid(), "worker_model_loads": _WORKER_WORK["model_loads"], "threads": torch.get_num_threads()}
+            "worker": os.getpid(), "worker_model_loads": _WORKER_WORK["model_loads"], "model_loaded": loaded,
+            "threads": torch.get_num_threads()}
 
 
 def encode_summary(model, max_length: Optional[int], trust_remote_code: bool, counts: np.ndarray, long_texts: str) -> dict:
@@ -130,15 +134,15 @@ def _stored_chunk(executor, keys: list[tuple[str, str]]) -> Optional[list[np.nda
 def encode_on_cluster(executor, trials: list[Trial], client, chunk_size: int = CHUNK_TEXTS) -> dict:
     """Encode, on the cluster, every transformer encode key the trials need that is not stored yet.
 
-    Returns what was done: chunks sent, chunks read back from the cache, and the torch threads per task.
+    Returns what was done: chunks sent, chunks read back from the cache, the torch threads the chunk tasks ran
+    with, and the task slots per host they were derived from.
     A chunk that fails on the cluster leaves its encode key to the submitting process, which computes it (or
     fails the trials that need it, as it would locally) when a trial asks for it.
     """
     from dask.distributed import as_completed
 
     slots = task_slots_per_host(client)
-    threads = max(1, (os.cpu_count() or 1) // max(1, max(slots.values(), default=1)))
-    report = {"chunks_sent": 0, "chunks_cached": 0, "torch_threads": threads, "task_slots": slots}
+    report = {"chunks_sent": 0, "chunks_cached": 0, "torch_threads": set(), "task_slots": slots}
     firsts: dict[str, Trial] = {}
     for trial in trials:
         if trial.model.family in CLUSTER_FAMILIES and trial.model.backend == "torch":
@@ -164,10 +168,9 @@ def encode_on_cluster(executor, trials: list[Trial], client, chunk_size: int = C
                 executor.work["encode_chunk_cache_hits"] += 1
                 continue
             future = client.submit(encoded_chunk, first.resolved_model, spec.max_length, spec.trust_remote_code, texts,
-                                   variants, spec.batch_size, spec.long_texts, threads,
+                                   variants, spec.batch_size, spec.long_texts, slots,
                                    key=f"harness-encode-chunk-{keys[0][1]}", pure=False)
             futures[future] = (index, keys)
-        seen_workers: dict[int, int] = {}
         failed = False
         for future in as_completed(list(futures)):
             index, keys = futures.pop(future)
@@ -183,11 +186,11 @@ def encode_on_cluster(executor, trials: list[Trial], client, chunk_size: int = C
                     executor.cache.put(kind, key, array, {"seconds": result["seconds"], "computed_on": "dask",
                                                           "torch_threads": result["threads"]})
             chunks[index] = arrays
-            seen_workers[result["worker"]] = max(seen_workers.get(result["worker"], 0), result["worker_model_loads"])
+            executor.work["model_loads_on_cluster"] += result["model_loaded"]
             report["chunks_sent"] += 1
+            report["torch_threads"].add(result["threads"])
             executor.work["encode_chunks_from_cluster"] += 1
             future.release()
-        executor.work["model_loads_on_cluster"] += sum(seen_workers.values())
         if failed:
             continue
         ordered = [chunks[i] for i in range(len(chunks))]
@@ -196,5 +199,7 @@ def encode_on_cluster(executor, trials: list[Trial], client, chunk_size: int = C
         summary = client.submit(encode_summary, first.resolved_model, spec.max_length, spec.trust_remote_code, counts,
                                 spec.long_texts, pure=False).result()
         executor.adopt_encoding(first, counts, summary, pooled, time.perf_counter() - started, computed_on="dask")
-    executor.work["encode_torch_threads"] = threads
+    if report["torch_threads"]:  # logged with the sweep's work counters (the fewest, where hosts differ)
+        executor.work["encode_torch_threads_per_worker"] = min(report["torch_threads"])
+    report["torch_threads"] = sorted(report["torch_threads"])
     return report
