@@ -1,7 +1,8 @@
 """The forward pass on a Dask cluster: the texts in chunks, one task per chunk, each chunk stored on its own.
 
-A chunk is a run of consecutive texts; within it the texts are length-sorted into batches as in a local pass
-(``pooled_variants``). Each chunk's token counts and pooled variants come back to the submitting process,
+Token counts are taken in chunks of consecutive texts; the vectors then in chunks of the texts sorted by length
+over the whole corpus, whole batches each, so that every batch is the one a local pass (``pooled_variants``)
+makes and the vectors equal the local ones. Each chunk's counts or pooled variants come back to the submitting process,
 which stores them as cache entries of their own (kinds ``encode_chunk`` and ``pool_chunk``) as soon as they
 arrive, so a worker that dies costs only the chunks it held; the stage's outputs are then assembled in the
 texts' order and handed to the executor as if computed here.
@@ -98,7 +99,7 @@ def encoded_chunk(model, max_length: Optional[int], trust_remote_code: bool, tex
     pooled = pooled_variants(encoder, texts, variants, batch_size=batch_size, counts=counts, long_texts=long_texts)
     _WORKER_WORK["chunks"] += 1
     crash_point("encode_chunk")  # after the work, before the result leaves: the worst moment to lose a worker
-    return {"counts": counts, "variants": [pooled[tuple(v)] for v in variants], "seconds": time.perf_counter() - started,
+    return {"arrays": [pooled[tuple(v)] for v in variants], "seconds": time.perf_counter() - started,
             "worker": os.getpid(), "worker_model_loads": _WORKER_WORK["model_loads"], "model_loaded": loaded,
             "threads": torch.get_num_threads()}
 
@@ -131,18 +132,69 @@ def _stored_chunk(executor, keys: list[tuple[str, str]]) -> Optional[list[np.nda
     return arrays
 
 
+def vector_chunk_texts(chunk_size: int, batch_size: int) -> int:
+    """Texts per vector chunk: ``chunk_size`` rounded up to whole batches."""
+    return -(-max(1, chunk_size) // batch_size) * batch_size
+
+
+def chunk_token_counts(model, max_length: Optional[int], trust_remote_code: bool, texts: list[str]) -> dict:
+    """One task: the token counts of a chunk of texts under the model's tokenizer."""
+    from harness.encode import token_counts
+
+    _WORKER_WORK["just_loaded"] = 0
+    encoder = _worker_encoder(model, max_length, trust_remote_code)
+    return {"arrays": [token_counts(encoder, texts)], "model_loaded": _WORKER_WORK["just_loaded"], "seconds": 0.0,
+            "threads": None}
+
+
+def _chunked(executor, client, report: dict, groups: list[np.ndarray], corpus, keys_of, submit, name: str):
+    """Each group of texts' arrays, from the cache or from a task (stored as it arrives), in the groups' order;
+    None when a task is lost for good."""
+    from dask.distributed import as_completed
+
+    found, futures = {}, {}
+    for index, group in enumerate(groups):
+        ids, texts = [corpus.ids[i] for i in group], [corpus.texts[i] for i in group]
+        keys = keys_of(ids, texts)
+        stored = _stored_chunk(executor, keys)
+        if stored is not None:
+            found[index] = stored
+            executor.work[f"{name}_chunk_cache_hits"] += 1
+            continue
+        futures[submit(texts, f"harness-{name}-chunk-{keys[0][1]}")] = (index, keys)
+    failed = False
+    for future in as_completed(list(futures)):
+        index, keys = futures.pop(future)
+        try:
+            result = future.result()
+        except Exception:  # a chunk lost for good: this encode key is computed here when a trial needs it
+            failed = True
+            executor.work[f"{name}_chunks_failed_on_cluster"] += 1
+            continue
+        if executor.cache is not None:  # stored as it arrives: a later loss costs only the chunks not yet here
+            for (kind, key), array in zip(keys, result["arrays"]):
+                executor.cache.put(kind, key, array, {"seconds": result["seconds"], "computed_on": "dask",
+                                                      "torch_threads": result["threads"]})
+        found[index] = result["arrays"]
+        executor.work["model_loads_on_cluster"] += result["model_loaded"]
+        executor.work[f"{name}_chunks_from_cluster"] += 1
+        if result["threads"] is not None:
+            report["torch_threads"].add(result["threads"])
+            report["chunks_sent"] += 1
+        future.release()
+    return None if failed else [found[i] for i in range(len(groups))]
+
+
 def encode_on_cluster(executor, trials: list[Trial], client, chunk_size: int = CHUNK_TEXTS) -> dict:
     """Encode, on the cluster, every transformer encode key the trials need that is not stored yet.
 
-    Returns what was done: chunks sent, chunks read back from the cache, the torch threads the chunk tasks ran
+    Returns what was done: vector chunks sent, the torch threads the chunk tasks ran
     with, and the task slots per host they were derived from.
     A chunk that fails on the cluster leaves its encode key to the submitting process, which computes it (or
     fails the trials that need it, as it would locally) when a trial asks for it.
     """
-    from dask.distributed import as_completed
-
     slots = task_slots_per_host(client)
-    report = {"chunks_sent": 0, "chunks_cached": 0, "torch_threads": set(), "task_slots": slots}
+    report = {"chunks_sent": 0, "torch_threads": set(), "task_slots": slots}
     firsts: dict[str, Trial] = {}
     for trial in trials:
         if trial.model.family in CLUSTER_FAMILIES and trial.model.backend == "torch":
@@ -156,46 +208,34 @@ def encode_on_cluster(executor, trials: list[Trial], client, chunk_size: int = C
         corpus = executor.corpora[first.dataset]
         spec = first.model
         started = time.perf_counter()
-        chunks, futures = {}, {}
-        for index, (start, stop) in enumerate(chunk_bounds(corpus.n_texts, chunk_size)):
-            ids, texts = list(corpus.ids[start:stop]), list(corpus.texts[start:stop])
-            keys = [("encode_chunk", chunk_key(encode_key, ids, texts))]
-            keys += [("pool_chunk", chunk_key(wanted[v], ids, texts)) for v in variants]
-            stored = _stored_chunk(executor, keys)
-            if stored is not None:
-                chunks[index] = stored
-                report["chunks_cached"] += 1
-                executor.work["encode_chunk_cache_hits"] += 1
+        model_args = (first.resolved_model, spec.max_length, spec.trust_remote_code)
+        # First the token counts, in chunks of consecutive texts; then the vectors, in chunks of the texts sorted
+        # by length over the whole corpus, as many whole batches each: every batch is then the one a local pass
+        # makes, so the vectors are the local ones (padding and batch shape change float rounding otherwise).
+        if executor.holds("encode", encode_key):
+            counts = executor.token_counts(first)
+        else:
+            bounds = chunk_bounds(corpus.n_texts, chunk_size)
+            pieces = _chunked(executor, client, report, [np.arange(a, b) for a, b in bounds], corpus,
+                              lambda ids, texts: [("encode_chunk", chunk_key(encode_key, ids, texts))],
+                              lambda texts, key: client.submit(chunk_token_counts, *model_args, texts, key=key), "count")
+            if pieces is None:
                 continue
-            future = client.submit(encoded_chunk, first.resolved_model, spec.max_length, spec.trust_remote_code, texts,
-                                   variants, spec.batch_size, spec.long_texts, slots,
-                                   key=f"harness-encode-chunk-{keys[0][1]}", pure=False)
-            futures[future] = (index, keys)
-        failed = False
-        for future in as_completed(list(futures)):
-            index, keys = futures.pop(future)
-            try:
-                result = future.result()
-            except Exception:  # a chunk lost for good: this encode key is computed here when a trial needs it
-                failed = True
-                executor.work["encode_chunks_failed_on_cluster"] += 1
-                continue
-            arrays = [result["counts"], *result["variants"]]
-            if executor.cache is not None:  # stored as it arrives: a later loss costs only the chunks not yet here
-                for (kind, key), array in zip(keys, arrays):
-                    executor.cache.put(kind, key, array, {"seconds": result["seconds"], "computed_on": "dask",
-                                                          "torch_threads": result["threads"]})
-            chunks[index] = arrays
-            executor.work["model_loads_on_cluster"] += result["model_loaded"]
-            report["chunks_sent"] += 1
-            report["torch_threads"].add(result["threads"])
-            executor.work["encode_chunks_from_cluster"] += 1
-            future.release()
-        if failed:
+            counts = np.concatenate([p[0] for p in pieces])
+        order = np.argsort(-counts, kind="stable")
+        size = vector_chunk_texts(chunk_size, spec.batch_size)
+        groups = [order[start:start + size] for start in range(0, order.size, size)]
+        pieces = _chunked(executor, client, report, groups, corpus,
+                          lambda ids, texts: [("pool_chunk", chunk_key(wanted[v], ids, texts)) for v in variants],
+                          lambda texts, key: client.submit(encoded_chunk, *model_args, texts, variants, spec.batch_size,
+                                                           spec.long_texts, slots, key=key), "encode")
+        if pieces is None:
             continue
-        ordered = [chunks[i] for i in range(len(chunks))]
-        counts = np.concatenate([c[0] for c in ordered])
-        pooled = {v: np.concatenate([c[1 + i] for c in ordered]) for i, v in enumerate(variants)}
+        pooled = {}
+        for i, variant in enumerate(variants):
+            pooled[variant] = np.empty((corpus.n_texts, pieces[0][i].shape[1]), dtype=pieces[0][i].dtype)
+            for group, piece in zip(groups, pieces):
+                pooled[variant][group] = piece[i]
         summary = client.submit(encode_summary, first.resolved_model, spec.max_length, spec.trust_remote_code, counts,
                                 spec.long_texts, pure=False).result()
         executor.adopt_encoding(first, counts, summary, pooled, time.perf_counter() - started, computed_on="dask")

@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from harness.cache import StageCache
-from harness.distributed_encode import chunk_bounds, chunk_key, encode_on_cluster
+from harness.distributed_encode import chunk_key, encode_on_cluster, vector_chunk_texts
 from harness.keys import chained_key
 from harness.plan import library_versions, make_stage, pool_stage
 from harness.pooling import POOLINGS
@@ -54,7 +54,8 @@ grid:
     return prepared, loaded_corpora(prepared)
 
 
-# Chunk sizes: one that does not divide the 50 texts, one that does, one larger than the corpus.
+# Chunk sizes (rounded up to whole batches of 4: 8, 28, 64): ones that do not divide the 50 texts, one larger
+# than the corpus; 25 divides the 50 texts of the consecutive chunks the token counts are taken in.
 @pytest.mark.parametrize("chunk_size", [7, 25, 64])
 @pytest.mark.parametrize("long_texts,max_length", [("truncate", None), ("chunk_mean", 12)])
 def test_vectors_from_the_cluster_equal_the_local_ones(tmp_path, tiny_model_dir, cluster_client, chunk_size,
@@ -63,7 +64,7 @@ def test_vectors_from_the_cluster_equal_the_local_ones(tmp_path, tiny_model_dir,
     local = StageExecutor(corpora, prepared.trials)
     remote = StageExecutor(corpora, prepared.trials, StageCache(tmp_path / "cache"))
     report = encode_on_cluster(remote, prepared.trials, cluster_client, chunk_size=chunk_size)
-    n_chunks = len(chunk_bounds(N_TEXTS, chunk_size))
+    n_chunks = -(-N_TEXTS // vector_chunk_texts(chunk_size, 4))  # whole batches of 4 per chunk
     assert report["chunks_sent"] == n_chunks == remote.work["encode_chunks_from_cluster"]
     assert remote.work["encode_from_cluster"] == 1 and "model_loads" not in remote.work  # nothing loaded here
     # Each of the 2 worker processes loaded this model at most once, however many chunks it encoded (none at all
@@ -140,7 +141,8 @@ def test_a_worker_killed_mid_encode_costs_only_its_chunks(tmp_path, tiny_model_d
 name: killed_worker
 datasets:
   - {{source: synthetic, n_texts: {n_texts}, n_topics: 3, topic_share: 0.5, seed: 4}}
-models: [{tiny_model_dir}]
+models:
+  - {{name: {tiny_model_dir}, batch_size: 4}}
 grid:
   pooling: [mean, cls]
   reduce:
