@@ -165,7 +165,10 @@ evidence: {{resamples: 50, permutations: 19}}
     assert not remote.failed and not local.failed
     expected = _scores_without_timings(local)
     for key, scores in _scores_without_timings(remote).items():
-        assert scores == pytest.approx(expected[key], nan_ok=True), key
+        assert set(scores) == set(expected[key])
+        for name, value in scores.items():  # silhouette and DBCV: float32 sums under other threads (test_distributed)
+            rel = 1e-5 if name in ("silhouette", "dbcv") else None
+            assert value == pytest.approx(expected[key][name], nan_ok=True, rel=rel), (key, name)
     # The killed worker's replacement loads the model again: at most one load per worker process.
     assert remote.work["model_loads_on_cluster"] <= 3
     n_chunks = n_texts // chunk_size
