@@ -166,8 +166,10 @@ evidence: {{resamples: 50, permutations: 19}}
     expected = _scores_without_timings(local)
     for key, scores in _scores_without_timings(remote).items():
         assert set(scores) == set(expected[key])
-        for name, value in scores.items():  # silhouette and DBCV: float32 sums under other threads (test_distributed)
-            rel = 1e-5 if name in ("silhouette", "dbcv") else None
+        # Silhouette and DBCV: float32 sums whose order follows the threads (1 on a worker, all cores here);
+        # observed up to 1.7e-5 relative on these 120 texts, the clusterings and every other score equal.
+        for name, value in scores.items():
+            rel = 1e-4 if name in ("silhouette", "dbcv") else None
             assert value == pytest.approx(expected[key][name], nan_ok=True, rel=rel), (key, name)
     # The killed worker's replacement loads the model again: at most one load per worker process.
     assert remote.work["model_loads_on_cluster"] <= 3
