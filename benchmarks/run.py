@@ -365,6 +365,15 @@ def sweep_overhead_figures(n_texts: int, repeats: int) -> dict:
     }}
 
 
+@group("dask_encode", default=False)
+def dask_encode_group(n_texts: int, repeats: int) -> dict:
+    """dask_encode_over_local: the encode stage on a 2-worker LocalCluster over the local executor (benchmarks/dask_encode.py)."""
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from dask_encode import dask_encode_figures
+
+    return dask_encode_figures(n_texts, repeats)
+
+
 @group("halving", default=False)
 def halving_group(n_texts: int, repeats: int) -> dict:
     """benchmarks/halving.py: successive halving against the full grid, 96 configurations (one run, not repeated)."""

@@ -2,6 +2,8 @@
 
 Set HARNESS_CRASH_AT=point or point:n and the process sends itself SIGKILL the
 n-th time (default: the first) it reaches that point. Unset, nothing happens.
+With HARNESS_CRASH_ONCE=PATH as well, only the first process to create PATH dies: a
+cluster worker that replaces a killed one, or its siblings, then run on.
 """
 
 from __future__ import annotations
@@ -11,7 +13,8 @@ import signal
 from collections import Counter
 
 VARIABLE = "HARNESS_CRASH_AT"
-POINTS = ("encode_batch", "umap_fit", "between_trials", "mlflow_write", "archive_unpack")
+ONCE_VARIABLE = "HARNESS_CRASH_ONCE"
+POINTS = ("encode_batch", "umap_fit", "between_trials", "mlflow_write", "archive_unpack", "encode_chunk")
 _reached: Counter = Counter()
 
 
@@ -24,4 +27,10 @@ def crash_point(name: str) -> None:
         return
     _reached[name] += 1
     if _reached[name] >= int(nth or 1):
+        once = os.environ.get(ONCE_VARIABLE)
+        if once:
+            try:
+                os.close(os.open(once, os.O_CREAT | os.O_EXCL | os.O_WRONLY))
+            except FileExistsError:
+                return
         os.kill(os.getpid(), signal.SIGKILL)

@@ -1,9 +1,9 @@
 """Running the independent stages of a sweep on a Dask distributed cluster.
 
-Encoding stays in this process (one forward pass per model and dataset, the
-model loaded once). Every reduction, with the clusterings downstream of it, is
-then one task; the results come back into the executor, which stores them in
-the cache as if computed here, so scoring and MLflow logging proceed unchanged.
+The forward pass runs first, in chunks (``harness.distributed_encode``). Every
+reduction, with the clusterings downstream of it, is then one task; the results
+come back into the executor, which stores them in the cache as if computed here.
+Scoring follows (``harness.distributed_scores``); MLflow logging stays here.
 A LocalCluster binds to 127.0.0.1; an existing cluster is reached by address.
 """
 

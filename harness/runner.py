@@ -323,23 +323,30 @@ def _file_sha256(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
-def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings
+def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings, scored: Optional[dict] = None
               ) -> tuple[dict[str, float], list[dict], np.ndarray, np.ndarray, dict[str, str]]:
-    """Compute (or reuse) the trial's stages; score and describe its clustering. The last item: tags saying why a
-    score is NaN."""
+    """Compute (or reuse) the trial's stages; score and describe its clustering. ``scored`` holds, by trial key,
+    scores and tables computed on a cluster (``distributed_scores``), or the error computing them raised. The last
+    item: tags saying why a score is NaN."""
     from harness.scoring import described_clusters, label_free_notes, label_free_scores, trial_scores
 
     clusters = executor.clustered(trial)
     counts = executor.token_counts(trial)
-    scores = trial_scores(clusters, counts, corpus.labels)
-    # Figures of the trial's own vectors come from its own pooling, also where its clusters are computed from another.
-    vector_scores = {name: executor.label_free_score(trial, name, clusters, max_points=evidence.max_points)
-                     for name in ("silhouette", "dbcv")}
-    scores.update(label_free_scores(clusters, counts, vector_scores, seed=trial.seed, permutations=evidence.permutations))
+    if scored is not None and trial.key in scored:
+        found = scored[trial.key]
+        if isinstance(found, BaseException):
+            raise found.with_traceback(None)
+        scores, table = dict(found[0]), found[1]
+    else:
+        scores = trial_scores(clusters, counts, corpus.labels)
+        # Figures of the trial's own vectors come from its own pooling, also where its clusters are computed from another.
+        vector_scores = {name: executor.label_free_score(trial, name, clusters, max_points=evidence.max_points)
+                         for name in ("silhouette", "dbcv")}
+        scores.update(label_free_scores(clusters, counts, vector_scores, seed=trial.seed, permutations=evidence.permutations))
+        scores["length_leakage_r2"] = executor.length_leakage(trial, "transform")
+        scores["length_leakage_r2_pooled"] = executor.length_leakage(trial, "pool")
+        table, scores["npmi_mean"] = described_clusters(executor.term_counts(trial), clusters, counts, top=evidence.top_terms)
     notes = label_free_notes(scores, clusters, executor.reduced(trial), seed=trial.seed, max_points=evidence.max_points)
-    scores["length_leakage_r2"] = executor.length_leakage(trial, "transform")
-    scores["length_leakage_r2_pooled"] = executor.length_leakage(trial, "pool")
-    table, scores["npmi_mean"] = described_clusters(executor.term_counts(trial), clusters, counts, top=evidence.top_terms)
     if trial.model.family != "precomputed":  # unknown for vectors made elsewhere
         scores.update(executor.long_text_info(trial))
     if trial.model.family == "static":
@@ -379,13 +386,16 @@ def _trial_tags(trial: Trial, corpus: Corpus) -> dict[str, str]:
 def _run_configuration(tracker, executor, configuration: list[Trial], done: dict, corpus: Corpus, params: dict,
                        evidence: EvidenceSettings, parent: str, on_trial, settings: Optional[dict[str, Any]], *,
                        kind: str = "configuration", extra_params: Optional[dict] = None,
-                       extra_tags: Optional[dict] = None) -> ConfigurationResult:
-    """The seed runs of one configuration under one configuration run, then the evidence over seeds.
+                       extra_tags: Optional[dict] = None, scored: Optional[dict] = None,
+                       configuration_evidence: Optional[Callable] = None) -> ConfigurationResult:
+    """The seed runs of one configuration under one configuration run, then the evidence over seeds (with
+    ``scored`` and ``configuration_evidence`` from a cluster where the sweep runs on one).
     ``kind`` "round": an early round of a halving search (a subsample), which the leaderboard does not read and
     which logs no ``settings`` (a citation reruns a configuration on the whole corpus, never on a round's sample)."""
-    from harness.evidence import configuration_evidence, seed_free
+    from harness.evidence import configuration_evidence as evidence_here, seed_free
     from harness.tracking import CONFIGURATION_ARTIFACT
 
+    configuration_evidence = configuration_evidence or evidence_here
     first = configuration[0]
     config_params = {**{k: v for k, v in params[first.key].items() if k != "seed"}, **(extra_params or {})}
     config_run = tracker.start_run(first.config_name, parent, kind, config_params,
@@ -406,7 +416,7 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
             tracker.log_dataset(current, corpus.name, corpus.fingerprint, _source_type(corpus), corpus.source,
                                 {"rows": corpus.n_texts, "classes": corpus.n_classes})
             try:
-                scores, table, clusters, counts, notes = run_trial(executor, trial, corpus, evidence)
+                scores, table, clusters, counts, notes = run_trial(executor, trial, corpus, evidence, scored)
                 _log_trial(tracker, current, trial, corpus, scores, table, clusters, counts, notes)
                 tracker.end(current, "FINISHED")
                 result.seeds.append(TrialResult(trial, "FINISHED", scores, run_id=current, clusters=clusters))
@@ -612,12 +622,14 @@ def execute_sweep(
     encode_progress=None,
     dask_client=None,
     winner_map: bool = True,
+    chunk_texts: Optional[int] = None,
 ) -> SweepResult:
     """Run every trial not already FINISHED in the experiment: sweep run -> configuration runs -> seed runs.
 
-    With a Dask client, the reductions and clusterings are computed on its cluster first. At the end, each
-    dataset's winner gets its 2-D map, logged with its configuration run (``winner_map=False``: left out, and
-    the run says so).
+    With a Dask client, the forward passes, reductions, clusterings and scores are computed on its cluster
+    first, and each configuration's evidence there as it completes; MLflow is written from here only. At the
+    end, each dataset's winner gets its 2-D map, logged with its configuration run (``winner_map=False``: left
+    out, and the run says so).
     """
     from harness.cache import StageCache
     from harness.leaderboard import rank_configurations, ranking_metric, table as leaderboard_table
@@ -646,12 +658,18 @@ def execute_sweep(
     params = aligned_params(prepared.trials)
     bar = progress(total=len(pending), desc="trials", unit="trial") if progress else None
     results: list[ConfigurationResult] = []
+    scored, evidence_of = None, None
     try:
         if dask_client is not None and not halving:
             from harness.distributed import precompute_on_cluster
+            from harness.distributed_encode import encode_on_cluster
+            from harness.distributed_scores import evidence_on_cluster, score_on_cluster
 
             # Inside the try: whatever the cluster does, the sweep run is closed, never left RUNNING.
-            precompute_on_cluster(executor, prepared.trials, dask_client)
+            encode_on_cluster(executor, pending, dask_client, **({"chunk_size": chunk_texts} if chunk_texts else {}))
+            precompute_on_cluster(executor, pending, dask_client)
+            scored = score_on_cluster(executor, pending, sweep.evidence, dask_client)
+            evidence_of = evidence_on_cluster(dask_client)
         tracker.log_text(parent, prepared.path.read_text(), "sweep.yaml")
         tracker.log_text(parent, json.dumps(dataset_cards(corpora, prepared.models), indent=2), "dataset_cards.json")
         halving_seeds, halving_work, halving_stages = [], {}, []
@@ -664,7 +682,8 @@ def execute_sweep(
             for configuration in configurations(prepared.trials):
                 results.append(_run_configuration(tracker, executor, configuration, done, corpora[configuration[0].dataset],
                                                   params, sweep.evidence, parent, bar.update if bar else (lambda: None),
-                                                  configuration_settings(prepared, configuration)))
+                                                  configuration_settings(prepared, configuration),
+                                                  scored=scored, configuration_evidence=evidence_of))
         executor.work.update(halving_work)
         executor.stage_log += halving_stages
         rankings = rank_configurations(results, sweep, corpora)
@@ -696,8 +715,10 @@ def execute_sweep(
 def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None = None, *,
                    cache_dir: Optional[Path] = None, use_cache: bool = True, resume: bool = True,
                    progress: Optional[ProgressFactory] = None, encode_progress=None,
-                   executor: str = "local", scheduler: Optional[str] = None, winner_map: bool = True) -> SweepResult:
-    """Everything ``harness run`` does, minus printing. The cache defaults to RESULTS_DIR/cache."""
+                   executor: str = "local", scheduler: Optional[str] = None, winner_map: bool = True,
+                   chunk_texts: Optional[int] = None) -> SweepResult:
+    """Everything ``harness run`` does, minus printing. The cache defaults to RESULTS_DIR/cache. ``chunk_texts``:
+    texts per encode task on a cluster (default ``distributed_encode.CHUNK_TEXTS``)."""
     from harness.tracking import default_tracking_uri
 
     from harness.tracking import check_reachable
@@ -718,6 +739,7 @@ def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None
             prepared, corpora, results_dir=results_dir, tracking_uri=tracking_uri or default_tracking_uri(results_dir),
             cache_dir=(cache_dir or results_dir / "cache") if use_cache else None, resume=resume,
             progress=progress, encode_progress=encode_progress, dask_client=client, winner_map=winner_map,
+            chunk_texts=chunk_texts,
         )
     finally:
         if client is not None:

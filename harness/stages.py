@@ -216,6 +216,31 @@ class StageExecutor:
         self._logged(kind, seconds)
         self._keep(kind, stage.key, array, {"settings": stage.settings, "seconds": seconds, "computed_on": "dask"})
 
+    def wanted_pools(self, trial: Trial) -> dict:
+        """Every (layers, pooling) variant any trial asks of this trial's encode key, with its pool key."""
+        encode = trial.stages["encode"]
+        dtype = trial.stages["pool"].settings["dtype"]
+        return {variant: pool_stage(encode.key, *variant, dtype).key for variant in self._variants[encode.key]}
+
+    def adopt_encoding(self, trial: Trial, counts: np.ndarray, long_text: dict, pooled: dict, seconds: float,
+                       computed_on: str) -> None:
+        """Take a forward pass computed elsewhere (chunks on a cluster, assembled in the texts' order): the token
+        counts with what happened to long texts, and every pooled variant, as if computed here."""
+        encode = trial.stages["encode"]
+        dtype = trial.stages["pool"].settings["dtype"]
+        wanted = self.wanted_pools(trial)
+        self.work["forward_passes"] += 1
+        self.work["encode_from_cluster"] += 1
+        self._logged("encode", seconds)
+        if not self._held("encode", encode.key):
+            self._keep("encode", encode.key, counts, {"settings": encode.settings, **long_text, "seconds": seconds,
+                                                      "computed_on": computed_on})
+        for variant, array in pooled.items():
+            if not self._held("pool", wanted[variant]):
+                self._keep("pool", wanted[variant], array.astype(dtype, copy=False),
+                           {"settings": {"layers": variant[0], "pooling": variant[1], "dtype": dtype},
+                            "seconds": seconds, "computed_on": computed_on})
+
     def refuse(self, trial: Trial, kind: str, error: BaseException) -> None:
         """Record that computing this stage elsewhere (a cluster worker) raised ``error``: every trial that needs
         the stage then raises it, and fails as it would have here, without computing it again."""
