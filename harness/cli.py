@@ -357,6 +357,7 @@ def _add_store_options(command: argparse.ArgumentParser) -> None:
 
 _EXAMPLES = (
     ("harness plan experiments/demo.yaml", "list the trials and the work they need"),
+    ("harness plan experiments/demo.yaml --estimate", "and the expected seconds and peak memory per stage here"),
     ("harness run experiments/demo.yaml", "run them, log to MLflow, print the leaderboard"),
     ("harness report demo", "HTML and Markdown report of the newest run"),
     ("harness ui", "browse the runs in MLflow (prints a link per sweep)"),
@@ -398,7 +399,7 @@ def parser() -> argparse.ArgumentParser:
     plan.add_argument("--estimate", action="store_true",
                       help="also print the expected seconds and peak memory per stage on this machine (calibrates once per model)")
     plan.add_argument("--executor", choices=("local", "dask"), default="local",
-                      help="with --estimate: where the run would compute (dask: parallel stages divided by the workers)")
+                      help="with --estimate: where the run would compute (default: local; dask: parallel stages divided by the workers)")
     plan.add_argument("--scheduler", default=None, metavar="tcp://HOST:PORT",
                       help="with --estimate --executor dask: the scheduler whose workers to count (default: a 2-worker LocalCluster)")
     plan.set_defaults(handler=command_plan)
