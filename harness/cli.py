@@ -39,6 +39,7 @@ STAGE_LABELS = {
     "encode": "forward passes",
     "pool": "pooled variants",
     "transform": "transforms",
+    "graph": "neighbour graphs",
     "reduce": "reductions",
     "cluster": "clusterings",
 }
@@ -77,7 +78,57 @@ def command_plan(args: argparse.Namespace) -> int:
         for name, corpus in prepared.corpora.items():
             print(f"  {name}: " + ", ".join(str(n) for n in round_sizes(corpus.n_texts, search.start_texts, search.factor))
                   + " texts")
+    if args.estimate:
+        print()
+        print_estimate(prepared, cache, args)
     return 0
+
+
+def cluster_workers(args: argparse.Namespace) -> int:
+    """How many workers the stages that parallelise are spread over: 1 locally, the scheduler's workers with
+    --scheduler, the default LocalCluster's otherwise."""
+    if args.executor != "dask":
+        return 1
+    from harness.distributed import LOCAL_WORKERS
+
+    if args.scheduler is None:
+        return LOCAL_WORKERS
+    from distributed import Client
+
+    try:
+        with Client(args.scheduler, timeout=10) as client:
+            return max(len(client.scheduler_info()["workers"]), 1)
+    except OSError as err:
+        raise HarnessError(f"--scheduler: cannot reach {args.scheduler}: {err}") from None
+
+
+def print_estimate(prepared, cache, args: argparse.Namespace) -> None:
+    from harness.calibration import calibrated, cpu_model, planned_stages
+    from harness.estimate import STAGES, stage_peak_mb, sweep_estimate
+
+    _quiet_libraries()
+    workers = cluster_workers(args)
+    calibrations = {spec.label: calibrated(prepared.models[spec.label], spec, cache.root) for spec in prepared.sweep.models}
+    first = next(iter(calibrations.values()))
+    estimate = sweep_estimate(planned_stages(prepared, cache.has, calibrations), first, workers)
+    where = f"{cpu_model()}, {os.cpu_count()} cores" + (f"; {workers} Dask workers" if workers > 1 else "")
+    print(f"estimate for this machine ({where}); calibration: {cache.root / 'calibration'}")
+    print(f"{'stage':<16} {'to run':>6} {'seconds':>9} {'share':>6} {'peak MB':>8}")
+    total = estimate.total_seconds
+    for kind in STAGES:
+        stage = estimate.stages[kind]
+        share = f"{stage.seconds / total:.0%}" if total > 0 else "-"
+        note = f"  ({'; '.join(stage.notes)})" if stage.notes else ""
+        print(f"{STAGE_LABELS[kind]:<16} {stage.count:>6} {stage.seconds:>9.1f} {share:>6} {stage_peak_mb(estimate, kind):>8.0f}{note}")
+    print(f"{'total':<16} {'':>6} {total:>9.1f} {'':>6} {estimate.peak_mb:>8.0f}")
+    if total > 0:
+        dominant = estimate.dominant
+        print(f"dominant stage: {STAGE_LABELS[dominant]} ({estimate.stages[dominant].seconds / total:.0%} of the estimated time)")
+    print("seconds: a calibration on this machine (a few hundred texts through the model, small UMAP, PCA, HDBSCAN,")
+    print("k-means and agglomerative fits) scaled by each stage's growth rule (harness/estimate.py); scoring and MLflow")
+    print("logging are not included. peak MB: the calibration process's measured resident memory with the model loaded,")
+    print("plus the arrays the run holds (pooled vectors, transforms, reductions) and the largest working set of one")
+    print("stage (UMAP's neighbour graph, HDBSCAN's copy, agglomerative's distances), estimated from their sizes.")
 
 
 def next_steps(sweep_name: str, args: argparse.Namespace) -> str:
@@ -347,6 +398,7 @@ def _add_store_options(command: argparse.ArgumentParser) -> None:
 
 _EXAMPLES = (
     ("harness plan experiments/demo.yaml", "list the trials and the work they need"),
+    ("harness plan experiments/demo.yaml --estimate", "and the expected seconds and peak memory per stage here"),
     ("harness run experiments/demo.yaml", "run them, log to MLflow, print the leaderboard"),
     ("harness report demo", "HTML and Markdown report of the newest run"),
     ("harness ui", "browse the runs in MLflow (prints a link per sweep)"),
@@ -387,6 +439,12 @@ def parser() -> argparse.ArgumentParser:
     plan = commands.add_parser("plan", help="list a sweep's trials and the work they need, without running anything")
     plan.add_argument("sweep", help="the sweep file (YAML)")
     _add_store_options(plan)
+    plan.add_argument("--estimate", action="store_true",
+                      help="also print the expected seconds and peak memory per stage on this machine (calibrates once per model)")
+    plan.add_argument("--executor", choices=("local", "dask"), default="local",
+                      help="with --estimate: where the run would compute (default: local; dask: parallel stages divided by the workers)")
+    plan.add_argument("--scheduler", default=None, metavar="tcp://HOST:PORT",
+                      help="with --estimate --executor dask: the scheduler whose workers to count (default: a 2-worker LocalCluster)")
     plan.set_defaults(handler=command_plan)
 
     datasets = commands.add_parser("datasets", help="cards of the built-in datasets that can be reached now")

@@ -454,7 +454,7 @@ def configurations(trials: list[Trial]) -> list[list[Trial]]:
 
 def needed_stages(trials: list[Trial], kind: str) -> dict[str, Trial]:
     """Distinct stages of a kind the trials need, each with a trial that needs it (own pooled variants included)."""
-    needed = {t.stages[kind].key: t for t in trials}
+    needed = {t.stages[kind].key: t for t in trials if kind in t.stages}  # "graph": UMAP trials only
     if kind in ("pool", "transform"):
         needed.update({t.own_stages[kind].key: t for t in trials if t.own_stages[kind].key not in needed})
     return needed
