@@ -198,22 +198,6 @@ def scored_from_rankings(rankings: Mapping[str, Any], params: Mapping[str, Mappi
     return out
 
 
-def scored_from_record(record) -> list[Scored]:
-    """From a logged sweep (readback.SweepRecord): each finished configuration's score by its dataset's metric."""
-    from harness.report import dataset_rankings
-
-    out = []
-    for ranking in dataset_rankings(record):
-        for configuration in ranking.ordered:
-            if configuration.status != "FINISHED":
-                continue
-            value = configuration.metrics.get(ranking.metric)
-            out.append(Scored(ranking.dataset, configuration_identity(configuration.params),
-                              configuration_label(configuration.name), float("nan") if value is None else float(value),
-                              ranking.metric, record.name))
-    return out
-
-
 def logged_verdict(record) -> tuple[Optional[dict], Optional[bytes]]:
     """The verdict payload and diagram a sweep run logged, or (None, None) when it logged none."""
     import tempfile

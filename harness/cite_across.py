@@ -13,13 +13,30 @@ from pathlib import Path
 from typing import Any, Optional
 
 from harness.across_corpora import (
-    DIAGRAM_ARTIFACT, gathered_scores, logged_verdict, scored_from_record, verdict_of, verdict_payload, verdict_png,
+    DIAGRAM_ARTIFACT, Scored, configuration_identity, configuration_label, gathered_scores, logged_verdict, verdict_of,
+    verdict_payload, verdict_png,
 )
 from harness.across_report import AcrossSection, across_markdown, caveat_lines
 from harness.errors import HarnessError
 from harness.readback import SweepRecord
 
 CARD_NAME = "winner-across.md"
+
+
+def scored_from_record(record) -> list[Scored]:
+    """From a logged sweep (readback.SweepRecord): each finished configuration's score by its dataset's metric."""
+    from harness.report import dataset_rankings
+
+    out = []
+    for ranking in dataset_rankings(record):
+        for configuration in ranking.ordered:
+            if configuration.status != "FINISHED":
+                continue
+            value = configuration.metrics.get(ranking.metric)
+            out.append(Scored(ranking.dataset, configuration_identity(configuration.params),
+                              configuration_label(configuration.name), float("nan") if value is None else float(value),
+                              ranking.metric, record.name))
+    return out
 
 
 def recomputed_payload(records: list[SweepRecord]) -> dict[str, Any]:
