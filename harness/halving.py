@@ -62,10 +62,16 @@ def subcorpus(corpus: Corpus, rows: np.ndarray) -> Corpus:
     )
 
 
-def survivors(values: Mapping[str, float], factor: int) -> list[str]:
+def survivors(values: Mapping[str, float], factor: int,
+              distributions: Optional[Mapping[str, Optional[np.ndarray]]] = None, level: float = 0.95) -> list[str]:
     """The configurations a round keeps: the best ceil(k / factor) by value (higher is better; no value, or NaN,
-    is worst), and every one whose value equals the last kept one's (a tie at the cut line is not broken by
-    the order of the grid). In the order of ``values``."""
+    is worst), every one whose value equals the last kept one's (a tie at the cut line is not broken by the order
+    of the grid), and, given each configuration's paired bootstrap distribution of the value (the same resampled
+    texts for every configuration of a round), every one tied with a configuration at the cut line: the paired
+    interval of their difference contains 0 (``evidence.tied_with``, the leaderboard's tie test). In the order of
+    ``values``."""
+    from harness.evidence import tied_with
+
     names = list(values)
     if not names:
         return []
@@ -74,5 +80,9 @@ def survivors(values: Mapping[str, float], factor: int) -> list[str]:
     ranked = sorted(names, key=lambda n: -score[n])  # stable: equal values keep the grid's order
     line = score[ranked[keep - 1]]
     kept = set(ranked[:keep]) | ({n for n in names if score[n] == line} if line > -math.inf else set())
+    if distributions is not None and line > -math.inf:
+        drawn = {n: d for n, d in distributions.items() if d is not None and np.size(d) > 0}
+        at_line = [n for n in kept if score[n] == line and n in drawn]
+        kept |= {n for n in names if n not in kept and n in drawn and score[n] > -math.inf
+                 and any(tied_with(drawn[m], drawn[n], level)[0] for m in at_line)}
     return [n for n in names if n in kept]
-

@@ -540,9 +540,12 @@ HALVING_ARTIFACT = "halving.json"
 
 
 def _halving_search(tracker, prepared: PreparedSweep, corpora: dict[str, Corpus], done: dict, parent: str,
-                    cache_dir: Optional[Path], encode_progress, resume: bool, on_trial) -> tuple[list, list, dict, list, dict]:
+                    cache_dir: Optional[Path], encode_progress, resume: bool, on_trial,
+                    full) -> tuple[list, list, dict, list, dict]:
     """Successive halving, per dataset: every configuration on the first nested subsample, the best 1/factor
-    on to the next, up to the whole corpus. Early rounds are logged as "round" runs (param ``round``, tag
+    (and whatever ties the cut line) on to the next, up to the whole corpus. ``full``: the sweep's executor over
+    the whole corpora, whose forward passes serve every round (a round's texts are rows of its corpus) and which
+    runs the last round. Early rounds are logged as "round" runs (param ``round``, tag
     ``harness.round``; a configuration cut there gets ``harness.cut_at``); the last round, on the whole corpus,
     as the usual configuration runs, so the leaderboard and the verdict are on the survivors only.
     Returns (last-round results, every trial result, work, stage log, the halving log)."""
@@ -558,6 +561,8 @@ def _halving_search(tracker, prepared: PreparedSweep, corpora: dict[str, Corpus]
     sweep, search = prepared.sweep, prepared.sweep.search
     final, seeds, work, stage_log, log = [], [], Counter(), [], {}
     for dataset, corpus in corpora.items():
+        full_trials = [t for t in prepared.trials if t.dataset == dataset]
+        full_by_identity = {configuration_identity(t.config_params): t for t in full_trials}
         sizes = round_sizes(corpus.n_texts, search.start_texts, search.factor)
         order = nested_order(corpus.labels, corpus.n_texts, search.seed)
         metric = ranking_metric(sweep.rank_by, corpus.labels is not None)
@@ -565,16 +570,25 @@ def _halving_search(tracker, prepared: PreparedSweep, corpora: dict[str, Corpus]
         rounds = []
         for index, size in enumerate(sizes):
             last = index == len(sizes) - 1
-            part = corpus if last else subcorpus(corpus, round_rows(order, size))
+            rows = round_rows(order, size)
+            part = corpus if last else subcorpus(corpus, rows)
             if last:
-                trials = [t for t in prepared.trials if t.dataset == dataset]
+                trials = full_trials
             else:
                 keys = {**prepared.dataset_keys, dataset: dataset_key(part)}  # the subsample's content keys its trials
-                trials = [t for t in planned_trials(sweep, keys, prepared.models) if t.dataset == dataset]
+                trials = [t for t in planned_trials(sweep, keys, prepared.models, {dataset: part.n_texts})
+                          if t.dataset == dataset]
             if alive is not None:
                 trials = [t for t in trials if configuration_identity(t.config_params) in alive]
             reusable = done if last else (_reusable_runs(tracker, trials, {dataset: part}) if resume else {})
-            executor = StageExecutor({dataset: part}, trials, StageCache(cache_dir) if cache_dir else None, encode_progress)
+            if last:
+                executor = full
+            else:
+                executor = StageExecutor({dataset: part}, trials, StageCache(cache_dir) if cache_dir else None,
+                                         encode_progress)
+                for trial in trials:
+                    if trial.key not in reusable:
+                        executor.share_rows(trial, full, full_by_identity[configuration_identity(trial.config_params)], rows)
             params = aligned_params(trials)
             results = [_run_configuration(tracker, executor, group, reusable, part, params, sweep.evidence, parent, on_trial,
                                           configuration_settings(prepared, group) if last else None,
@@ -582,11 +596,13 @@ def _halving_search(tracker, prepared: PreparedSweep, corpora: dict[str, Corpus]
                                           extra_params={"round": index, "round_texts": size},
                                           extra_tags={"harness.round": str(index), "harness.round_texts": str(size)})
                        for group in configurations(trials)]
-            work.update(executor.work)
-            stage_log += executor.stage_log
+            if not last:  # the whole corpus's executor is the sweep's own: its work is counted with the sweep's
+                work.update(executor.work)
+                stage_log += executor.stage_log
             seeds += [r for c in results for r in c.seeds]
             values = {configuration_identity(c.trials[0].config_params): _ranked_value(c, metric) for c in results}
-            kept = set(values) if last else set(survivors(values, search.factor))
+            distributions = {configuration_identity(c.trials[0].config_params): c.distributions.get(metric) for c in results}
+            kept = set(values) if last else set(survivors(values, search.factor, distributions, sweep.evidence.level))
             for c in results:
                 if configuration_identity(c.trials[0].config_params) not in kept:
                     tracker.log_results(c.run_id, {}, tags={"harness.cut_at": str(index)})
@@ -653,8 +669,7 @@ def execute_sweep(
          "harness.orphans_marked_killed": str(killed)})
     tracker.show_ranking(parent, sorted({ranking_metric(sweep.rank_by, c.labels is not None) for c in corpora.values()}))
     halving = sweep.search.strategy == "halving"
-    executor = StageExecutor(corpora, [] if halving else prepared.trials, StageCache(cache_dir) if cache_dir else None,
-                             encode_progress)
+    executor = StageExecutor(corpora, prepared.trials, StageCache(cache_dir) if cache_dir else None, encode_progress)
     params = aligned_params(prepared.trials)
     bar = progress(total=len(pending), desc="trials", unit="trial") if progress else None
     results: list[ConfigurationResult] = []
@@ -676,7 +691,7 @@ def execute_sweep(
         if halving:
             results, halving_seeds, halving_work, halving_stages, halving_log = _halving_search(
                 tracker, prepared, corpora, done, parent, cache_dir, encode_progress, resume,
-                bar.update if bar else (lambda: None))
+                bar.update if bar else (lambda: None), executor)
             tracker.log_text(parent, json.dumps(halving_log, indent=2), HALVING_ARTIFACT)
         else:
             for configuration in configurations(prepared.trials):

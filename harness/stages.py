@@ -25,6 +25,7 @@ from harness.encode import long_text_info, pooled_variants, token_counts
 from harness.keys import array_digest, settings_key
 from harness.models import LoadedEncoder, loaded_encoder
 from harness.plan import Trial, make_stage, pool_stage
+from harness.sweep import TRANSFORMER_FAMILIES
 from harness.reduce import neighbour_graph, reduced
 from harness.transforms import transformed
 
@@ -240,6 +241,43 @@ class StageExecutor:
                 self._keep("pool", wanted[variant], array.astype(dtype, copy=False),
                            {"settings": {"layers": variant[0], "pooling": variant[1], "dtype": dtype},
                             "seconds": seconds, "computed_on": computed_on})
+
+    def share_rows(self, trial: Trial, source: "StageExecutor", source_trial: Trial, rows: np.ndarray) -> None:
+        """Take this trial's forward pass as ``rows`` of ``source_trial``'s on another corpus that holds this one's
+        texts (a halving round's nested subsample): token counts and every pooled variant it wants, sliced, with
+        no forward pass of its own. Only for transformer families, whose vectors of a text do not depend on the
+        other texts (up to the float rounding of a different batch, as for batch_size, see plan.RESULT_NEUTRAL);
+        TF-IDF and static vectors with SIF or a removed component are fitted on their corpus, so they encode their
+        own. Held in memory only: nothing is written to the cache under this corpus's keys. A source whose forward
+        pass raises is left alone, and the trial computes (and fails) as usual."""
+        if trial.model.family not in TRANSFORMER_FAMILIES:
+            return
+        encode = trial.stages["encode"]
+        wanted = self.wanted_pools(trial)
+        if self._held("encode", encode.key) and all(self._held("pool", key) for key in wanted.values()):
+            return
+        source_wanted = source.wanted_pools(source_trial)
+        try:
+            counts = source.token_counts(source_trial)
+            info = long_text_info(counts[rows], source._encoder(source_trial), trial.model.long_texts)
+            pooled = {variant: source._pooled_variant(source_trial, source_wanted[variant]) for variant in wanted}
+        except Exception:  # the trial's own stages raise it again, inside the trial
+            return
+        shared = "rows of the whole corpus's forward pass"
+        self._outputs[encode.key] = counts[rows]
+        self._info[encode.key] = {"settings": encode.settings, **info, "seconds": 0.0, "computed_on": shared}
+        dtype = trial.stages["pool"].settings["dtype"]
+        for variant, key in wanted.items():
+            self._outputs[key] = pooled[variant][rows]
+            self._info[key] = {"settings": {"layers": variant[0], "pooling": variant[1], "dtype": dtype},
+                               "seconds": 0.0, "computed_on": shared}
+        self.work["encodes_shared_from_full_corpus"] += 1
+
+    def _pooled_variant(self, trial: Trial, key: str) -> np.ndarray:
+        """One pooled variant of the trial's encode key, by its pool key (computing the forward pass if needed)."""
+        if not self._held("pool", key):
+            self._encode(trial)
+        return self._outputs[key]
 
     def refuse(self, trial: Trial, kind: str, error: BaseException) -> None:
         """Record that computing this stage elsewhere (a cluster worker) raised ``error``: every trial that needs

@@ -176,3 +176,72 @@ def test_halving_without_a_start_is_refused_at_its_key(tmp_path, capsys):
     assert main(["run", str(sweep), "--results-dir", str(tmp_path / "results"), "--no-progress"]) != 0
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "search" in err[0] and "start_texts" in err[0] and str(sweep) in err[0]
+
+
+def test_a_tie_at_the_cut_line_under_the_paired_bootstrap_survives():
+    # The issue's rule: keep the best 1/F and every configuration tied with the cut line under the paired
+    # bootstrap. The tie is decided here with numpy's percentiles, independently of harness.evidence.
+    from harness.halving import survivors
+
+    rng = np.random.default_rng(0)
+    shared = rng.normal(scale=0.05, size=1000)  # the same resampled texts move every configuration alike (paired)
+    draws = {"a": 0.90 + shared, "b": 0.80 + shared + rng.normal(scale=0.004, size=1000),
+             "c": 0.79 + shared + rng.normal(scale=0.004, size=1000), "d": 0.10 + shared}
+    values = {name: float(np.mean(d)) for name, d in draws.items()}
+    low, high = np.percentile(draws["b"] - draws["c"], [2.5, 97.5])
+    c_tied = bool(low <= 0 <= high)
+    low, high = np.percentile(draws["b"] - draws["d"], [2.5, 97.5])
+    d_tied = bool(low <= 0 <= high)
+    assert (c_tied, d_tied) == (True, False)  # the case this test is about
+    assert survivors(values, 2) == ["a", "b"]  # without distributions: best half only
+    assert survivors(values, 2, draws) == ["a", "b", "c"]
+    # Unpaired noise as large as the gap: a clear cut is no longer clear, and the tie test keeps it.
+    noisy = {**draws, "d": 0.10 + rng.normal(scale=1.0, size=1000)}
+    low, high = np.percentile(noisy["b"] - noisy["d"], [2.5, 97.5])
+    assert (low <= 0 <= high) == ("d" in survivors(values, 2, noisy))
+    # A configuration without a distribution (a label-free metric, no resamples) is cut by value alone.
+    assert survivors(values, 2, {**draws, "c": None}) == ["a", "b"]
+
+
+HALVING_TRANSFORMER = """
+name: halved-encoder
+datasets:
+  - {{source: synthetic, name: easy, n_texts: 180, n_topics: 3, topic_share: 0.7, seed: 2}}
+models:
+  - {{name: {model}, max_length: 32}}
+grid:
+  pooling: [mean, max]
+  reduce:
+    - {{method: pca, n_components: 2}}
+    - {{method: pca, n_components: 5}}
+  cluster:
+    - {{method: kmeans, k: labels}}
+  seeds: [0]
+rank_by: ari
+evidence: {{resamples: 50, permutations: 9}}
+search: {{strategy: halving, start_texts: 20, factor: 3}}
+"""
+
+
+def test_every_round_takes_its_vectors_from_the_whole_corpus_forward_pass(tmp_path, tiny_model_dir):
+    # The issue: subsamples are nested, so the whole corpus's encode serves every round (no extra forward pass).
+    # Three rounds (20, 60, 180 texts), one model: one forward pass, the two early rounds' trials take rows of it.
+    from harness.encode import pooled_variants
+    from harness.models import loaded_encoder, resolve_model
+    from harness.runner import run_sweep_file
+    sweep = write_sweep(tmp_path, HALVING_TRANSFORMER.format(model=tiny_model_dir))
+    result = run_sweep_file(sweep, tmp_path / "results")
+    assert result.work["forward_passes"] == 1
+    # once per early round and encode key (the trials of a round that share the model share its rows)
+    assert result.work["encodes_shared_from_full_corpus"] == 2
+    # Rows of the whole corpus's vectors equal the subsample's own forward pass to float rounding (the batches
+    # differ, as under another batch_size: plan.RESULT_NEUTRAL), the claim the sharing rests on.
+    corpus = synthetic_corpus(SyntheticSource(source="synthetic", name="easy", n_texts=180, n_topics=3,
+                                              topic_share=0.7, seed=2))
+    rows = round_rows(nested_order(corpus.labels, corpus.n_texts, 0), 20)
+    encoder = loaded_encoder(resolve_model(str(tiny_model_dir)), 32, False)
+    variants = [("last", "mean"), ("last", "max")]
+    whole = pooled_variants(encoder, corpus.texts, variants, batch_size=32)
+    part = pooled_variants(encoder, subcorpus(corpus, rows).texts, variants, batch_size=32)
+    for variant in variants:
+        np.testing.assert_allclose(whole[variant][rows], part[variant], rtol=0, atol=1e-5 * np.abs(part[variant]).max())
