@@ -409,14 +409,16 @@ def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str,
 
 
 def trial_identity(trial: Trial) -> dict[str, Any]:
-    """What, besides its params, a trial's results depend on: the stage chains of its own vectors and of the
-    vectors its clusters are computed from (which hold the data's content, the model's files, every stage's
-    settings and library versions up to the transform), and the libraries of reduction, clustering and scoring."""
+    """What, besides its params, a trial's results depend on: the stage chains of its own vectors and of its
+    clustering (which hold the data's content, the model's files, every stage's settings and library versions,
+    down to the neighbour graph's method, which no param names), and the libraries of reduction, clustering and
+    scoring."""
     from harness import __version__
 
     return {
         "own_vectors": trial.own_stages["transform"].key,
         "clustered_vectors": trial.stages["transform"].key,
+        "clustering": trial.stages["cluster"].key,
         "versions": {"harness": __version__, **{kind: library_versions(kind) for kind in ("reduce", "cluster", "score")}},
         "scores_version": SCORES_VERSION,
     }

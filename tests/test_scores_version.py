@@ -18,7 +18,7 @@ from sklearn import metrics as skm
 
 from harness.evidence import configuration_evidence
 from harness.plan import SCORES_VERSION
-from harness.scoring import label_free_scores, trial_scores
+from harness.scoring import VECTOR_SCORES, label_free_scores, trial_scores
 
 N = 120
 
@@ -41,8 +41,10 @@ def fixed_scores() -> dict[str, float]:
     out, seed_scores = {}, []
     for seed, clusters in enumerate(clusterings):
         scores = trial_scores(clusters, counts, labels)
-        scores.update(label_free_scores(clusters, counts, vectors, vectors[:, :3], seed=seed, permutations=99,
-                                        max_points=5000))
+        # silhouette on the "pooled" vectors, DBCV on the "reduced" ones, as StageExecutor.label_free_score does
+        vector_scores = {name: float(VECTOR_SCORES[name](points, clusters, max_points=5000, seed=seed))
+                         for name, points in (("silhouette", vectors), ("dbcv", vectors[:, :3]))}
+        scores.update(label_free_scores(clusters, counts, vector_scores, seed=seed, permutations=99))
         seed_scores.append(scores)
         out.update({f"seed{seed}.{k}": v for k, v in scores.items()})
     evidence = configuration_evidence(seed_scores, clusterings, labels, resamples=200, seed=0)

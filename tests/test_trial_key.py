@@ -554,3 +554,29 @@ def test_the_cited_winner_sweep_plans_the_winner_for_every_model_family(tmp_path
         assert (planned.key, planned.config_key) == (trial.key, trial.config_key), trial.model.family
         covered.add(trial.model.family)
     assert covered == set(MODEL_FAMILIES)
+
+
+def test_the_neighbour_graph_method_enters_the_trial_key(tmp_path, monkeypatch):
+    # No param names the neighbour graph's method (exact up to harness.reduce.EXACT_NEIGHBOURS_UP_TO texts,
+    # NN-descent above), yet the UMAP layout depends on it: a resumed sweep must not reuse a seed run fitted on the
+    # other graph. Every trial of a UMAP sweep gets a new trial and configuration key when the method changes;
+    # a PCA trial (no graph) keeps its keys.
+    import harness.reduce
+
+    sweep = write_sweep(tmp_path, """name: graphs
+datasets: [{source: synthetic, n_texts: 120, seed: 1}]
+models: [{name: tfidf, family: lexical, dimensions: 8}]
+grid:
+  pooling: [mean]
+  reduce: [{method: umap, n_components: 2, n_neighbors: 5}, {method: pca, n_components: 3}]
+  cluster: [{method: kmeans, k: labels}]
+  seeds: [0, 1]
+""")
+    before = prepared_sweep(sweep).trials
+    assert {t.stages["graph"].settings["method"] for t in before if "graph" in t.stages} == {"exact"}
+    monkeypatch.setattr(harness.reduce, "EXACT_NEIGHBOURS_UP_TO", 100)
+    after = prepared_sweep(sweep).trials
+    assert {t.stages["graph"].settings["method"] for t in after if "graph" in t.stages} == {"nndescent"}
+    for old, new in zip(before, after, strict=True):
+        changed = (old.key != new.key, old.config_key != new.config_key)
+        assert changed == ((True, True) if old.reducer.method == "umap" else (False, False)), old.name
