@@ -123,6 +123,11 @@ def _evidence_lines(winner: ConfigurationRecord, metric: str) -> list[str]:
     if fewer_valid_seeds(winner, metric):
         valid, total = valid_seeds(winner, metric)
         lines += ["", f"**Ranked on {valid} of {total} seeds**: the other seeds gave no finite {metric}."]
+    if any(f"{name}_ci_low" in winner.metrics for name in ("nmi", "v_measure")):
+        lines += ["", "**NMI and V-measure** are not corrected for chance: they read high on a finite sample, more so "
+                      "with more clusters, and their intervals are for the score another sample of this size would give "
+                      "on average, not for the population's value (ARI's and AMI's are). Compare configurations with "
+                      "different numbers of clusters by ARI or AMI."]
     return lines
 
 

@@ -82,17 +82,22 @@ def seed_weights(n_seeds: int, resamples: int, seed: int) -> np.ndarray:
 
 
 def recentred(resampled: np.ndarray, estimate: float) -> np.ndarray:
-    """The resample scores shifted by the bootstrap's estimate of their bias, mean(resampled) - estimate.
+    """The resample scores shifted by the bootstrap's estimate of their bias, mean(resampled) - estimate, so that
+    they centre on the sample's score and keep their spread.
 
     A resample of n texts drawn with replacement holds about 0.632 n distinct texts, copies of one text always
     agree with each other, and a plug-in mutual information is biased upwards by about (R-1)(C-1)/(2N) for an
     R x C table of N distinct items (Miller 1955, the Miller-Madow correction; from memory). So AMI, NMI and V on
     resamples sit above the sample's score by a bias of the order of their own spread (measured at chance with
     N = 150, k = 5: 1.8 standard deviations; N = 2,000, k = 20: 8.4), and the percentile interval can miss the
-    score. There is no pair structure to remove the copies from, so the shift is the bootstrap bias correction
-    (Efron & Tibshirani 1993, An Introduction to the Bootstrap, section 10.2: bias = mean of the replications
-    minus the estimate): it keeps the resamples' spread, which gives the interval its width, and centres them on
-    the sample's score. NaN resamples are left out of the mean.
+    score. There is no pair structure to remove the copies from (as for ARI), so the shift removes the extra bias
+    resampling adds (the bias estimate of Efron & Tibshirani 1993, An Introduction to the Bootstrap, section 10.2:
+    mean of the replications minus the estimate). What the interval then covers: for AMI, corrected for chance,
+    the population's value; for NMI and V, which are not, the expected plug-in score of a sample of n texts (the
+    estimator's own upward bias stays in it; subtracting the bias twice, as E&T's bias-corrected estimate does,
+    would target the population value but leave the reported score outside its interval near chance). The
+    README's "Intervals" says so, and tests/test_evidence.py checks both by coverage. NaN resamples are left out
+    of the mean.
     """
     with np.errstate(all="ignore"):
         bias = np.nanmean(resampled) - estimate if np.any(np.isfinite(resampled)) else 0.0
