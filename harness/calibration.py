@@ -74,8 +74,14 @@ def model_identity(resolved, spec) -> dict[str, Any]:
             "device": resolved.device.key, "backend": spec.backend, "trust_remote_code": spec.trust_remote_code}
 
 
+# Enters every calibration's key: raise it when what measured_calibration times changes, so that no calibration
+# measured by the former code is read back (2: the neighbour graph timed as the run's graph stage computes it).
+CALIBRATION_VERSION = 2
+
+
 def calibration_key(resolved, spec, sizes: CalibrationSizes = DEFAULT_SIZES) -> str:
-    return settings_key({"model": model_identity(resolved, spec), "machine": machine_identity(), "sizes": asdict(sizes)})
+    return settings_key({"model": model_identity(resolved, spec), "machine": machine_identity(), "sizes": asdict(sizes),
+                         "version": CALIBRATION_VERSION})
 
 
 def calibrated(resolved, spec, cache_root: Path, sizes: CalibrationSizes = DEFAULT_SIZES) -> Calibration:
@@ -156,11 +162,9 @@ def measured_calibration(resolved, spec, sizes: CalibrationSizes = DEFAULT_SIZES
     import warnings
 
     import umap  # noqa: F401  imported before the baseline is read: every run imports it
-    from sklearn.metrics import pairwise_distances
-    from umap.umap_ import nearest_neighbors
 
     from harness.cluster import AgglomerativeSettings, HdbscanSettings, KmeansSettings, cluster_labels
-    from harness.reduce import PcaSettings, UmapSettings, reduced
+    from harness.reduce import PcaSettings, UmapSettings, neighbour_graph, reduced
 
     if resolved.family in TRANSFORMER_FAMILIES and spec.backend == "torch":
         rates, vectors, baseline = _encode_rates(resolved, spec, sizes)
@@ -174,14 +178,18 @@ def measured_calibration(resolved, spec, sizes: CalibrationSizes = DEFAULT_SIZES
     umap_settings = UmapSettings(method="umap", n_components=5, n_neighbors=15, min_dist=0.0, metric="cosine")
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore")
-        _, warmup = _timed(lambda: reduced(points[:300], umap_settings, 0))
-        _, knn_small = _timed(lambda: pairwise_distances(points[:sizes.umap_small], metric="cosine"))
-        _, fit_small = _timed(lambda: reduced(points[:sizes.umap_small], umap_settings, 0))
-        knn = lambda: nearest_neighbors(points, 15, "cosine", {}, False, np.random.RandomState(0), n_jobs=1)  # noqa: E731
+        # Timed as the run computes them: the neighbour graph stage (exact, or NN-descent), then a fit given it;
+        # "fit" is the two together, so that the layout's share is fit - knn (estimate.umap_layout_rates).
+        warm_graph = neighbour_graph(points[:300], "cosine", 15, "exact")
+        _, warmup = _timed(lambda: reduced(points[:300], umap_settings, 0, warm_graph))
+        small_graph, knn_small = _timed(lambda: neighbour_graph(points[:sizes.umap_small], "cosine", 15, "exact"))
+        _, layout_small = _timed(lambda: reduced(points[:sizes.umap_small], umap_settings, 0, small_graph))
+        knn = lambda: neighbour_graph(points, "cosine", 15, "nndescent")  # noqa: E731
         _, compile_knn = _timed(knn)  # the first NN-descent of a process compiles pynndescent's numba functions
-        _, knn_large = _timed(knn)
+        large_graph, knn_large = _timed(knn)
         warmup += max(compile_knn - knn_large, 0.0)
-        embedded, fit_large = _timed(lambda: reduced(points, umap_settings, 0))
+        embedded, layout_large = _timed(lambda: reduced(points, umap_settings, 0, large_graph))
+        fit_small, fit_large = knn_small + layout_small, knn_large + layout_large
     _, pca = _timed(lambda: reduced(points, PcaSettings(method="pca", n_components=10), 0))
     _, hdbscan = _timed(lambda: cluster_labels(embedded, HdbscanSettings(method="hdbscan", min_cluster_size=15), 0, None))
     _, kmeans = _timed(lambda: cluster_labels(embedded, KmeansSettings(method="kmeans", k=10, n_init=10), 0, None))
@@ -207,8 +215,10 @@ def planned_stages(prepared, is_cached: Callable[[str, str], bool],
     from transformers import AutoTokenizer
 
     from harness.cluster import resolved_k
-    from harness.estimate import STAGES
+    from harness.estimate import STAGES, reduced_width
+    from harness.layers import output_width
     from harness.plan import needed_stages
+    from harness.transforms import chain_width
 
     trials = prepared.trials
     planned: list[PlannedStage] = []
@@ -217,6 +227,10 @@ def planned_stages(prepared, is_cached: Callable[[str, str], bool],
         for key, trial in needed_stages(trials, kind).items():
             corpus = prepared.corpora[trial.dataset]
             n, width = corpus.n_texts, trial.resolved_model.width
+            # The vectors' width after each stage: the layer choice widens the model's (concatenated layers), a
+            # whitening step narrows it, and the reducer sets it for the clustering.
+            pooled_width = output_width(trial.layers, width)
+            transformed_width = chain_width(list(trial.transform), pooled_width)
             if kind == "encode":
                 sharing = [t for t in trials if t.stages["encode"].key == key]
                 pools = {p for t in sharing for p in (t.stages["pool"].key, t.own_stages["pool"].key)}
@@ -243,19 +257,21 @@ def planned_stages(prepared, is_cached: Callable[[str, str], bool],
                 continue
             if kind == "pool":
                 settings = {"dtype": trial.stages["pool"].settings["dtype"]}
-            elif kind == "transform":
+                width = pooled_width
+            elif kind == "transform":  # the chain's input is the pooled vectors; what it holds is its output
                 stage = trial.stages["transform"] if trial.stages["transform"].key == key else trial.own_stages["transform"]
                 settings = {"steps": len(stage.settings["chain"])}
+                width = transformed_width
             elif kind == "graph":
                 settings = dict(trial.stages["graph"].settings)
+                width = transformed_width
             elif kind == "reduce":
                 settings = trial.reducer.as_params()
+                width = transformed_width
             else:
                 settings = trial.clusterer.as_params()
                 if settings["method"] == "kmeans":
                     settings["k"] = resolved_k(trial.clusterer, corpus.n_classes)
-                from harness.estimate import reduced_width
-
-                width = reduced_width(trial.reducer.as_params(), width)
+                width = reduced_width(trial.reducer.as_params(), transformed_width)
             planned.append(PlannedStage(kind, n, width, settings))
     return planned

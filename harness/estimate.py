@@ -302,9 +302,11 @@ def sweep_estimate(planned: list[PlannedStage], cal: Calibration, workers: int =
         seconds[stage.kind].append(took)
     for kind, entry in stages.items():
         if workers > 1 and kind == "encode":
-            load = max((s.rates or cal.encode).load_seconds if (s.rates or cal.encode) else 0.0
-                       for s in planned if s.kind == "encode")
-            entry.seconds = sum(max(t - load, 0.0) for t in seconds[kind]) / workers + load * bool(seconds[kind])
+            # Each worker loads each model once (in parallel with the others) and shares the chunks' compute.
+            rates = [s.rates or cal.encode for s in planned if s.kind == "encode"]
+            loads = [r.load_seconds if r is not None else 0.0 for r in rates]
+            models = {id(r): load for r, load in zip(rates, loads)}
+            entry.seconds = sum(max(t - load, 0.0) for t, load in zip(seconds[kind], loads)) / workers + sum(models.values())
         elif workers > 1 and kind in PARALLEL_KINDS:
             entry.seconds = parallel_seconds(seconds[kind], workers)
         else:

@@ -28,14 +28,14 @@ def needs_mirror(*files: str):
     return pytest.mark.skipif(bool(missing), reason=f"needs {', '.join(missing)} in HARNESS_DATA_DIR={MIRROR_DIR}")
 
 
-def _tiny_bert(folder: Path, tokenizer, output_scale: float | None = None) -> Path:
-    """A randomly initialised 2-layer BERT (hidden 32) with this tokenizer, saved as a model folder."""
+def _tiny_bert(folder: Path, tokenizer, output_scale: float | None = None, layers: int = 2) -> Path:
+    """A randomly initialised BERT (hidden 32, 2 layers unless told) with this tokenizer, saved as a model folder."""
     import torch
     from transformers import BertConfig, BertModel
 
     torch.manual_seed(0)
     config = BertConfig(
-        vocab_size=tokenizer.vocab_size, hidden_size=32, num_hidden_layers=2, num_attention_heads=2,
+        vocab_size=tokenizer.vocab_size, hidden_size=32, num_hidden_layers=layers, num_attention_heads=2,
         intermediate_size=64, max_position_embeddings=128,
     )
     model = BertModel(config).eval()

@@ -253,9 +253,71 @@ def test_plan_estimate_prints_each_stage_the_total_and_the_dominant_stage(tmp_pa
     assert re.search(r"^reductions\s+4\s", estimate_part, re.M) and re.search(r"^clusterings\s+8\s", estimate_part, re.M)
     assert re.search(r"^forward passes\s+1\s", estimate_part, re.M)
     assert re.search(r"^total\s+[\d.]+\s+\d+$", estimate_part, re.M)
-    assert re.search(r"^dominant stage: (forward passes|pooled variants|transforms|reductions|clusterings) \(\d+%",
+    assert re.search(r"^dominant stage: (forward passes|pooled variants|transforms|neighbour graphs|reductions|clusterings) \(\d+%",
                      estimate_part, re.M)
     assert main(["plan", str(sweep), "--estimate", "--cache-dir", str(cache)]) == 0
     second = capsys.readouterr().out
     assert sum(MEASURED.values()) == measured_before + 1  # the second plan reads the calibration back
     assert second.split("estimate for this machine")[1] == first.split("estimate for this machine")[1]
+
+
+def test_each_model_loads_once_per_worker_and_its_load_is_not_divided():
+    # Two models on four workers: each worker loads each model once (in parallel with the other workers), so the
+    # wall time holds both loads in full and a quarter of the compute.
+    slow_load = EncodeRates(linear=RATES.linear, quadratic=RATES.quadratic, tokenize_per_token=RATES.tokenize_per_token,
+                            load_seconds=RATES.load_seconds + 4.0, max_length=RATES.max_length)
+    encode = {"batch_size": 32, "max_length": 128, "specials": 2, "long_texts": "truncate", "variants": 1}
+    stages = [PlannedStage("encode", 5000, 384, encode, counts=np.full(5000, 40), rates=RATES),
+              PlannedStage("encode", 5000, 384, encode, counts=np.full(5000, 40), rates=slow_load)]
+    one, four = est.sweep_estimate(stages, CAL), est.sweep_estimate(stages, CAL, workers=4)
+    loads = RATES.load_seconds + slow_load.load_seconds
+    assert one.stages["encode"].seconds == pytest.approx(sum(
+        est.encode_seconds(r, np.full(5000, 40), 32, 128, 2) for r in (RATES, slow_load)))
+    assert four.stages["encode"].seconds == pytest.approx((one.stages["encode"].seconds - loads) / 4 + loads)
+
+
+WIDTHS_SWEEP = """
+name: widths
+datasets:
+  - {{source: synthetic, n_texts: 120, seed: 1}}
+models:
+  - {{name: {model}, max_length: 32}}
+grid:
+  pooling: [mean]
+  layers: [last, concat_last_4]
+  transform: [[], [{{method: whiten, k: 8}}]]
+  reduce:
+    - {{method: umap, n_components: 5, n_neighbors: 10}}
+    - {{method: pca, n_components: 3}}
+  cluster:
+    - {{method: kmeans, k: labels}}
+  seeds: [0]
+"""
+
+
+def test_the_planned_widths_are_the_widths_the_run_computes(tmp_path):
+    # Time and memory scale with the vectors' width: the estimate must use the width each stage really has
+    # (concatenated layers widen, whitening narrows, the reducer sets the clustering's), taken here from the
+    # arrays the stage executor computes for the same sweep.
+    from harness.calibration import planned_stages
+    from harness.runner import prepared_sweep
+    from harness.stages import StageExecutor
+
+    from conftest import _minilm_tokenizer, _tiny_bert
+
+    model = _tiny_bert(tmp_path / "four_layers", _minilm_tokenizer(), layers=4)  # concat_last_4 needs 4 hidden states
+    prepared = prepared_sweep(write_sweep(tmp_path, WIDTHS_SWEEP.format(model=model)))
+    planned = planned_stages(prepared, lambda kind, key: False, {m.label: CAL for m in prepared.sweep.models})
+    executor = StageExecutor(prepared.corpora, prepared.trials, None)
+    computed = {"pool": set(), "transform": set(), "graph": set(), "reduce": set(), "cluster": set()}
+    for trial in prepared.trials:
+        computed["pool"].add(executor.pooled(trial).shape[1])
+        width = executor.transformed(trial).shape[1]
+        computed["transform"].add(width)
+        computed["reduce"].add(width)
+        if "graph" in trial.stages:
+            computed["graph"].add(width)
+        computed["cluster"].add(executor.reduced(trial).shape[1])
+    for kind, widths in computed.items():
+        assert {s.width for s in planned if s.kind == kind} == widths, kind
+    assert computed["pool"] == {32, 128} and computed["transform"] == {32, 128, 8}  # the cases this test is about
