@@ -19,28 +19,54 @@ from harness.plan import Trial
 LOCAL_WORKERS = 2
 
 
+def graph_task(pooled: np.ndarray, counts: np.ndarray, steps: list, settings: dict) -> dict:
+    """One task: transform, then the neighbour graph (harness.reduce.neighbour_graph, as the local executor
+    computes it), once per graph key; every UMAP fit that shares it starts from it. Pure; runs on a worker.
+    Returns {"graph": (array, seconds)}, or {"failed": {stage kind: error}}."""
+    import joblib
+
+    from harness.reduce import neighbour_graph
+    from harness.transforms import transformed
+
+    with joblib.parallel_config(backend="sequential"):
+        try:
+            vectors = transformed(pooled, counts, steps)
+        except Exception as err:
+            return {"failed": {"transformed": _with_remote_traceback(err)}}
+        started = time.perf_counter()
+        try:
+            graph = neighbour_graph(vectors, settings["metric"], settings["n_neighbors"], settings["method"])
+        except Exception as err:
+            return {"failed": {"graph": _with_remote_traceback(err)}}
+    return {"graph": (graph, time.perf_counter() - started)}
+
+
 def reduce_and_cluster(pooled: np.ndarray, counts: np.ndarray, steps: list, reducer, seed: int,
                        clusterings: list[tuple[str, object, int]], n_classes: Optional[int],
-                       graph: Optional[dict] = None) -> dict:
+                       shared_graph: Optional[dict] = None) -> dict:
     """One task: transform, reduce, then every clustering of that reduction. Pure; runs on a worker.
 
-    ``graph`` (a graph stage's settings) makes the reduction start from that neighbour graph, computed here as
-    the local executor computes it, so a layout is the same wherever it is fitted.
+    ``shared_graph`` (a ``graph_task`` result, or the stored graph as {"graph": (array, seconds)}) makes the
+    reduction start from that neighbour graph, so a layout is the same wherever it is fitted.
     A stage that raises does not fail the task: its error comes back under ``failed`` (stage kind -> error,
     clusterings by key), so that each trial that needs it fails alone, as with the local executor.
     """
     import joblib
 
     from harness.cluster import cluster_labels
-    from harness.reduce import neighbour_graph, reduced
+    from harness.reduce import reduced
     from harness.transforms import transformed
 
     result: dict = {"clusters": {}, "failed": {}, "cluster_failed": {}}
+    if shared_graph is not None and "failed" in shared_graph:  # the graph (or the transform before it) raised
+        result["failed"].update({kind if kind == "transformed" else "reduced": err
+                                 for kind, err in shared_graph["failed"].items()})
+        return result
+    graph = None if shared_graph is None else shared_graph["graph"][0]
     # Nested joblib calls inside a task would otherwise be sent back to the cluster (ENVIRONMENT.md).
     with joblib.parallel_config(backend="sequential"):
         for kind, compute in (("transformed", lambda: transformed(pooled, counts, steps)),
-                              ("reduced", lambda: reduced(result["transformed"][0], reducer, seed, None if graph is None
-                                                          else neighbour_graph(result["transformed"][0], **graph)))):
+                              ("reduced", lambda: reduced(result["transformed"][0], reducer, seed, graph))):
             started = time.perf_counter()
             try:
                 result[kind] = (compute(), time.perf_counter() - started)
@@ -86,7 +112,7 @@ def precompute_on_cluster(executor, trials: list[Trial], client) -> int:
     groups: dict[str, list[Trial]] = {}
     for trial in trials:
         groups.setdefault(trial.stages["reduce"].key, []).append(trial)
-    futures = {}
+    futures, graphs = {}, {}  # graphs: graph key -> (the trial it is adopted for, a future or the stored graph)
     for key, members in groups.items():
         first = members[0]
         if executor.holds("reduce", key) and all(executor.holds("cluster", t.stages["cluster"].key) for t in members):
@@ -98,9 +124,26 @@ def precompute_on_cluster(executor, trials: list[Trial], client) -> int:
             continue
         clusterings = list({t.stages["cluster"].key: (t.stages["cluster"].key, t.clusterer, t.seed) for t in members}.values())
         n_classes = executor.corpora[first.dataset].n_classes
+        shared = None
+        if "graph" in first.stages:  # one graph task per graph key, shared by every fit (seed, n_components, min_dist)
+            graph_key = first.stages["graph"].key
+            if graph_key not in graphs:
+                graphs[graph_key] = (first, {"graph": (executor.neighbour_graph(first), 0.0)}
+                                     if executor.holds("graph", graph_key) else
+                                     client.submit(graph_task, pooled, counts, first.steps, first.stages["graph"].settings,
+                                                   pure=False))
+            shared = graphs[graph_key][1]
         futures[key] = (members, client.submit(reduce_and_cluster, pooled, counts, first.steps, first.reducer, first.seed,
-                                               clusterings, n_classes, first.stages["graph"].settings
-                                               if "graph" in first.stages else None, pure=False))
+                                               clusterings, n_classes, shared, pure=False))
+    for graph_key, (first, graph) in graphs.items():
+        if isinstance(graph, dict):  # stored already
+            continue
+        try:
+            found = graph.result()
+        except Exception:  # lost: the reduce tasks that needed it fail with the same loss, and say so
+            continue
+        if "graph" in found:
+            executor.adopt(first, "graph", *found["graph"], counter="neighbour_graphs")
     for key, (members, future) in futures.items():
         first = members[0]
         try:

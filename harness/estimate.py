@@ -27,7 +27,7 @@ NN_DESCENT_EXPONENT = 1.14
 # O(n^2) (Mullner, "Modern hierarchical, agglomerative clustering algorithms", 2011).
 AGGLOMERATIVE_BYTES_PER_PAIR = 8
 DTYPE_BYTES = {"float32": 4, "float16": 2}
-STAGES = ("encode", "pool", "transform", "graph", "reduce", "cluster")
+STAGES = ("encode", "pool", "transform", "graph", "reduce", "cluster")  # plan.PLANNED_KINDS (not imported: pure)
 
 
 @dataclass(frozen=True)

@@ -31,6 +31,9 @@ from harness.sweep import KEY_FAMILIES, TRANSFORMER_FAMILIES, ModelSettings, Swe
 from harness.transforms import NORMALIZATIONS, SCALE_REMOVING, chain_label
 
 STAGE_KINDS = ("encode", "pool", "transform", "reduce", "cluster")
+# With the neighbour graph UMAP fits share (a stage of UMAP trials only), in the order they run: what
+# `harness plan` counts and `plan --estimate` costs.
+PLANNED_KINDS = ("encode", "pool", "transform", "graph", "reduce", "cluster")
 
 # The libraries whose versions enter each stage's key ("score": the scores of a seed run, in its trial key).
 STAGE_LIBRARIES: dict[str, tuple[str, ...]] = {
@@ -49,7 +52,8 @@ STAGE_LIBRARIES: dict[str, tuple[str, ...]] = {
 # small fixed input for this version and fails until it is bumped and they are recorded anew.
 # 2: bootstrap intervals count pairs of distinct texts (ARI) and re-centre AMI, NMI and V; DBCV is NaN on
 #    duplicate points instead of failing the trial.
-SCORES_VERSION = 2
+# 3: the silhouette is computed in float64 (float32 distances rounded differently with the BLAS threads).
+SCORES_VERSION = 3
 
 # Settings that cannot change any number a seed run logs, each with the reason. Every other field of the
 # typed settings (the Sweep and everything nested in it) enters the trial key: through the dataset's content
@@ -409,16 +413,17 @@ def planned_trials(sweep: Sweep, dataset_keys: dict[str, str], models: dict[str,
 
 
 def trial_identity(trial: Trial) -> dict[str, Any]:
-    """What, besides its params, a trial's results depend on: the stage chains of its own vectors and of its
-    clustering (which hold the data's content, the model's files, every stage's settings and library versions,
-    down to the neighbour graph's method, which no param names), and the libraries of reduction, clustering and
-    scoring."""
+    """What, besides its params, a trial's results depend on: the stage chains of its own vectors, of the vectors
+    its clusters are computed from and of its neighbour graph (which hold the data's content, the model's files,
+    every stage's settings and library versions, and the graph's method, which no param names), and the
+    libraries of reduction, clustering and scoring. Nothing in it depends on the seed (a param), so the seeds of a
+    configuration share it."""
     from harness import __version__
 
     return {
         "own_vectors": trial.own_stages["transform"].key,
         "clustered_vectors": trial.stages["transform"].key,
-        "clustering": trial.stages["cluster"].key,
+        "neighbour_graph": trial.stages["graph"].key if "graph" in trial.stages else None,
         "versions": {"harness": __version__, **{kind: library_versions(kind) for kind in ("reduce", "cluster", "score")}},
         "scores_version": SCORES_VERSION,
     }
@@ -484,7 +489,7 @@ def stage_work(trials: list[Trial], is_cached) -> list[StageWork]:
     A forward pass is needed for an encode key when any of its pooled variants is missing.
     """
     work = []
-    for kind in STAGE_KINDS:
+    for kind in PLANNED_KINDS:
         stages = needed_stages(trials, kind)
         if kind == "encode":
             cached = sum(

@@ -73,6 +73,9 @@ def test_plan_command_counts_work_without_running(tmp_path, capsys):
     assert "48  (42 computed, 6 equivalent to another trial" in out  # PCA + HDBSCAN is seed-free: 6 pairs
     assert "forward passes        1      0      1" in out
     assert "reductions           18      0     18  (pca 6, umap 12)" in out
+    # UMAP's neighbour graph depends on the vectors, metric and n_neighbors only: one per pooled variant (6),
+    # shared by the 2 seeds' fits
+    assert "neighbour graphs      6      0      6" in out
     assert not (tmp_path / "results").exists()
 
 

@@ -37,7 +37,9 @@ def silhouette_cosine(vectors: np.ndarray, clusters: np.ndarray, *, max_points: 
     rows = _clustered_sample(clusters, max_points, seed)
     if np.unique(clusters[rows]).size < 2 or np.unique(clusters[rows]).size >= rows.size:
         return float("nan")
-    return float(silhouette_score(vectors[rows], clusters[rows], metric="cosine"))
+    # In float64: float32 distances round differently with the BLAS threads (a Dask worker has one), which moved
+    # a silhouette near 0 by 5e-4 of itself between a worker and this process.
+    return float(silhouette_score(np.asarray(vectors[rows], dtype=np.float64), clusters[rows], metric="cosine"))
 
 
 def _dbcv_sample(clusters: np.ndarray, max_points: int, seed: int) -> np.ndarray:
