@@ -29,7 +29,7 @@ WORKERS = 2
 
 
 def _prepared(folder: Path, n_texts: int):
-    from harness.runner import loaded_corpora, prepared_sweep
+    from harness.engine.runner import loaded_corpora, prepared_sweep
 
     sweep = folder / "sweep.yaml"
     sweep.write_text(f"""
@@ -52,10 +52,10 @@ def dask_encode_figures(n_texts: int = 2000, repeats: int = 1) -> dict:
     """One cold encode each way (a second would find the model loaded); ``repeats`` is accepted for run.py."""
     import torch
 
-    from harness.cache import StageCache
-    from harness.distributed import dask_client
-    from harness.distributed_encode import CHUNK_TEXTS, encode_on_cluster
-    from harness.stages import StageExecutor
+    from harness.engine.cache import StageCache
+    from harness.engine.distributed import dask_client
+    from harness.engine.distributed_encode import CHUNK_TEXTS, encode_on_cluster
+    from harness.engine.stages import StageExecutor
 
     (REPO / "results").mkdir(exist_ok=True)
     with tempfile.TemporaryDirectory(dir=REPO / "results") as folder:

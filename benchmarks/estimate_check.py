@@ -35,7 +35,7 @@ def reduced_sweep(source: Path, texts: int | None, out: Path) -> Path:
 
 def measured(sweep: Path, work: Path) -> dict:
     """Run the sweep (fresh process, empty cache); seconds per stage kind and the peak RSS by its end."""
-    from harness.runner import run_sweep_file
+    from harness.engine.runner import run_sweep_file
 
     started = time.perf_counter()
     result = run_sweep_file(sweep, work, cache_dir=work / "cache")
@@ -52,10 +52,10 @@ def measured(sweep: Path, work: Path) -> dict:
 
 
 def predicted(sweep: Path, calibration_root: Path, cache: Path):
-    from harness.cache import StageCache
-    from harness.calibration import calibrated, planned_stages
-    from harness.runner import prepared_sweep
-    from harness.estimate import sweep_estimate
+    from harness.engine.cache import StageCache
+    from harness.engine.calibration import calibrated, planned_stages
+    from harness.engine.estimate import sweep_estimate
+    from harness.engine.runner import prepared_sweep
 
     prepared = prepared_sweep(sweep)
     calibrations = {s.label: calibrated(prepared.models[s.label], s, calibration_root) for s in prepared.sweep.models}
@@ -72,7 +72,7 @@ def main(argv: list[str] | None = None) -> int:
     if args.measure_only:
         print(json.dumps(measured(args.sweep, args.out)))
         return 0
-    from harness.estimate import STAGES, stage_peak_mb
+    from harness.engine.estimate import STAGES, stage_peak_mb
 
     args.out.mkdir(parents=True, exist_ok=True)
     work = Path(tempfile.mkdtemp(prefix="run-", dir=args.out))

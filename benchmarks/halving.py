@@ -56,7 +56,7 @@ LEXICAL = ("[{name: tfidf-svd-20, family: lexical, dimensions: 20}, {name: tfidf
 
 
 def _winner(result) -> tuple[str, object]:
-    from harness.across_corpora import configuration_identity
+    from harness.score.across_corpora import configuration_identity
 
     ranking = next(iter(result.rankings.values()))
     return configuration_identity(ranking.rows[0].configuration.trials[0].config_params), ranking
@@ -65,9 +65,9 @@ def _winner(result) -> tuple[str, object]:
 def halving_figures(n_texts: int, start_texts: int, factor: int, small: bool) -> dict:
     import numpy as np
 
-    from harness.across_corpora import configuration_identity
-    from harness.reduce import UmapSettings, umap_reduced
-    from harness.runner import run_sweep_file
+    from harness.engine.runner import run_sweep_file
+    from harness.geometry.reduce import UmapSettings, umap_reduced
+    from harness.score.across_corpora import configuration_identity
 
     # UMAP compiles once per process (numba); pay it before timing either search.
     umap_reduced(np.random.default_rng(0).normal(size=(300, 20)).astype(np.float32), UmapSettings(method="umap"), 0)

@@ -71,10 +71,10 @@ def encode_figures(n_texts: int, repeats: int) -> dict:
     from sentence_transformers import SentenceTransformer
     from sentence_transformers.sentence_transformer.modules import Pooling
 
-    from harness.encode import length_sorted_batches, pooled_variants, token_counts
-    from harness.layers import selected_hidden
-    from harness.models import loaded_encoder, resolve_model
-    from harness.pooling import POOLINGS as POOL_FNS
+    from harness.embed.encode import length_sorted_batches, pooled_variants, token_counts
+    from harness.embed.layers import selected_hidden
+    from harness.embed.models import loaded_encoder, resolve_model
+    from harness.embed.pooling import POOLINGS as POOL_FNS
 
     torch.set_num_threads(os.cpu_count() or 1)
     texts = corpus_texts(n_texts)
@@ -163,9 +163,9 @@ def rerun_figures(n_texts: int, repeats: int) -> dict:
     """rerun_fraction: a 24-trial sweep, then the same sweep with only clustering settings changed."""
     import numpy as np
 
-    from harness.reduce import UmapSettings, umap_reduced
-    from harness.runner import run_sweep_file
-    from harness.tracking import SweepTracker, default_tracking_uri
+    from harness.engine.runner import run_sweep_file
+    from harness.geometry.reduce import UmapSettings, umap_reduced
+    from harness.track.tracking import SweepTracker, default_tracking_uri
 
     # UMAP compiles once per process (numba); pay it before timing, as any later run in the process would.
     umap_reduced(np.random.default_rng(0).normal(size=(300, 20)).astype(np.float32), UmapSettings(method="umap"), 0)
@@ -208,7 +208,7 @@ def dask_figures(n_texts: int, repeats: int) -> dict:
 
     One run each (a demo run takes minutes); each starts from an empty cache and store.
     """
-    from harness.runner import run_sweep_file
+    from harness.engine.runner import run_sweep_file
 
     seconds = {}
     work = {}
@@ -229,13 +229,13 @@ def onnx_figures(n_texts: int, repeats: int) -> dict:
     onnx_int8_ari_delta (|ARI difference| of mean pooling + cosine UMAP + k-means on the demo corpus)."""
     import torch
 
-    from harness.cluster import KmeansSettings, kmeans_labels
     from harness.datasets import SyntheticSource, loaded_corpus
-    from harness.encode import pooled_variants
+    from harness.embed.encode import pooled_variants
+    from harness.embed.models import loaded_encoder, resolve_model
+    from harness.embed.onnx_backend import onnx_encoder
+    from harness.geometry.cluster import KmeansSettings, kmeans_labels
+    from harness.geometry.reduce import UmapSettings, umap_reduced
     from harness.metrics import adjusted_rand
-    from harness.models import loaded_encoder, resolve_model
-    from harness.onnx_backend import onnx_encoder
-    from harness.reduce import UmapSettings, umap_reduced
 
     torch.set_num_threads(os.cpu_count() or 1)
     texts = corpus_texts(n_texts)
@@ -271,7 +271,7 @@ def bootstrap_figures(n_texts: int, repeats: int) -> dict:
     sys.path.insert(0, str(REPO / "tests"))
     import reference_bootstrap
 
-    from harness.evidence import per_seed_resampled_scores
+    from harness.score.evidence import per_seed_resampled_scores
 
     rng = np.random.default_rng(0)
     labels = rng.integers(0, 6, n_texts)
@@ -309,7 +309,7 @@ def umap_graph_figures(n_texts: int, repeats: int) -> dict:
     Clustered 384-d vectors (6 Gaussian topics), GRAPH_TEXTS points."""
     import numpy as np
 
-    from harness.reduce import UmapSettings, neighbour_graph, neighbour_method, umap_reduced
+    from harness.geometry.reduce import UmapSettings, neighbour_graph, neighbour_method, umap_reduced
 
     rng = np.random.default_rng(0)
     centres = rng.normal(size=(6, 384))
@@ -347,7 +347,7 @@ def umap_graph_figures(n_texts: int, repeats: int) -> dict:
 def sweep_overhead_figures(n_texts: int, repeats: int) -> dict:
     """sweep_overhead_fraction: (demo wall - the summed seconds of its encode, reduction and clustering stages)
     / demo wall, cold cache and a new MLflow store; the rest is scoring, logging, imports and bookkeeping."""
-    from harness.runner import run_sweep_file
+    from harness.engine.runner import run_sweep_file
 
     with tempfile.TemporaryDirectory(dir=REPO / "results") as folder:
         started = time.perf_counter()

@@ -25,7 +25,7 @@ RESULTS = REPO / "results" / "benchmarks.json"
 def main(sweep_path: str) -> int:
     from tqdm import tqdm
 
-    from harness.runner import loaded_corpora, prepared_sweep, run_sweep_file
+    from harness.engine.runner import loaded_corpora, prepared_sweep, run_sweep_file
 
     started = time.perf_counter()
     prepared = prepared_sweep(sweep_path)

@@ -46,9 +46,9 @@ STAGE_LABELS = {
 
 
 def command_plan(args: argparse.Namespace) -> int:
-    from harness.cache import StageCache
-    from harness.plan import stage_work
-    from harness.runner import prepared_sweep
+    from harness.engine.cache import StageCache
+    from harness.engine.plan import stage_work
+    from harness.engine.runner import prepared_sweep
 
     prepared = prepared_sweep(args.sweep)
     cache = StageCache(Path(args.cache_dir) if args.cache_dir else Path(args.results_dir) / "cache")
@@ -71,7 +71,7 @@ def command_plan(args: argparse.Namespace) -> int:
         print("clusters; seed-free stages give the same result for every seed.")
     search = prepared.sweep.search
     if search.strategy == "halving":
-        from harness.halving import round_sizes
+        from harness.engine.halving import round_sizes
 
         print(f"\nsearch: halving (factor {search.factor}); the work above is the full grid's on the whole corpora. The "
               "transformer models' forward passes are the whole corpus's and serve every round (TF-IDF, static and "
@@ -91,7 +91,7 @@ def cluster_workers(args: argparse.Namespace) -> int:
     --scheduler, the default LocalCluster's otherwise."""
     if args.executor != "dask":
         return 1
-    from harness.distributed import LOCAL_WORKERS
+    from harness.engine.distributed import LOCAL_WORKERS
 
     if args.scheduler is None:
         return LOCAL_WORKERS
@@ -105,8 +105,8 @@ def cluster_workers(args: argparse.Namespace) -> int:
 
 
 def print_estimate(prepared, cache, args: argparse.Namespace) -> None:
-    from harness.calibration import calibrated, cpu_model, planned_stages
-    from harness.estimate import STAGES, stage_peak_mb, sweep_estimate
+    from harness.engine.calibration import calibrated, cpu_model, planned_stages
+    from harness.engine.estimate import STAGES, stage_peak_mb, sweep_estimate
 
     _quiet_libraries()
     workers = cluster_workers(args)
@@ -127,8 +127,8 @@ def print_estimate(prepared, cache, args: argparse.Namespace) -> None:
         dominant = estimate.dominant
         print(f"dominant stage: {STAGE_LABELS[dominant]} ({estimate.stages[dominant].seconds / total:.0%} of the estimated time)")
     print("seconds: a calibration on this machine (a few hundred texts through the model, small UMAP, PCA, HDBSCAN,")
-    print("k-means and agglomerative fits) scaled by each stage's growth rule (harness/estimate.py); scoring and MLflow")
-    print("logging are not included. peak MB: the calibration process's measured resident memory with the model loaded,")
+    print("k-means and agglomerative fits) scaled by each stage's growth rule (harness/engine/estimate.py); scoring and")
+    print("MLflow logging are not included. peak MB: the calibration process's measured resident memory with the model loaded,")
     print("plus the arrays the run holds (pooled vectors, transforms, reductions) and the largest working set of one")
     print("stage (UMAP's neighbour graph, HDBSCAN's copy, agglomerative's distances), estimated from their sizes.")
 
@@ -146,7 +146,7 @@ def next_steps(sweep_name: str, args: argparse.Namespace) -> str:
 
 
 def command_run(args: argparse.Namespace) -> int:
-    from harness.runner import run_sweep_file
+    from harness.engine.runner import run_sweep_file
     from harness.sweep import load_sweep
 
     _quiet_libraries()
@@ -168,7 +168,7 @@ def command_run(args: argparse.Namespace) -> int:
         resume=not args.rerun_finished, progress=progress, encode_progress=encode_progress,
         executor=args.executor, scheduler=args.scheduler, winner_map=not args.no_map,
     )
-    from harness.leaderboard import descriptions_table, table  # scoring libraries: only once the sweep has run
+    from harness.score.leaderboard import descriptions_table, table  # scoring libraries: only once the sweep has run
 
     for ranking in result.rankings.values():
         print(table(ranking))
@@ -198,7 +198,7 @@ def command_run(args: argparse.Namespace) -> int:
 
 
 def command_cache_info(args: argparse.Namespace) -> int:
-    from harness.cache import StageCache
+    from harness.engine.cache import StageCache
 
     root = Path(args.cache_dir) if args.cache_dir else Path(args.results_dir) / "cache"
     entries = StageCache(root).entries()
@@ -215,7 +215,7 @@ def command_cache_info(args: argparse.Namespace) -> int:
 
 
 def command_cache_prune(args: argparse.Namespace) -> int:
-    from harness.cache import StageCache
+    from harness.engine.cache import StageCache
 
     if args.older_than < 0:
         raise HarnessError(f"--older-than: expected a number of days >= 0, got {args.older_than}")
@@ -229,7 +229,7 @@ def command_datasets(args: argparse.Namespace) -> int:
     import json
 
     from harness.datasets.card import reachable_cards, tokenizer_counter
-    from harness.models import resolve_model
+    from harness.embed.models import resolve_model
 
     _quiet_libraries()
     data_dir = Path(args.data_dir).resolve() if args.data_dir else None
@@ -281,15 +281,15 @@ def command_schema(args: argparse.Namespace) -> int:
 
 
 def _tracking_uri(args: argparse.Namespace) -> str:
-    from harness.tracking import default_tracking_uri
+    from harness.track.tracking import default_tracking_uri
 
     return args.tracking_uri or default_tracking_uri(Path(args.results_dir))
 
 
 def _finished_sweep(args: argparse.Namespace):
     """The sweep run a report, a citation or an export describes, with a plain word on stderr when it is not complete."""
-    from harness.readback import sweep_record
-    from harness.report import run_notes
+    from harness.review.page import run_notes
+    from harness.track.readback import sweep_record
 
     if args.sweep is None and args.run_id is None:
         raise HarnessError("name a sweep (its newest run) or give --run-id RUN_ID")
@@ -301,7 +301,7 @@ def _finished_sweep(args: argparse.Namespace):
 
 
 def command_report(args: argparse.Namespace) -> int:
-    from harness.reporting import write_report
+    from harness.review.build import write_report
 
     _quiet_libraries()
     record = _finished_sweep(args)
@@ -311,12 +311,12 @@ def command_report(args: argparse.Namespace) -> int:
 
 
 def command_cite(args: argparse.Namespace) -> int:
-    from harness.cite import write_citations
+    from harness.review.cite import write_citations
 
     _quiet_libraries()
     record = _finished_sweep(args)
     if args.across:
-        from harness.cite_across import write_across_card
+        from harness.review.cite_across import write_across_card
 
         print(f"across corpora\n  citation: {write_across_card(record, Path(args.results_dir) / 'reports')}")
         return 0
@@ -327,8 +327,8 @@ def command_cite(args: argparse.Namespace) -> int:
 
 
 def command_verdict(args: argparse.Namespace) -> int:
-    from harness.cite_across import write_verdict
-    from harness.readback import sweep_record
+    from harness.review.cite_across import write_verdict
+    from harness.track.readback import sweep_record
 
     _quiet_libraries()
     uri = _tracking_uri(args)
@@ -346,7 +346,7 @@ def command_verdict(args: argparse.Namespace) -> int:
 
 
 def command_export(args: argparse.Namespace) -> int:
-    from harness.export import configuration_table, export_format, write_table
+    from harness.review.export import configuration_table, export_format, write_table
 
     _quiet_libraries()
     target = Path(args.to)
@@ -366,8 +366,8 @@ def command_ui(args: argparse.Namespace) -> int:
     store = results / "mlflow.db"
     if not store.is_file():
         raise HarnessError(f"{store}: no tracking store yet; run a sweep first (harness run SWEEP)")
-    from harness.runs_view import runs_page_link
-    from harness.tracking import sweep_experiments
+    from harness.track.runs_view import runs_page_link
+    from harness.track.tracking import sweep_experiments
 
     _quiet_libraries()
     base = f"http://{'127.0.0.1' if args.host in ('0.0.0.0', '::') else args.host}:{args.port}"

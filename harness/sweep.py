@@ -15,14 +15,14 @@ from pydantic import AfterValidator, BeforeValidator, Field, PositiveInt, Valida
 
 from harness import _yaml_lines
 from harness._settings import Settings, relative_to_sweep
-from harness.cluster import ClustererSettings
 from harness.datasets import DatasetSettings, dataset_name
-from harness.devices import DEVICE_CHOICES, DEVICE_PATTERN
+from harness.embed.devices import DEVICE_CHOICES, DEVICE_PATTERN
+from harness.embed.layers import LAYER_SELECTIONS
+from harness.embed.pooling import POOLINGS
 from harness.errors import SweepError
-from harness.layers import LAYER_SELECTIONS
-from harness.pooling import POOLINGS
-from harness.reduce import ReducerSettings, UmapSettings
-from harness.transforms import NORMALIZATIONS, TransformStep
+from harness.geometry.cluster import ClustererSettings
+from harness.geometry.reduce import ReducerSettings, UmapSettings
+from harness.geometry.transforms import NORMALIZATIONS, TransformStep
 
 LABELLED_METRICS = ("ari", "ami", "nmi", "v_measure", "ari_clustered", "ami_clustered", "nmi_clustered", "v_measure_clustered")
 LABEL_FREE_METRICS = ("silhouette", "dbcv", "stability_ari", "npmi_mean", "cluster_size_entropy", "coverage")
@@ -133,7 +133,7 @@ class ModelSettings(Settings):
     @field_validator("vectors")
     @classmethod
     def _vectors(cls, value: Optional[str], info: ValidationInfo) -> Optional[str]:
-        from harness.models import PACKAGED_VECTORS
+        from harness.embed.models import PACKAGED_VECTORS
 
         if value is None or value.lower() in PACKAGED_VECTORS:
             return value

@@ -50,7 +50,7 @@ def _tiny_bert(folder: Path, tokenizer, output_scale: float | None = None, layer
 def _minilm_tokenizer():
     from transformers import AutoTokenizer
 
-    from harness.models import resolve_model
+    from harness.embed.models import resolve_model
 
     return AutoTokenizer.from_pretrained(str(resolve_model(MINILM).folder))
 

@@ -1,4 +1,4 @@
-"""A plain per-resample bootstrap, the reference for the batched one (harness/evidence.py).
+"""A plain per-resample bootstrap, the reference for the batched one (harness/score/evidence.py).
 
 The per-resample loop of commit 3a07799 (one Python call of ``scores_from_table`` per
 resample and seed), brought to the corrected definition of the resample scores and

@@ -1,4 +1,4 @@
-"""The across-datasets verdict (harness/across.py), checked against reference libraries and Demšar's worked example.
+"""The across-datasets verdict (harness/score/across.py), checked against reference libraries and Demšar's worked example.
 
 Sources named beside each check:
 - scipy.stats.friedmanchisquare (the chi-square form, tie-corrected);
@@ -22,8 +22,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
-from harness import across
 from harness.errors import DataError, HarnessError
+from harness.score import across
 
 # --- Demšar (2006), Table 6: AUC of four C4.5 variants on 14 data sets, with the ranks printed beside them ---
 C45 = ("C4.5", "C4.5+m", "C4.5+cf", "C4.5+m+cf")

@@ -3,7 +3,7 @@ card cites it, and ``harness verdict`` computes it over two sweep files.
 
 The logged average ranks and Friedman statistic are checked against an independent recomputation from the
 configuration runs' logged scores with scipy (scipy.stats.rankdata for the ranks, scipy.stats.friedmanchisquare
-for the statistic), not against harness.across.
+for the statistic), not against harness.score.across.
 """
 
 from __future__ import annotations
@@ -151,13 +151,13 @@ def test_a_one_dataset_sweep_logs_no_verdict(tmp_path, tiny_model_dir):
 # --- gathering and matching, on plain values ------------------------------------------------------------------
 
 def _scored(dataset, settings, label, value, source="s"):
-    from harness.across_corpora import Scored, configuration_identity
+    from harness.score.across_corpora import Scored, configuration_identity
 
     return Scored(dataset, configuration_identity({"dataset": dataset, **settings}), label, value, "ari", source)
 
 
 def test_configurations_are_matched_by_settings_not_by_name():
-    from harness.across_corpora import gathered_scores
+    from harness.score.across_corpora import gathered_scores
 
     gathered = gathered_scores([
         _scored("a", {"pooling": "mean"}, "m/mean", 0.5), _scored("a", {"pooling": "max"}, "m/max", 0.4),
@@ -172,7 +172,7 @@ def test_configurations_are_matched_by_settings_not_by_name():
 
 
 def test_a_dataset_met_again_in_another_sweep_is_dropped_not_counted_twice():
-    from harness.across_corpora import gathered_scores
+    from harness.score.across_corpora import gathered_scores
 
     gathered = gathered_scores([_scored("a", {"p": "1"}, "x", 0.5, "first"), _scored("a", {"p": "1"}, "x", 0.1, "second")])
     assert gathered.scores == {"a": {"x": 0.5}}
@@ -182,7 +182,7 @@ def test_a_dataset_met_again_in_another_sweep_is_dropped_not_counted_twice():
 def test_without_baycomp_the_verdict_says_how_to_get_the_bayesian_comparison(monkeypatch):
     import sys
 
-    from harness.across_corpora import BAYES_HINT, gathered_scores, verdict_of
+    from harness.score.across_corpora import BAYES_HINT, gathered_scores, verdict_of
 
     rows = [_scored(d, {"p": c}, c, v) for d, values in {"a": (0.5, 0.4, 0.1), "b": (0.6, 0.2, 0.3), "c": (0.9, 0.5, 0.4)}.items()
             for c, v in zip("xyz", values)]

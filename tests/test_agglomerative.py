@@ -8,11 +8,11 @@ import numpy as np
 import pytest
 
 from harness.cli import main
-from harness.cluster import (
+from harness.errors import SweepError
+from harness.geometry.cluster import (
     AGGLOMERATIVE_MAX_TEXTS, CLUSTERERS, SEEDED_CLUSTERERS, AgglomerativeSettings, HdbscanSettings, KmeansSettings,
     cluster_labels, clustering_limits,
 )
-from harness.errors import SweepError
 from harness.sweep import load_sweep
 
 from conftest import MINILM, finished_runs, write_sweep
@@ -119,7 +119,7 @@ def test_the_memory_limit_is_stated_and_refused_above_it():
 
 def test_a_corpus_above_the_limit_is_refused_once_its_size_is_known(tmp_path, capsys, monkeypatch):
     # The limit is lowered for the test so that a small corpus crosses it; the check is the same code path.
-    import harness.cluster as cluster_module
+    import harness.geometry.cluster as cluster_module
 
     monkeypatch.setattr(cluster_module, "AGGLOMERATIVE_MAX_TEXTS", 150)
     sweep = write_sweep(tmp_path, f"name: big\ndatasets: [{{source: synthetic, n_texts: 151}}]\nmodels: [{MINILM}]\n"

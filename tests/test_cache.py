@@ -14,11 +14,11 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from harness.cache import CacheWarning, StageCache
 from harness.cli import main
-from harness.runner import loaded_corpora, prepared_sweep, run_sweep_file
-from harness.stages import StageExecutor
-from harness.transforms import l2_normalized
+from harness.engine.cache import CacheWarning, StageCache
+from harness.engine.runner import loaded_corpora, prepared_sweep, run_sweep_file
+from harness.engine.stages import StageExecutor
+from harness.geometry.transforms import l2_normalized
 
 from conftest import configuration_runs, finished_runs, write_sweep
 
@@ -92,7 +92,7 @@ def test_equivalent_trials_are_computed_once_and_tagged(tmp_path, tiny_model_dir
     # The equivalence itself: after L2 normalisation mean and mean_sqrt_len pooled vectors agree to 1e-6.
     import torch
 
-    from harness.pooling import POOLINGS
+    from harness.embed.pooling import POOLINGS
 
     hidden, mask = torch.randn(6, 11, 16), (torch.rand(6, 11) > 0.3).long()
     mask[:, 0] = 1
@@ -114,9 +114,9 @@ def test_equivalent_trials_are_computed_once_and_tagged(tmp_path, tiny_model_dir
     timings = {"encode_seconds", "reduce_seconds", "cluster_seconds"}
     for name in sorted(twin_metrics.keys() - own_vectors - timings):
         assert twin_metrics[name] == original_metrics[name] or (np.isnan(twin_metrics[name]) and np.isnan(original_metrics[name])), name
-    from harness.encode import pooled_variants, token_counts
+    from harness.embed.encode import pooled_variants, token_counts
+    from harness.embed.models import loaded_encoder, resolve_model
     from harness.metrics import length_leakage_r2, silhouette_cosine
-    from harness.models import loaded_encoder, resolve_model
 
     texts = loaded_corpora(prepared)["town_requests"].texts
     encoder = loaded_encoder(resolve_model(str(tiny_model_dir)), None, False)
@@ -234,10 +234,10 @@ def test_a_resumed_configuration_takes_every_figure_from_the_seeds_own_labels(tm
     # After a cache prune, a recomputation can disagree with the stored run (here the clusterer's output moved);
     # the reused seeds' means come from their runs, so the intervals and the stability must come from the labels
     # those runs logged too, not from the recomputation: every figure of a configuration from the same labels.
-    import harness.cluster
+    import harness.geometry.cluster
     from sklearn.metrics import adjusted_rand_score
 
-    from harness.evidence import bootstrap_distributions
+    from harness.score.evidence import bootstrap_distributions
 
     sweep = write_sweep(tmp_path, f"""
 name: resumed
@@ -259,7 +259,7 @@ evidence: {{resamples: 200, permutations: 19}}
 
     assert main(["cache", "prune", "--older-than", "0", "--cache-dir", str(results / "cache")]) == 0
     moved = lambda vectors, settings, seed, n_classes: np.arange(len(vectors)) % n_classes  # noqa: E731
-    monkeypatch.setitem(harness.cluster.CLUSTERERS, "kmeans", moved)
+    monkeypatch.setitem(harness.geometry.cluster.CLUSTERERS, "kmeans", moved)
     second = run_sweep_file(sweep, results)
     assert [r.status for r in second.results] == ["REUSED", "REUSED"]
 

@@ -8,9 +8,9 @@ import struct
 import numpy as np
 import pytest
 
-from harness import across
 from harness.cd_diagram import critical_difference_figure
 from harness.plots import pyplot
+from harness.score import across
 
 from test_across import PAPER_SCORES
 

@@ -11,7 +11,7 @@ import pytest
 import yaml
 
 from harness.cli import main
-from harness.runner import run_sweep_file
+from harness.engine.runner import run_sweep_file
 
 from conftest import MINILM, configuration_runs, write_sweep
 
@@ -40,7 +40,7 @@ def _balanced(mirror, count_tokens):
 def test_the_two_tokenizers_balance_to_different_corpora(mirror, char_model_dir):
     """The premise of the next test: balanced by letters or by MiniLM's word pieces, other texts are kept."""
     from harness.datasets.card import tokenizer_counter
-    from harness.models import resolve_model
+    from harness.embed.models import resolve_model
 
     by_letters = _balanced(mirror, tokenizer_counter(char_model_dir))
     by_pieces = _balanced(mirror, tokenizer_counter(resolve_model(MINILM).folder))
@@ -50,8 +50,8 @@ def test_the_two_tokenizers_balance_to_different_corpora(mirror, char_model_dir)
 def test_length_tokenizer_chooses_what_measures_lengths(mirror, char_model_dir, tmp_path):
     """Every value of the setting: unset (the first model), a model name, 'words'."""
     from harness.datasets.card import tokenizer_counter
-    from harness.models import resolve_model
-    from harness.runner import loaded_corpora, prepared_sweep
+    from harness.embed.models import resolve_model
+    from harness.engine.runner import loaded_corpora, prepared_sweep
 
     expected = {
         None: _balanced(mirror, tokenizer_counter(char_model_dir)).fingerprint,  # the sweep's first model

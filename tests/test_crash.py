@@ -8,8 +8,8 @@ import sys
 
 import pytest
 
-from harness.cache import StageCache
-from harness.runner import run_sweep_file
+from harness.engine.cache import StageCache
+from harness.engine.runner import run_sweep_file
 
 from conftest import configuration_runs, finished_runs, write_sweep
 

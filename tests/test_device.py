@@ -13,10 +13,10 @@ from importlib import metadata
 import pytest
 
 from harness.cli import main
-from harness.devices import CPU, Device, resolved_device
+from harness.embed.devices import CPU, Device, resolved_device
+from harness.engine.plan import trial_stages
+from harness.engine.runner import prepared_sweep
 from harness.errors import SweepError
-from harness.plan import trial_stages
-from harness.runner import prepared_sweep
 from harness.sweep import load_sweep
 
 from conftest import MINILM, REPO, finished_runs, write_sweep
@@ -52,7 +52,7 @@ def test_auto_and_cpu_resolve_to_the_cpu_here():
 @pytest.mark.skipif(not metadata.version("torch").endswith("+cpu"), reason="needs a CPU-only build of torch")
 def test_auto_on_a_cpu_only_torch_is_decided_without_importing_torch():
     # Plans and sweep errors must answer fast: importing torch costs over a second.
-    code = ("import sys; from harness.devices import resolved_device; d = resolved_device('auto'); "
+    code = ("import sys; from harness.embed.devices import resolved_device; d = resolved_device('auto'); "
             "print(d.name, 'torch' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
                          env={"PYTHONPATH": str(REPO), "PATH": ""}).stdout.split()

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import pytest
 
-from harness.runner import run_sweep_file
+from harness.engine.runner import run_sweep_file
 
 from conftest import write_sweep
 

@@ -8,13 +8,13 @@ import os
 import numpy as np
 import pytest
 
-from harness.cache import StageCache
-from harness.distributed_encode import chunk_key, encode_on_cluster, vector_chunk_texts
+from harness.embed.pooling import POOLINGS
+from harness.engine.cache import StageCache
+from harness.engine.distributed_encode import chunk_key, encode_on_cluster, vector_chunk_texts
+from harness.engine.plan import library_versions, make_stage, pool_stage
+from harness.engine.runner import loaded_corpora, prepared_sweep, run_sweep_file
+from harness.engine.stages import StageExecutor
 from harness.keys import chained_key
-from harness.plan import library_versions, make_stage, pool_stage
-from harness.pooling import POOLINGS
-from harness.runner import loaded_corpora, prepared_sweep, run_sweep_file
-from harness.stages import StageExecutor
 
 from conftest import write_sweep
 
@@ -26,7 +26,7 @@ TIMINGS = ("encode_seconds", "reduce_seconds", "cluster_seconds")
 @pytest.fixture(scope="module")
 def cluster_client():
     """A 2-worker LocalCluster of separate processes on 127.0.0.1, as ``--executor dask`` starts."""
-    from harness.distributed import dask_client
+    from harness.engine.distributed import dask_client
 
     client = dask_client(None)
     yield client
@@ -89,7 +89,7 @@ def test_vectors_from_the_cluster_equal_the_local_ones(tmp_path, tiny_model_dir,
 @pytest.mark.parametrize("slots", [1, 2, 3, 4, 64])
 def test_torch_threads_share_the_cores_among_the_task_slots_of_a_host(slots):
     """Outside a worker the host is unknown and the busiest host's slots count: cores // slots, at least 1."""
-    from harness.distributed_encode import torch_threads
+    from harness.engine.distributed_encode import torch_threads
 
     assert torch_threads({"tcp://10.0.0.1": slots, "tcp://10.0.0.2": 1}) == max(1, (os.cpu_count() or 1) // slots)
 

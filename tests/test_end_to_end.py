@@ -5,9 +5,9 @@ from __future__ import annotations
 import pandas as pd
 import pytest
 
-from harness import reduce as reduce_module
 from harness.cli import main
-from harness.runner import run_sweep_file
+from harness.engine.runner import run_sweep_file
+from harness.geometry import reduce as reduce_module
 
 from conftest import MINILM, configuration_runs, finished_runs, write_sweep
 

@@ -16,15 +16,15 @@ import itertools
 import numpy as np
 import pytest
 
-from harness.cluster import cluster_labels
 from harness.datasets import loaded_corpus
-from harness.encode import pooled_variants, token_counts
-from harness.lexical import tfidf_svd
-from harness.models import loaded_encoder, loaded_word_vectors
-from harness.reduce import reduced
-from harness.runner import prepared_sweep
-from harness.static_vectors import static_pooled, tokens
-from harness.transforms import l2_normalized, transformed
+from harness.embed.encode import pooled_variants, token_counts
+from harness.embed.lexical import tfidf_svd
+from harness.embed.models import loaded_encoder, loaded_word_vectors
+from harness.embed.static_vectors import static_pooled, tokens
+from harness.engine.runner import prepared_sweep
+from harness.geometry.cluster import cluster_labels
+from harness.geometry.reduce import reduced
+from harness.geometry.transforms import l2_normalized, transformed
 
 from conftest import write_sweep
 

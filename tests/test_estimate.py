@@ -10,8 +10,8 @@ import re
 import numpy as np
 import pytest
 
-from harness import estimate as est
-from harness.estimate import Calibration, EncodeRates, PlannedStage
+from harness.engine import estimate as est
+from harness.engine.estimate import Calibration, EncodeRates, PlannedStage
 
 from conftest import write_sweep
 
@@ -34,8 +34,8 @@ def test_padded_batches_follow_the_encoder_by_hand():
 
 
 def test_padded_batches_match_the_encoders_own_batching():
-    """The batches harness.encode runs (length_sorted_batches over the same lengths) have these sizes and lengths."""
-    from harness.encode import length_sorted_batches
+    """The batches harness.embed.encode runs (length_sorted_batches over the same lengths) have these sizes and lengths."""
+    from harness.embed.encode import length_sorted_batches
 
     counts = np.random.default_rng(0).integers(1, 400, size=103)
     lengths = np.minimum(counts + 2, 128)
@@ -205,14 +205,14 @@ grid:
 """
 
 def _small_sizes():
-    from harness.calibration import CalibrationSizes
+    from harness.engine.calibration import CalibrationSizes
 
     return CalibrationSizes(texts=48, tokens_per_length=512, umap_small=200, umap_large=400, agglomerative=100)
 
 
 def test_calibration_is_cached_per_model(tmp_path, tiny_model_dir, char_model_dir):
-    from harness.calibration import MEASURED, calibrated, calibration_key
-    from harness.runner import prepared_sweep
+    from harness.engine.calibration import MEASURED, calibrated, calibration_key
+    from harness.engine.runner import prepared_sweep
 
     sizes = _small_sizes()
     models = {}
@@ -235,8 +235,8 @@ def test_calibration_is_cached_per_model(tmp_path, tiny_model_dir, char_model_di
 
 
 def test_plan_estimate_prints_each_stage_the_total_and_the_dominant_stage(tmp_path, tiny_model_dir, capsys):
-    from harness.calibration import MEASURED
     from harness.cli import STAGE_LABELS, main
+    from harness.engine.calibration import MEASURED
 
     sweep = write_sweep(tmp_path, SWEEP.format(model=tiny_model_dir))
     cache = tmp_path / "cache"
@@ -299,9 +299,9 @@ def test_the_planned_widths_are_the_widths_the_run_computes(tmp_path):
     # Time and memory scale with the vectors' width: the estimate must use the width each stage really has
     # (concatenated layers widen, whitening narrows, the reducer sets the clustering's), taken here from the
     # arrays the stage executor computes for the same sweep.
-    from harness.calibration import planned_stages
-    from harness.runner import prepared_sweep
-    from harness.stages import StageExecutor
+    from harness.engine.calibration import planned_stages
+    from harness.engine.runner import prepared_sweep
+    from harness.engine.stages import StageExecutor
 
     from conftest import _minilm_tokenizer, _tiny_bert
 

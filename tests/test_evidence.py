@@ -15,28 +15,6 @@ from scipy import sparse, stats
 from sklearn import metrics as skm
 
 from harness.cli import main
-from harness.describe import (
-    SHORT_TEXT_WORDS,
-    TermCounts,
-    cluster_descriptions,
-    coherence_is_meaningful,
-    log_odds_z,
-    median_words,
-    npmi,
-    npmi_coherence,
-    term_counts,
-)
-from harness.evidence import (
-    SEED_LEVEL_MINIMUM,
-    bootstrap_distributions,
-    configuration_evidence,
-    percentile_interval,
-    resample_indices,
-    seed_free,
-    seed_weights,
-    stability_ari,
-    tied_with,
-)
 from harness.metrics import (
     PairCodes,
     density_validity,
@@ -48,6 +26,28 @@ from harness.metrics import (
     scores_from_tables,
     self_pair_counts,
     silhouette_cosine,
+)
+from harness.score.describe import (
+    SHORT_TEXT_WORDS,
+    TermCounts,
+    cluster_descriptions,
+    coherence_is_meaningful,
+    log_odds_z,
+    median_words,
+    npmi,
+    npmi_coherence,
+    term_counts,
+)
+from harness.score.evidence import (
+    SEED_LEVEL_MINIMUM,
+    bootstrap_distributions,
+    configuration_evidence,
+    percentile_interval,
+    resample_indices,
+    seed_free,
+    seed_weights,
+    stability_ari,
+    tied_with,
 )
 
 from conftest import configuration_runs, finished_runs, write_sweep
@@ -194,7 +194,7 @@ def test_batched_scores_equal_the_per_resample_reference(n, classes, clusters, k
 
 def test_batched_scores_equal_scikit_learn_on_resampled_arrays():
     # Reference: scikit-learn's AMI, NMI and V-measure on the label arrays of the resamples, rebuilt text by text
-    # (before the bootstrap's re-centring, which harness/evidence.py applies afterwards); ARI against pair
+    # (before the bootstrap's re-centring, which harness/score/evidence.py applies afterwards); ARI against pair
     # enumeration over distinct texts, since scikit-learn counts the pairs of two copies of one text as agreeing.
     rng = np.random.default_rng(3)
     labels = rng.integers(0, 5, 700)
@@ -340,7 +340,7 @@ def test_npmi_of_the_gold_topics_is_negative_on_short_texts(file_name, short, re
     # Measured, not assumed: on one-line texts (median under SHORT_TEXT_WORDS words) even the gold topics score NPMI
     # below 0 from document co-occurrence, so the number cannot be read as a coherence level there; on long posts
     # the gold topics score above 0. A random partition scores far lower in both (the ordering still holds).
-    from harness.scoring import described_clusters
+    from harness.score.scoring import described_clusters
 
     path = os.path.join(MIRROR, file_name)
     if not os.path.exists(path):
@@ -358,7 +358,7 @@ def test_npmi_of_the_gold_topics_is_negative_on_short_texts(file_name, short, re
 
 
 def test_short_texts_get_a_coherence_note_in_the_leaderboard(tmp_path, tiny_model_dir):
-    from harness.leaderboard import rank_configurations, table
+    from harness.score.leaderboard import rank_configurations, table
 
     results, sweep, corpora = _configurations(tmp_path, tiny_model_dir, """  reduce: [{method: pca, n_components: 4}]
   cluster: [{method: kmeans, k: 3}]""")
@@ -436,7 +436,7 @@ def test_the_seed_draws_leave_the_text_draws_equal_to_scipy():
     # Reference: scipy.stats.bootstrap on one clustering. Three identical seeds take the two-level path (seeds are
     # resampled), yet the distribution must equal scipy's: the seed draws have a stream of their own. scipy's
     # resampled AMI (scikit-learn's on the drawn arrays) is shifted by its bootstrap bias, mean - sample AMI
-    # (Efron & Tibshirani 1993, section 10.2), as harness/evidence.py re-centres the information scores.
+    # (Efron & Tibshirani 1993, section 10.2), as harness/score/evidence.py re-centres the information scores.
     labels = RNG.integers(0, 3, 200)
     clusters = _noisy(labels, 0.5, np.random.default_rng(6))
     copies = [clusters, clusters + 10, clusters + 20]  # one partition, three id sets: scored as three seeds
@@ -504,8 +504,8 @@ def test_seed_standard_deviation_is_the_sample_one_and_undefined_for_one_seed():
 
 def _configurations(tmp_path, model_dir, pipelines: str, seeds: str = "[0, 1, 2]"):
     """Real planned configurations (and the sweep and corpora) of a small labelled sweep, without running it."""
-    from harness.plan import configurations
-    from harness.runner import ConfigurationResult, TrialResult, loaded_corpora, prepared_sweep
+    from harness.engine.plan import configurations
+    from harness.engine.runner import ConfigurationResult, TrialResult, loaded_corpora, prepared_sweep
 
     prepared = prepared_sweep(write_sweep(tmp_path, f"""
 name: rows
@@ -533,7 +533,7 @@ def test_a_mean_over_fewer_valid_seeds_is_counted_and_flagged(tmp_path, tiny_mod
     assert thin.metrics()["silhouette"] == 0.6 and thin.metrics()["silhouette_valid_seeds"] == 1.0
     assert thin.metrics()["n_seeds"] == 3.0 and full.metrics()["silhouette_valid_seeds"] == 3.0
 
-    from harness.leaderboard import rank_configurations, table
+    from harness.score.leaderboard import rank_configurations, table
 
     results, sweep, corpora = _configurations(tmp_path, tiny_model_dir, """  reduce: [{method: pca, n_components: 4}]
   cluster: [{method: kmeans, k: 3}, {method: kmeans, k: 4}]""")
@@ -551,8 +551,8 @@ def _registered_pipelines():
     """Every registered reducer x clusterer, each with its default settings."""
     from pydantic import TypeAdapter
 
-    from harness.cluster import CLUSTERERS, ClustererSettings
-    from harness.reduce import REDUCERS, ReducerSettings
+    from harness.geometry.cluster import CLUSTERERS, ClustererSettings
+    from harness.geometry.reduce import REDUCERS, ReducerSettings
 
     reducers = [TypeAdapter(ReducerSettings).validate_python({"method": name}) for name in sorted(REDUCERS)]
     clusterers = [TypeAdapter(ClustererSettings).validate_python({"method": name}) for name in sorted(CLUSTERERS)]
@@ -566,8 +566,8 @@ def test_seed_free_is_true_exactly_where_seeds_cannot_change_the_clustering(redu
     # registered reducer x clusterer, a pipeline declared seed-free gives identical reductions and labels for every
     # seed, and a pipeline declared seeded has a stage whose output the seed does change (on structureless points,
     # where a seeded method has many equally good answers).
-    from harness.cluster import cluster_labels
-    from harness.reduce import reduced
+    from harness.geometry.cluster import cluster_labels
+    from harness.geometry.reduce import reduced
 
     points = np.random.default_rng(0).normal(size=(150, 60)).astype(np.float32)
     outputs = {}
@@ -588,7 +588,7 @@ def test_transform_steps_take_no_seed():
     # seed_free looks at reducers and clusterers only: transform steps are called as (vectors, lengths, settings).
     import inspect
 
-    from harness.transforms import TRANSFORMS
+    from harness.geometry.transforms import TRANSFORMS
 
     for name, step in TRANSFORMS.items():
         assert "seed" not in inspect.signature(step).parameters and len(inspect.signature(step).parameters) == 3, name
@@ -616,7 +616,7 @@ def test_a_seed_free_pipeline_cannot_win_a_stability_ranking(tmp_path, tiny_mode
     # with n/a shown for the other.
     labels = RNG.integers(0, 3, 90)
     wobbly = [_noisy(labels, 0.2, np.random.default_rng(i)) for i in range(3)]
-    from harness.leaderboard import rank_configurations, table
+    from harness.score.leaderboard import rank_configurations, table
 
     results, sweep, corpora = _configurations(tmp_path, tiny_model_dir, """  reduce: [{method: pca, n_components: 4}]
   cluster: [{method: hdbscan, min_cluster_size: 5}, {method: kmeans, k: 3}]""")

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from harness.runner import loaded_corpora, prepared_sweep
+from harness.engine.runner import loaded_corpora, prepared_sweep
 
 from conftest import REPO
 

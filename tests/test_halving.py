@@ -17,7 +17,7 @@ import pytest
 
 from harness.cli import main
 from harness.datasets.synthetic import SyntheticSource, synthetic_corpus
-from harness.halving import nested_order, round_rows, round_sizes, subcorpus
+from harness.engine.halving import nested_order, round_rows, round_sizes, subcorpus
 
 from conftest import write_sweep
 
@@ -58,7 +58,7 @@ def test_a_different_seed_draws_a_different_subsample():
 
 
 def test_a_subsample_has_its_own_dataset_key():
-    from harness.plan import dataset_key
+    from harness.engine.plan import dataset_key
 
     corpus = synthetic_corpus(SyntheticSource(source="synthetic", n_texts=60, n_topics=3, seed=0))
     order = nested_order(corpus.labels, corpus.n_texts, 0)
@@ -102,7 +102,7 @@ def _identity(run) -> str:
 
 
 def _simulated_keep(values: dict[str, float], factor: int) -> set[str]:
-    """The halving rule, written out independently of harness.halving."""
+    """The halving rule, written out independently of harness.engine.halving."""
     keep = max(1, math.ceil(len(values) / factor))
     ordered = sorted(values.values(), reverse=True)
     line = ordered[keep - 1]
@@ -180,8 +180,8 @@ def test_halving_without_a_start_is_refused_at_its_key(tmp_path, capsys):
 
 def test_a_tie_at_the_cut_line_under_the_paired_bootstrap_survives():
     # The issue's rule: keep the best 1/F and every configuration tied with the cut line under the paired
-    # bootstrap. The tie is decided here with numpy's percentiles, independently of harness.evidence.
-    from harness.halving import survivors
+    # bootstrap. The tie is decided here with numpy's percentiles, independently of harness.score.evidence.
+    from harness.engine.halving import survivors
 
     rng = np.random.default_rng(0)
     shared = rng.normal(scale=0.05, size=1000)  # the same resampled texts move every configuration alike (paired)
@@ -226,9 +226,9 @@ search: {{strategy: halving, start_texts: 20, factor: 3}}
 def test_every_round_takes_its_vectors_from_the_whole_corpus_forward_pass(tmp_path, tiny_model_dir):
     # The issue: subsamples are nested, so the whole corpus's encode serves every round (no extra forward pass).
     # Three rounds (20, 60, 180 texts), one model: one forward pass, the two early rounds' trials take rows of it.
-    from harness.encode import pooled_variants
-    from harness.models import loaded_encoder, resolve_model
-    from harness.runner import run_sweep_file
+    from harness.embed.encode import pooled_variants
+    from harness.embed.models import loaded_encoder, resolve_model
+    from harness.engine.runner import run_sweep_file
     sweep = write_sweep(tmp_path, HALVING_TRANSFORMER.format(model=tiny_model_dir))
     result = run_sweep_file(sweep, tmp_path / "results")
     assert result.work["forward_passes"] == 1

@@ -11,9 +11,9 @@ import numpy as np
 from hdbscan.validity import validity_index
 from sklearn.metrics import silhouette_score
 
-from harness.cache import StageCache
-from harness.runner import loaded_corpora, prepared_sweep
-from harness.stages import StageExecutor
+from harness.engine.cache import StageCache
+from harness.engine.runner import loaded_corpora, prepared_sweep
+from harness.engine.stages import StageExecutor
 
 from conftest import write_sweep
 

@@ -43,10 +43,10 @@ def test_leakage_is_measured_after_the_transform_and_the_pooled_figure_keeps_its
     # Every transform row of a pooling used to show the pooled vectors' figure, so remove_length could never show
     # an effect. Now length_leakage_r2 is measured on the vectors that are reduced, length_leakage_r2_pooled on the
     # pooled ones; both are checked against a recomputation from the model here.
-    from harness.encode import pooled_variants, token_counts
-    from harness.models import loaded_encoder, resolve_model
-    from harness.runner import loaded_corpora, prepared_sweep, run_sweep_file
-    from harness.transforms import length_removed
+    from harness.embed.encode import pooled_variants, token_counts
+    from harness.embed.models import loaded_encoder, resolve_model
+    from harness.engine.runner import loaded_corpora, prepared_sweep, run_sweep_file
+    from harness.geometry.transforms import length_removed
 
     from conftest import finished_runs, write_sweep
 

@@ -15,7 +15,7 @@ import pytest
 import yaml
 
 from harness.cli import main
-from harness.runner import run_sweep_file
+from harness.engine.runner import run_sweep_file
 
 from conftest import configuration_runs, finished_runs, write_sweep
 
@@ -62,10 +62,10 @@ def moved(tmp_path_factory, tiny_model_dir):
     """A two-dataset sweep run in one folder; what the run cached is read back before anything is deleted; then
     mlflow.db and artifacts/ are copied to another folder and the sweep file and the whole original results
     folder (the cache with it) are deleted."""
-    from harness.cache import StageCache
     from harness.datasets import dataset_name
-    from harness.runner import loaded_corpora, prepared_sweep
-    from harness.stages import StageExecutor
+    from harness.engine.cache import StageCache
+    from harness.engine.runner import loaded_corpora, prepared_sweep
+    from harness.engine.stages import StageExecutor
 
     folder = tmp_path_factory.mktemp("original")
     sweep = write_sweep(folder, _sweep("moving", tiny_model_dir))
@@ -116,9 +116,9 @@ def test_the_report_of_a_moved_store_shows_the_map_the_run_computed(moved, capsy
     images = _images(page)
     assert {f"cluster-map-d{i}-{dataset}" for i, dataset in enumerate((CLEAR, FAINT))} <= set(images)
 
-    from harness.readback import sweep_record
-    from harness.report import cluster_map_png
-    from harness.reporting import logged_map
+    from harness.review.build import logged_map
+    from harness.review.page import cluster_map_png
+    from harness.track.readback import sweep_record
 
 
     record = sweep_record(f"sqlite:///{elsewhere / 'mlflow.db'}", "moving")
@@ -246,7 +246,7 @@ def test_a_run_started_with_no_map_says_so_in_the_report(single, capsys):
 # -- where a moved results folder's artifacts are looked for ---------------------------------------------
 
 def test_artifacts_are_looked_for_relative_to_the_store_only_when_the_results_folder_moved(tmp_path):
-    from harness.readback import relocated_artifact_uri, store_folder
+    from harness.track.readback import relocated_artifact_uri, store_folder
 
     run = "artifacts/sweep/0123abcd/artifacts"
     old, new = Path("/data/team/results"), Path("/mnt/copy/results")

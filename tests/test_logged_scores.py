@@ -18,7 +18,7 @@ import pytest
 from scipy import stats
 from sklearn import metrics as skm
 
-from harness.runner import run_sweep_file
+from harness.engine.runner import run_sweep_file
 
 from conftest import MINILM, configuration_runs, finished_runs, write_sweep
 

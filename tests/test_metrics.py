@@ -19,7 +19,7 @@ from harness.metrics import (
     length_eta_squared,
     noise_aware_scores,
 )
-from harness.scoring import trial_scores
+from harness.score.scoring import trial_scores
 
 RNG = np.random.default_rng(7)
 LABELS = RNG.integers(0, 4, 300)
@@ -267,7 +267,7 @@ def test_dbcv_of_identical_points_is_nan_with_its_reason(seed):
 def test_a_trial_on_duplicate_vectors_finishes_with_dbcv_nan_and_its_reason(tmp_path):
     # A real sweep on the user's own vectors (family precomputed) in which every text's vector occurs twice: the
     # trial must finish, log every other score, and say on the seed run why DBCV is NaN.
-    from harness.runner import run_sweep_file
+    from harness.engine.runner import run_sweep_file
 
     from conftest import finished_runs, write_sweep
 

@@ -12,9 +12,9 @@ import sys
 
 import pytest
 
-from harness.runner import run_sweep_file
-from harness.runs_view import EXPERIMENT_KIND_TAG, MODEL_DEVELOPMENT, RANKING_VIEW_TAG
-from harness.tracking import sweep_experiments
+from harness.engine.runner import run_sweep_file
+from harness.track.runs_view import EXPERIMENT_KIND_TAG, MODEL_DEVELOPMENT, RANKING_VIEW_TAG
+from harness.track.tracking import sweep_experiments
 
 from conftest import configuration_runs, free_port, wait_healthy, write_sweep
 

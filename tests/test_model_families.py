@@ -7,11 +7,11 @@ from collections import Counter
 import numpy as np
 import pytest
 
-from harness.encode import pooled_variants, special_wrapping
-from harness.lexical import tfidf_svd
-from harness.models import loaded_encoder, loaded_word_vectors, resolve_family_model, resolve_model
-from harness.runner import run_sweep_file
-from harness.static_vectors import first_component_removed, sif_weights, static_pooled, tokens
+from harness.embed.encode import pooled_variants, special_wrapping
+from harness.embed.lexical import tfidf_svd
+from harness.embed.models import loaded_encoder, loaded_word_vectors, resolve_family_model, resolve_model
+from harness.embed.static_vectors import first_component_removed, sif_weights, static_pooled, tokens
+from harness.engine.runner import run_sweep_file
 from harness.sweep import ModelSettings
 
 from conftest import MINILM, finished_runs, write_sweep
@@ -136,10 +136,10 @@ def test_chunk_mean_equals_a_window_average_made_by_hand(tiny_roberta_dir):
 def test_chunk_mean_reports_windows_per_text_and_claims_no_truncation(tmp_path, tiny_model_dir):
     # Under chunk_mean nothing is cut: truncated_fraction is 0, and the run reports how texts were split instead;
     # the report's caveat follows (no "were cut").
-    from harness.encode import token_counts
-    from harness.readback import ConfigurationRecord
-    from harness.report import caveats
-    from harness.runner import loaded_corpora, prepared_sweep
+    from harness.embed.encode import token_counts
+    from harness.engine.runner import loaded_corpora, prepared_sweep
+    from harness.review.page import caveats
+    from harness.track.readback import ConfigurationRecord
 
     from conftest import configuration_runs
 
@@ -203,7 +203,7 @@ evidence: {{resamples: 50, permutations: 99}}
 def test_onnx_backend_equals_pytorch_and_int8_stays_close(tmp_path):
     # Reference: the PyTorch model the graph was exported from (fp32 to 1e-5); int8 is dynamic weight
     # quantisation, so it is held to a cosine similarity with the fp32 vectors instead.
-    from harness.onnx_backend import onnx_encoder
+    from harness.embed.onnx_backend import onnx_encoder
 
     encoder = loaded_encoder(resolve_model(MINILM), 128, False)
     variants = [("last", "mean"), ("mean_last_4", "cls"), ("second_last", "max")]

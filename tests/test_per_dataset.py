@@ -12,7 +12,7 @@ import pytest
 import yaml
 
 from harness.cli import main
-from harness.runner import run_sweep_file
+from harness.engine.runner import run_sweep_file
 
 from conftest import MINILM, report_sections, write_sweep
 
@@ -77,9 +77,9 @@ def test_the_report_ranks_and_reads_each_dataset_on_its_own(two_corpora):
 
 
 def test_main_effects_pareto_and_caveats_come_from_each_dataset_alone(two_corpora):
-    from harness.readback import sweep_record
-    from harness.report import caveats, main_effects, pareto_front
-    from harness.reporting import report_content
+    from harness.review.build import report_content
+    from harness.review.page import caveats, main_effects, pareto_front
+    from harness.track.readback import sweep_record
 
     folder, results, result = two_corpora
     record = sweep_record(f"sqlite:///{results / 'mlflow.db'}", "two_corpora")

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from harness.cli import main
-from harness.runner import prepared_sweep
+from harness.engine.runner import prepared_sweep
 
 from conftest import write_sweep
 

@@ -6,10 +6,10 @@ import numpy as np
 import pytest
 import torch
 
-from harness.encode import length_sorted_batches, pooled_variants, token_counts
-from harness.layers import selected_hidden
-from harness.models import loaded_encoder, resolve_model
-from harness.pooling import POOLINGS
+from harness.embed.encode import length_sorted_batches, pooled_variants, token_counts
+from harness.embed.layers import selected_hidden
+from harness.embed.models import loaded_encoder, resolve_model
+from harness.embed.pooling import POOLINGS
 
 from conftest import MINILM
 
@@ -151,7 +151,7 @@ BATCH_TOLERANCE = 1e-5
 
 @pytest.mark.parametrize("long_texts, max_length", [("truncate", None), ("chunk_mean", 16)])
 def test_batch_size_changes_pooled_vectors_by_float_rounding_only(tiny_model_dir, long_texts, max_length):
-    # The rule behind RESULT_NEUTRAL["ModelSettings.batch_size"] (harness/plan.py), enumerated: every batch size
+    # The rule behind RESULT_NEUTRAL["ModelSettings.batch_size"] (harness/engine/plan.py), enumerated: every batch size
     # against batch size 1 (no padding at all), for every registered pooling and three layer choices.
     encoder = loaded_encoder(resolve_model(str(tiny_model_dir)), max_length, False)
     variants = [(layers, pooling) for layers in ("last", "mean_last_4", 1) for pooling in POOLINGS]

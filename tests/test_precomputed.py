@@ -8,12 +8,12 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from harness.cache import StageCache
 from harness.cli import main
+from harness.embed.precomputed import VectorsSource, aligned_vectors, read_vectors
+from harness.embed.static_vectors import tokens
+from harness.engine.cache import StageCache
+from harness.engine.runner import prepared_sweep, run_sweep_file
 from harness.errors import DataError, SweepError
-from harness.precomputed import VectorsSource, aligned_vectors, read_vectors
-from harness.runner import prepared_sweep, run_sweep_file
-from harness.static_vectors import tokens
 from harness.sweep import load_sweep
 
 from conftest import MINILM, write_sweep
@@ -110,7 +110,7 @@ grid:
 """)
     prepared = prepared_sweep(sweep)
     assert [(t.layers, t.pooling) for t in prepared.trials] == [("last", "precomputed")]
-    from harness.runner import check_against_data, loaded_corpora
+    from harness.engine.runner import check_against_data, loaded_corpora
 
     check_against_data(prepared, loaded_corpora(prepared))  # layer 6 does not apply here, so it is no error
 

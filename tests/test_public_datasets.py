@@ -12,10 +12,10 @@ from harness.cli import main
 from harness.datasets import AgNewsSource, TwentyNewsgroupsSource, loaded_corpus
 from harness.datasets.newsgroups_text import stripped_message
 from harness.datasets.public import word_counts
-from harness.encode import pooled_variants
+from harness.embed.encode import pooled_variants
+from harness.embed.models import loaded_encoder, resolve_model
 from harness.errors import DataError
 from harness.metrics import length_eta_squared
-from harness.models import loaded_encoder, resolve_model
 
 from conftest import MINILM, MIRROR_DIR, finished_runs, needs_mirror, write_sweep
 

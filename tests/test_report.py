@@ -17,8 +17,8 @@ import pytest
 import yaml
 
 from harness.cli import main
-from harness.report import main_effects, pareto_front
-from harness.runner import run_sweep_file
+from harness.engine.runner import run_sweep_file
+from harness.review.page import main_effects, pareto_front
 
 from conftest import MINILM, configuration_runs, free_port, report_sections, wait_healthy, write_sweep
 
@@ -62,7 +62,7 @@ def _browser(playwright):
 def test_main_effects_group_by_settings_not_by_name_segments():
     # Two UMAP metrics and two normalisations under names that read alike (as names once did): "which choice
     # matters" must still see two options on each axis, because it groups by the configuration's params.
-    from harness.readback import ConfigurationRecord
+    from harness.track.readback import ConfigurationRecord
 
     def config(metric, transform, normalize, ari):
         params = {"dataset": "d", "model": "m", "layers": "last", "pooling": "mean", "transform": transform,
@@ -80,7 +80,7 @@ def test_main_effects_group_by_settings_not_by_name_segments():
 
 
 def test_main_effects_and_pareto_front_on_hand_made_numbers():
-    from harness.readback import ConfigurationRecord
+    from harness.track.readback import ConfigurationRecord
 
     def config(name, ari):
         params = {"dataset": "d", "model": "m", "layers": "last", "pooling": name, "transform": "none", "normalize": "none",
@@ -363,9 +363,9 @@ PAGE_TAGS = {"html", "head", "meta", "title", "style", "body", "h1", "h2", "h3",
 def test_every_field_written_into_the_page_is_escaped():
     """Each text the page shows comes from the store (names, tags, artifacts a person or another tool may have
     written): each gets its own payload, and none may turn into markup, in HTML or Markdown."""
-    from harness.readback import ConfigurationRecord, SweepRecord, UnfinishedTrial
-    from harness.report import (DatasetRanking, DatasetSection, Effect, ReportContent, md_text, render_html,
+    from harness.review.page import (DatasetRanking, DatasetSection, Effect, ReportContent, md_text, render_html,
                                 render_markdown, run_notes)
+    from harness.track.readback import ConfigurationRecord, SweepRecord, UnfinishedTrial
 
     p = _payload
     finished = ConfigurationRecord(
@@ -482,7 +482,7 @@ def test_a_report_of_hostile_names_runs_no_script_in_the_browser(hostile):
 
 
 def test_a_name_made_safe_is_a_plain_child_of_the_folder_it_is_joined_to(tmp_path):
-    from harness.report import distinct_safe_names, safe_name
+    from harness.review.page import distinct_safe_names, safe_name
 
     for name in ("..", ".", "", "../x", "../../etc/passwd", "/abs/path", "a/../../b", "~", "..\\..\\win", "a\x00b",
                  "...", " ", "-", "ok-name_1.2", "<img src=x>", "é", "a" * 300):

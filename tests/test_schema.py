@@ -9,8 +9,8 @@ import jsonschema
 import pytest
 import yaml
 
-from harness import pooling as pooling_module
 from harness.cli import main
+from harness.embed import pooling as pooling_module
 from harness.errors import SweepError
 from harness.schema import (README_END, README_START, SCHEMA_FILE, key_reference, key_reference_markdown,
                             missing_descriptions, settings_models, sweep_schema)

@@ -1,4 +1,4 @@
-"""The score formulas are versioned: SCORES_VERSION (harness/plan.py) enters every trial and configuration key.
+"""The score formulas are versioned: SCORES_VERSION (harness/engine/plan.py) enters every trial and configuration key.
 
 GOLDEN holds every score of a small fixed input (three seeds' clusterings of 120 texts, their vectors and token
 counts, built from arithmetic rather than a random generator) together with the SCORES_VERSION it was recorded
@@ -16,9 +16,9 @@ import numpy as np
 import pytest
 from sklearn import metrics as skm
 
-from harness.evidence import configuration_evidence
-from harness.plan import SCORES_VERSION
-from harness.scoring import VECTOR_SCORES, label_free_scores, trial_scores
+from harness.engine.plan import SCORES_VERSION
+from harness.score.evidence import configuration_evidence
+from harness.score.scoring import VECTOR_SCORES, label_free_scores, trial_scores
 
 N = 120
 
@@ -228,10 +228,10 @@ def test_scores_of_a_fixed_input_change_only_with_scores_version():
         "record the scores of this version in GOLDEN (tests/test_scores_version.py)")
     scores = fixed_scores()
     assert sorted(scores) == sorted(GOLDEN["scores"]), (
-        "the set of scores changed: bump SCORES_VERSION in harness/plan.py and record the new values in GOLDEN")
+        "the set of scores changed: bump SCORES_VERSION in harness/engine/plan.py and record the new values in GOLDEN")
     moved = {name: (GOLDEN["scores"][name], value) for name, value in scores.items()
              if not (math.isnan(value) and math.isnan(GOLDEN["scores"][name]))
              and value != pytest.approx(GOLDEN["scores"][name], rel=1e-9, abs=1e-12)}
     assert not moved, (f"scores changed without a new SCORES_VERSION: {moved}; bump SCORES_VERSION in "
-                       "harness/plan.py (resumed sweeps must not reuse metrics of the old formulas) and record the "
+                       "harness/engine/plan.py (resumed sweeps must not reuse metrics of the old formulas) and record the "
                        "new values in GOLDEN (tests/test_scores_version.py)")

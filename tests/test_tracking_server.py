@@ -8,7 +8,7 @@ import subprocess
 import sys
 
 from harness.cli import main
-from harness.runner import run_sweep_file
+from harness.engine.runner import run_sweep_file
 
 from conftest import configuration_runs, finished_runs, free_port, wait_healthy, write_sweep
 

@@ -5,9 +5,9 @@ from __future__ import annotations
 import numpy as np
 from sklearn.decomposition import PCA
 
+from harness.engine.runner import prepared_sweep
+from harness.geometry.transforms import all_but_the_top, centered, length_removed, whitened
 from harness.metrics import length_leakage_r2
-from harness.runner import prepared_sweep
-from harness.transforms import all_but_the_top, centered, length_removed, whitened
 
 from conftest import write_sweep
 
@@ -97,7 +97,7 @@ def test_chains_parse_plan_and_share_work(tmp_path, tiny_model_dir):
 
 
 def test_a_chain_runs_end_to_end(tmp_path, tiny_model_dir):
-    from harness.runner import run_sweep_file
+    from harness.engine.runner import run_sweep_file
 
     sweep = write_sweep(tmp_path, SWEEP.format(model=tiny_model_dir).replace("  normalize: [none, l2]\n", "")
                         .replace("pooling: [mean, mean_sqrt_len]", "pooling: [mean]"))

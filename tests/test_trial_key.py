@@ -5,7 +5,7 @@ from __future__ import annotations
 import pandas as pd
 
 from harness.datasets.synthetic import SyntheticSource, synthetic_corpus
-from harness.runner import prepared_sweep, run_sweep_file
+from harness.engine.runner import prepared_sweep, run_sweep_file
 
 from conftest import write_sweep
 
@@ -66,7 +66,7 @@ evidence: {{resamples: 20, permutations: 19}}
 # unions and Optional) and every field of it. For each field, a changed value is derived from its type (bool,
 # int, float, Literal, Optional; a few need a real resource, in CHANGES below) and planted in base sweeps that
 # cover every dataset source, model family, reducer, clusterer and transform step. A field added later fails
-# here until it changes the key or is listed in harness.plan.RESULT_NEUTRAL with its reason.
+# here until it changes the key or is listed in harness.engine.plan.RESULT_NEUTRAL with its reason.
 
 import shutil  # noqa: E402
 import types  # noqa: E402
@@ -78,12 +78,12 @@ import pytest  # noqa: E402
 import yaml  # noqa: E402
 from pydantic import BaseModel, ValidationError  # noqa: E402
 
+from harness.embed.layers import LAYER_SELECTIONS  # noqa: E402
+from harness.embed.pooling import POOLINGS  # noqa: E402
+from harness.engine.plan import RESULT_NEUTRAL  # noqa: E402
 from harness.errors import HarnessError  # noqa: E402
-from harness.layers import LAYER_SELECTIONS  # noqa: E402
-from harness.plan import RESULT_NEUTRAL  # noqa: E402
-from harness.pooling import POOLINGS  # noqa: E402
+from harness.geometry.transforms import NORMALIZATIONS  # noqa: E402
 from harness.sweep import MODEL_FAMILIES, Sweep  # noqa: E402
-from harness.transforms import NORMALIZATIONS  # noqa: E402
 
 # Where a changed setting leaves the trial untouched because the planner maps it away for that family: the
 # trial is the same trial, so its key rightly stays.
@@ -440,7 +440,7 @@ def test_every_settings_field_changes_the_trial_key_unless_declared_result_neutr
                 continue
             if not trial_changed:
                 problems.append(f"{qualified} ({family}): changing it leaves the trial key unchanged; put it in the key "
-                                "or, if it cannot change any result, in harness.plan.RESULT_NEUTRAL with the reason")
+                                "or, if it cannot change any result, in harness.engine.plan.RESULT_NEUTRAL with the reason")
             elif not config_changed and qualified != "GridSettings.seeds":
                 problems.append(f"{qualified} ({family}): changes the trial key but not the configuration key")
     assert not problems, "\n".join(problems)
@@ -449,7 +449,7 @@ def test_every_settings_field_changes_the_trial_key_unless_declared_result_neutr
 def test_the_settings_that_change_results_are_mlflow_params(tmp_path, resources):
     # What MLflow shows: static sif_a / remove_first_component, lexical dimensions, storage dtype and the evidence
     # settings that change a seed's figures are params of the trial's run (n/a where they do not apply).
-    from harness.plan import aligned_params
+    from harness.engine.plan import aligned_params
 
     bases = _base_sweeps(resources)
     trials = []
@@ -474,7 +474,7 @@ def test_the_encode_key_covers_model_files_remote_code_and_the_onnx_export(tmp_p
     # onnx / onnxruntime.
     import json
 
-    import harness.onnx_backend
+    import harness.embed.onnx_backend
 
     folder = tmp_path / "model"
     shutil.copytree(tiny_model_dir, folder)
@@ -502,17 +502,17 @@ grid:
     keys.append(encode_key())
     keys.append(encode_key(", trust_remote_code: true"))
     keys.append(encode_key(", backend: onnx"))
-    monkeypatch.setattr(harness.onnx_backend, "OPSET", harness.onnx_backend.OPSET + 1)
+    monkeypatch.setattr(harness.embed.onnx_backend, "OPSET", harness.embed.onnx_backend.OPSET + 1)
     keys.append(encode_key(", backend: onnx"))
     assert len(set(keys)) == len(keys), keys
-    monkeypatch.setattr(harness.onnx_backend, "OPSET", harness.onnx_backend.OPSET - 1)
+    monkeypatch.setattr(harness.embed.onnx_backend, "OPSET", harness.embed.onnx_backend.OPSET - 1)
     assert encode_key(", backend: onnx") == keys[-2]  # and the same inputs give the same key
 
 
 def test_the_scores_version_enters_every_trial_and_configuration_key(tmp_path, monkeypatch):
-    # A formula change bumps harness.plan.SCORES_VERSION; the same sweep then plans no trial key or configuration
+    # A formula change bumps harness.engine.plan.SCORES_VERSION; the same sweep then plans no trial key or configuration
     # key it planned before, so resuming reuses no metric logged under the old formulas.
-    import harness.plan
+    import harness.engine.plan
 
     sweep = write_sweep(tmp_path, """name: versioned
 datasets: [{source: synthetic, n_texts: 80, seed: 1}]
@@ -524,7 +524,7 @@ grid:
   seeds: [0, 1]
 """)
     before = prepared_sweep(sweep).trials
-    monkeypatch.setattr(harness.plan, "SCORES_VERSION", harness.plan.SCORES_VERSION + 1)
+    monkeypatch.setattr(harness.engine.plan, "SCORES_VERSION", harness.engine.plan.SCORES_VERSION + 1)
     after = prepared_sweep(sweep).trials
     assert len(before) == len(after) == 2
     assert not {t.key for t in before} & {t.key for t in after}
@@ -535,7 +535,7 @@ def test_the_cited_winner_sweep_plans_the_winner_for_every_model_family(tmp_path
     # For every base sweep (together they hold every family of MODEL_FAMILIES, both precomputed file kinds), the
     # settings a configuration run logs (configuration.json, from which `harness cite` writes its one-configuration
     # sweep) must parse and plan exactly that trial: the same trial key and configuration key.
-    from harness.runner import configuration_settings
+    from harness.engine.runner import configuration_settings
 
     covered = set()
     for i, data in enumerate(_base_sweeps(resources)):
@@ -557,11 +557,11 @@ def test_the_cited_winner_sweep_plans_the_winner_for_every_model_family(tmp_path
 
 
 def test_the_neighbour_graph_method_enters_the_trial_key(tmp_path, monkeypatch):
-    # No param names the neighbour graph's method (exact up to harness.reduce.EXACT_NEIGHBOURS_UP_TO texts,
+    # No param names the neighbour graph's method (exact up to harness.geometry.reduce.EXACT_NEIGHBOURS_UP_TO texts,
     # NN-descent above), yet the UMAP layout depends on it: a resumed sweep must not reuse a seed run fitted on the
     # other graph. Every trial of a UMAP sweep gets a new trial and configuration key when the method changes;
     # a PCA trial (no graph) keeps its keys.
-    import harness.reduce
+    import harness.geometry.reduce
 
     sweep = write_sweep(tmp_path, """name: graphs
 datasets: [{source: synthetic, n_texts: 120, seed: 1}]
@@ -574,7 +574,7 @@ grid:
 """)
     before = prepared_sweep(sweep).trials
     assert {t.stages["graph"].settings["method"] for t in before if "graph" in t.stages} == {"exact"}
-    monkeypatch.setattr(harness.reduce, "EXACT_NEIGHBOURS_UP_TO", 100)
+    monkeypatch.setattr(harness.geometry.reduce, "EXACT_NEIGHBOURS_UP_TO", 100)
     after = prepared_sweep(sweep).trials
     assert {t.stages["graph"].settings["method"] for t in after if "graph" in t.stages} == {"nndescent"}
     for old, new in zip(before, after, strict=True):

@@ -13,11 +13,11 @@ import numpy as np
 import pytest
 from scipy.spatial.distance import cdist
 
-from harness.cluster import cluster_labels
-from harness.reduce import EXACT_NEIGHBOURS_UP_TO, UmapSettings, neighbour_graph, neighbour_method, umap_reduced
-from harness.runner import loaded_corpora, prepared_sweep
-from harness.stages import StageExecutor
-from harness.plan import graph_stage
+from harness.engine.plan import graph_stage
+from harness.engine.runner import loaded_corpora, prepared_sweep
+from harness.engine.stages import StageExecutor
+from harness.geometry.cluster import cluster_labels
+from harness.geometry.reduce import EXACT_NEIGHBOURS_UP_TO, UmapSettings, neighbour_graph, neighbour_method, umap_reduced
 
 from conftest import write_sweep
 

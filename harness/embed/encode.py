@@ -7,9 +7,9 @@ from typing import Callable, Iterable, Optional
 import numpy as np
 
 from harness._crashpoints import crash_point
-from harness.layers import LayerChoice, selected_hidden
-from harness.models import LoadedEncoder
-from harness.pooling import POOLINGS
+from harness.embed.layers import LayerChoice, selected_hidden
+from harness.embed.models import LoadedEncoder
+from harness.embed.pooling import POOLINGS
 
 Variant = tuple[LayerChoice, str]  # (layer selection, pooling)
 

@@ -12,20 +12,20 @@ import json
 from pathlib import Path
 from typing import Any, Optional
 
-from harness.across_corpora import (
+from harness.errors import HarnessError
+from harness.review.across_section import AcrossSection, across_markdown, caveat_lines
+from harness.score.across_corpora import (
     DIAGRAM_ARTIFACT, Scored, configuration_identity, configuration_label, gathered_scores, logged_verdict, verdict_of,
     verdict_payload, verdict_png,
 )
-from harness.across_report import AcrossSection, across_markdown, caveat_lines
-from harness.errors import HarnessError
-from harness.readback import SweepRecord
+from harness.track.readback import SweepRecord
 
 CARD_NAME = "winner-across.md"
 
 
 def scored_from_record(record) -> list[Scored]:
     """From a logged sweep (readback.SweepRecord): each finished configuration's score by its dataset's metric."""
-    from harness.report import dataset_rankings
+    from harness.review.page import dataset_rankings
 
     out = []
     for ranking in dataset_rankings(record):
@@ -61,7 +61,7 @@ def _p(value: float) -> str:
 
 
 def across_card_markdown(payload: dict[str, Any], record: SweepRecord) -> str:
-    from harness.cite import library_versions, tool_commit
+    from harness.review.cite import library_versions, tool_commit
 
     best = payload["best"]
     f = payload["friedman"]
@@ -97,7 +97,7 @@ def across_card_markdown(payload: dict[str, Any], record: SweepRecord) -> str:
 
 
 def write_across_card(record: SweepRecord, reports_dir: Path) -> Path:
-    from harness.reporting import report_folder
+    from harness.review.build import report_folder
 
     payload, _ = sweep_payload(record)
     folder = report_folder(reports_dir, record)
@@ -111,7 +111,7 @@ def write_across_card(record: SweepRecord, reports_dir: Path) -> Path:
 def write_verdict(records: list[SweepRecord], reports_dir: Path) -> tuple[dict[str, Any], Path]:
     """``harness verdict``: the verdict over several sweeps, written as verdict.json, verdict.md and the diagram
     under RESULTS/reports/verdict-<sweeps>/."""
-    from harness.report import safe_name
+    from harness.review.page import safe_name
 
     names = list(dict.fromkeys(r.name for r in records))
     if len(names) != len(records):

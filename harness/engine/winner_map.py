@@ -25,14 +25,14 @@ MAP_COLUMNS = ("id", "label", "cluster", "token_count", "x", "y")
 
 def map_settings(n_texts: int):
     """UMAP to 2 dimensions, cosine, at most 15 neighbours (fewer on a corpus too small for 15)."""
-    from harness.reduce import UmapSettings
+    from harness.geometry.reduce import UmapSettings
 
     return UmapSettings(method="umap", n_components=2, n_neighbors=min(15, n_texts - 1), metric="cosine")
 
 
 def map_coordinates(vectors: np.ndarray) -> np.ndarray:
     """(n, 2) float32 coordinates of ``vectors`` under ``map_settings``."""
-    from harness.reduce import umap_reduced
+    from harness.geometry.reduce import umap_reduced
 
     vectors = np.asarray(vectors, dtype=np.float32)
     return umap_reduced(vectors, map_settings(len(vectors)), MAP_SEED)

@@ -6,8 +6,8 @@ import math
 from dataclasses import dataclass, field
 from typing import Any
 
-from harness.describe import SHORT_TEXT_WORDS, coherence_is_meaningful, median_words
-from harness.evidence import (
+from harness.score.describe import SHORT_TEXT_WORDS, coherence_is_meaningful, median_words
+from harness.score.evidence import (
     BOOTSTRAPPED,
     SCOPE_TAG,
     SCOPE_TEXTS_ONLY,

@@ -1,9 +1,9 @@
 """Running the independent stages of a sweep on a Dask distributed cluster.
 
-The forward pass runs first, in chunks (``harness.distributed_encode``). Every
+The forward pass runs first, in chunks (``harness.engine.distributed_encode``). Every
 reduction, with the clusterings downstream of it, is then one task; the results
 come back into the executor, which stores them in the cache as if computed here.
-Scoring follows (``harness.distributed_scores``); MLflow logging stays here.
+Scoring follows (``harness.engine.distributed_scores``); MLflow logging stays here.
 A LocalCluster binds to 127.0.0.1; an existing cluster is reached by address.
 """
 
@@ -14,19 +14,19 @@ from typing import Optional
 
 import numpy as np
 
-from harness.plan import Trial
+from harness.engine.plan import Trial
 
 LOCAL_WORKERS = 2
 
 
 def graph_task(pooled: np.ndarray, counts: np.ndarray, steps: list, settings: dict) -> dict:
-    """One task: transform, then the neighbour graph (harness.reduce.neighbour_graph, as the local executor
+    """One task: transform, then the neighbour graph (harness.geometry.reduce.neighbour_graph, as the local executor
     computes it), once per graph key; every UMAP fit that shares it starts from it. Pure; runs on a worker.
     Returns {"graph": (array, seconds)}, or {"failed": {stage kind: error}}."""
     import joblib
 
-    from harness.reduce import neighbour_graph
-    from harness.transforms import transformed
+    from harness.geometry.reduce import neighbour_graph
+    from harness.geometry.transforms import transformed
 
     with joblib.parallel_config(backend="sequential"):
         try:
@@ -53,9 +53,9 @@ def reduce_and_cluster(pooled: np.ndarray, counts: np.ndarray, steps: list, redu
     """
     import joblib
 
-    from harness.cluster import cluster_labels
-    from harness.reduce import reduced
-    from harness.transforms import transformed
+    from harness.geometry.cluster import cluster_labels
+    from harness.geometry.reduce import reduced
+    from harness.geometry.transforms import transformed
 
     result: dict = {"clusters": {}, "failed": {}, "cluster_failed": {}}
     if shared_graph is not None and "failed" in shared_graph:  # the graph (or the transform before it) raised

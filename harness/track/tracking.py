@@ -15,7 +15,7 @@ from pathlib import Path
 from typing import Any, Iterable
 
 from harness.errors import HarnessError
-from harness.runs_view import EXPERIMENT_KIND_TAG, MODEL_DEVELOPMENT, RANKING_VIEW_TAG, ranking_view_tag
+from harness.track.runs_view import EXPERIMENT_KIND_TAG, MODEL_DEVELOPMENT, RANKING_VIEW_TAG, ranking_view_tag
 
 PARENT_TAG = "mlflow.parentRunId"
 RUN_NAME_TAG = "mlflow.runName"

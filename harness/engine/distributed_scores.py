@@ -12,8 +12,8 @@ from typing import Optional
 
 import numpy as np
 
-from harness.distributed import _with_remote_traceback
-from harness.plan import Trial
+from harness.engine.distributed import _with_remote_traceback
+from harness.engine.plan import Trial
 
 LEAKAGE_SEED = 0  # as StageExecutor.length_leakage's default
 
@@ -32,7 +32,7 @@ def scored_trial(clusters: np.ndarray, counts: np.ndarray, labels: Optional[np.n
     error a score raised."""
     import joblib
 
-    from harness.scoring import VECTOR_SCORES, described_clusters, label_free_scores, trial_scores
+    from harness.score.scoring import VECTOR_SCORES, described_clusters, label_free_scores, trial_scores
 
     try:
         with joblib.parallel_config(backend="sequential"):  # nested joblib calls stay on this worker
@@ -92,7 +92,7 @@ def score_on_cluster(executor, trials: list[Trial], evidence, client) -> dict[st
 
 def evidence_on_cluster(client):
     """``evidence.configuration_evidence`` run as a task: a drop-in for the runner's call."""
-    from harness.evidence import configuration_evidence
+    from harness.score.evidence import configuration_evidence
 
     def on_cluster(*args, **kwargs):
         return client.submit(configuration_evidence, *args, **kwargs, pure=False).result()

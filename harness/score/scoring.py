@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import numpy as np
 
-from harness.describe import TermCounts, cluster_descriptions
 from harness.metrics import (
     cluster_shape,
     cluster_size_entropy,
@@ -15,6 +14,7 @@ from harness.metrics import (
     noise_aware_scores,
     silhouette_cosine,
 )
+from harness.score.describe import TermCounts, cluster_descriptions
 
 
 def trial_scores(clusters: np.ndarray, token_counts: np.ndarray, labels: np.ndarray | None) -> dict[str, float]:

@@ -100,7 +100,7 @@ def onnx_encoder(encoder, folder: Path, int8: bool):
     """The same encoder with its transformer replaced by the ONNX (or int8 ONNX) graph."""
     import torch
 
-    from harness.models import LoadedEncoder
+    from harness.embed.models import LoadedEncoder
 
     return LoadedEncoder(tokenizer=encoder.tokenizer, max_length=encoder.max_length,
                          transformer=OnnxTransformer(exported_model(encoder, folder, int8), torch.get_num_threads()))

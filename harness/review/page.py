@@ -2,7 +2,7 @@
 
 Verdicts are per dataset: configurations are ranked, and everything read off a
 ranking is drawn, within one dataset; a sweep over two or more datasets adds the across-corpus verdict it logged
-(average ranks over datasets, harness/across_report.py). Analysis functions are pure (records in,
+(average ranks over datasets, harness/review/across_section.py). Analysis functions are pure (records in,
 tables out); the renderers lay out a self-contained HTML page (images embedded,
 no network resources, every value escaped) and a Markdown twin without raw HTML.
 """
@@ -20,10 +20,10 @@ from typing import Optional
 
 import numpy as np
 
-from harness.across_report import DIAGRAM_NAME as ACROSS_DIAGRAM, AcrossSection, across_html, across_markdown
-from harness.halving_report import halving_html, halving_markdown
-from harness.readback import ConfigurationRecord, SweepRecord
+from harness.review.across_section import DIAGRAM_NAME as ACROSS_DIAGRAM, AcrossSection, across_html, across_markdown
+from harness.review.halving_section import halving_html, halving_markdown
 from harness.sweep import DEFAULT_LABEL_FREE_METRIC, DEFAULT_LABELLED_METRIC
+from harness.track.readback import ConfigurationRecord, SweepRecord
 
 # Axes of the grid, as the params of a configuration run that set them (reduce.* and cluster.* by prefix; the
 # model axis is every other param but the dataset and the sweep-wide ones). Grouping by settings, not by name

@@ -12,7 +12,7 @@ from urllib.parse import unquote, urlparse
 import pandas as pd
 
 from harness.errors import HarnessError
-from harness.tracking import KIND_TAG, PARENT_TAG
+from harness.track.tracking import KIND_TAG, PARENT_TAG
 
 
 @dataclass

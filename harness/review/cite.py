@@ -13,9 +13,7 @@ import yaml
 
 from harness import __version__
 from harness.errors import HarnessError
-from harness.readback import ConfigurationRecord, SweepRecord
-from harness.tracking import CONFIGURATION_ARTIFACT
-from harness.report import (
+from harness.review.page import (
     DatasetRanking,
     dataset_rankings,
     distinct_safe_names,
@@ -28,6 +26,8 @@ from harness.report import (
     stability_applies,
     valid_seeds,
 )
+from harness.track.readback import ConfigurationRecord, SweepRecord
+from harness.track.tracking import CONFIGURATION_ARTIFACT
 
 LIBRARIES = ("torch", "transformers", "sentence-transformers", "umap-learn", "hdbscan", "scikit-learn", "mlflow", "numpy")
 
@@ -176,7 +176,7 @@ class Citation:
 def write_citations(record: SweepRecord, reports_dir: Path, results_dir: Path, dataset: Optional[str] = None) -> list[Citation]:
     """One card per dataset (the winner of each), or only ``dataset``'s. With one dataset the files are
     winner.yaml and winner.md; with several, winner-DATASET.yaml and winner-DATASET.md."""
-    from harness.reporting import report_folder
+    from harness.review.build import report_folder
 
     rankings = dataset_rankings(record)
     if dataset is not None:

@@ -1,6 +1,6 @@
 """The across-corpus verdict of a sweep (or of several finished sweeps): scores gathered, matched, judged.
 
-``harness.across`` holds the statistics (pure, on a table of scores). This module gathers that table from
+``harness.score.across`` holds the statistics (pure, on a table of scores). This module gathers that table from
 what a run computed or logged: one score per (dataset, configuration), where a configuration is matched
 across datasets by its settings (its params without the dataset and the seed), never by its name alone.
 It turns the verdict into a JSON payload (logged to the sweep run, read back by the report and the card)
@@ -14,7 +14,7 @@ import math
 from dataclasses import dataclass, field
 from typing import Any, Iterable, Mapping, Optional
 
-from harness.across import FEW_DATASETS, AcrossVerdict, across_verdict
+from harness.score.across import FEW_DATASETS, AcrossVerdict, across_verdict
 
 VERDICT_ARTIFACT = "across_corpora.json"
 DIAGRAM_ARTIFACT = "across_corpora_cd.png"

@@ -18,16 +18,16 @@ from typing import Any, Callable, Optional
 
 import numpy as np
 
-from harness.cache import StageCache
-from harness.cluster import cluster_labels
 from harness.datasets import Corpus
-from harness.encode import long_text_info, pooled_variants, token_counts
+from harness.embed.encode import long_text_info, pooled_variants, token_counts
+from harness.embed.models import LoadedEncoder, loaded_encoder
+from harness.engine.cache import StageCache
+from harness.engine.plan import Trial, make_stage, pool_stage
+from harness.geometry.cluster import cluster_labels
+from harness.geometry.reduce import neighbour_graph, reduced
+from harness.geometry.transforms import transformed
 from harness.keys import array_digest, settings_key
-from harness.models import LoadedEncoder, loaded_encoder
-from harness.plan import Trial, make_stage, pool_stage
 from harness.sweep import TRANSFORMER_FAMILIES
-from harness.reduce import neighbour_graph, reduced
-from harness.transforms import transformed
 
 BatchCallback = Callable[[int], None]
 
@@ -84,7 +84,7 @@ class StageExecutor:
         if cache_key not in self._encoders:
             encoder = loaded_encoder(trial.resolved_model, spec.max_length, spec.trust_remote_code)
             if spec.backend != "torch":
-                from harness.onnx_backend import onnx_encoder
+                from harness.embed.onnx_backend import onnx_encoder
 
                 root = self.cache.root if self.cache is not None else Path(tempfile.mkdtemp(prefix="harness-onnx-"))
                 # One export per encode key's model part: weights, model files, opset and exporting libraries.
@@ -137,9 +137,9 @@ class StageExecutor:
     def _encode_without_transformer(self, trial: Trial, wanted: dict, missing: list) -> None:
         """Word-vector, TF-IDF or precomputed document vectors; lengths in words (these models have no subword
         tokenizer), or for precomputed vectors under the tokenizer the entry names."""
-        from harness.lexical import tfidf_svd
-        from harness.models import loaded_word_vectors
-        from harness.static_vectors import static_pooled, tokens
+        from harness.embed.lexical import tfidf_svd
+        from harness.embed.models import loaded_word_vectors
+        from harness.embed.static_vectors import static_pooled, tokens
 
         encode = trial.stages["encode"]
         corpus = self.corpora[trial.dataset]
@@ -155,7 +155,7 @@ class StageExecutor:
             counts = tokenizer_counter(tokenizer.folder)(texts)
         info = {"settings": encode.settings, "truncated_fraction": 0.0}
         if trial.model.family == "precomputed":
-            from harness.precomputed import aligned_vectors, vectors_source
+            from harness.embed.precomputed import aligned_vectors, vectors_source
 
             vectors = aligned_vectors(vectors_source(trial.model), corpus.ids, corpus.name)
             outputs = {variant: vectors for variant in missing}
@@ -338,8 +338,8 @@ class StageExecutor:
         seed-free clustering share their labels, so they share the score.
         """
         from harness import __version__
-        from harness.plan import SCORES_VERSION
-        from harness.scoring import VECTOR_SCORES, VECTOR_SCORES_VERSION, subsampled_points
+        from harness.engine.plan import SCORES_VERSION
+        from harness.score.scoring import VECTOR_SCORES, VECTOR_SCORES_VERSION, subsampled_points
 
         vectors_stage = trial.own_stages["pool"] if name == "silhouette" else trial.stages["reduce"]
         vectors = (lambda: self.pooled(trial, own=True)) if name == "silhouette" else (lambda: self.reduced(trial))
@@ -361,7 +361,7 @@ class StageExecutor:
 
     def term_counts(self, trial: Trial):
         """Unigram and bigram counts of the trial's corpus, built once per dataset."""
-        from harness.describe import term_counts
+        from harness.score.describe import term_counts
 
         return self._memo(("terms", trial.dataset), lambda: term_counts(self.corpora[trial.dataset].texts))
 

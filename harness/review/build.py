@@ -14,11 +14,11 @@ from typing import Optional
 import numpy as np
 import pandas as pd
 
+from harness.engine.winner_map import MAP_INFO, MAP_LOGGED, MAP_POINTS, MAP_TAG
 from harness.errors import HarnessError
-from harness.across_report import DIAGRAM_NAME as ACROSS_DIAGRAM, AcrossSection
-from harness.halving_report import logged_halving
-from harness.readback import ConfigurationRecord, SweepRecord
-from harness.report import (
+from harness.review.across_section import DIAGRAM_NAME as ACROSS_DIAGRAM, AcrossSection
+from harness.review.halving_section import logged_halving
+from harness.review.page import (
     DatasetRanking,
     DatasetSection,
     ReportContent,
@@ -36,7 +36,7 @@ from harness.report import (
     safe_name,
     section_slug,
 )
-from harness.winner_map import MAP_INFO, MAP_LOGGED, MAP_POINTS, MAP_TAG
+from harness.track.readback import ConfigurationRecord, SweepRecord
 
 
 @dataclass(frozen=True)
@@ -134,7 +134,7 @@ def report_content(record: SweepRecord, with_map: bool = True) -> ReportContent:
 
 def across_section(record: SweepRecord) -> Optional[AcrossSection]:
     """The across-corpus verdict the sweep run logged, or None (one dataset, or a run from before it was logged)."""
-    from harness.across_corpora import logged_verdict
+    from harness.score.across_corpora import logged_verdict
 
     payload, diagram = logged_verdict(record)
     return None if payload is None else AcrossSection(payload, diagram)

@@ -28,8 +28,8 @@ from typing import Optional
 import numpy as np
 
 from harness._crashpoints import crash_point
+from harness.engine.plan import Trial
 from harness.keys import canonical_json, chained_key, texts_digest
-from harness.plan import Trial
 
 CHUNK_TEXTS = 512  # texts per task: long enough to fill a few batches, short enough that a lost one costs little
 CLUSTER_FAMILIES = ("sentence_transformer", "transformer")  # word vectors, TF-IDF and files stay local
@@ -60,7 +60,7 @@ def chunk_key(stage_key: str, ids: list, texts: list[str]) -> str:
 
 # -- on a worker -----------------------------------------------------------------------------------------------
 def _worker_encoder(model, max_length: Optional[int], trust_remote_code: bool):
-    from harness.models import loaded_encoder
+    from harness.embed.models import loaded_encoder
 
     identity = (str(model.folder), model.family, model.weights_digest, max_length, trust_remote_code, model.device.name)
     if identity not in _ENCODERS:
@@ -88,7 +88,7 @@ def encoded_chunk(model, max_length: Optional[int], trust_remote_code: bool, tex
     """One task: token counts and every pooled variant of a chunk of texts (length-sorted within the chunk)."""
     import torch
 
-    from harness.encode import pooled_variants, token_counts
+    from harness.embed.encode import pooled_variants, token_counts
 
     torch.set_num_threads(torch_threads(slots_per_host))
     _WORKER_WORK["just_loaded"] = 0
@@ -106,7 +106,7 @@ def encoded_chunk(model, max_length: Optional[int], trust_remote_code: bool, tex
 
 def encode_summary(model, max_length: Optional[int], trust_remote_code: bool, counts: np.ndarray, long_texts: str) -> dict:
     """One task: what happened to long texts (``encode.long_text_info``), from all counts and the worker's model."""
-    from harness.encode import long_text_info
+    from harness.embed.encode import long_text_info
 
     return long_text_info(counts, _worker_encoder(model, max_length, trust_remote_code), long_texts)
 
@@ -139,7 +139,7 @@ def vector_chunk_texts(chunk_size: int, batch_size: int) -> int:
 
 def chunk_token_counts(model, max_length: Optional[int], trust_remote_code: bool, texts: list[str]) -> dict:
     """One task: the token counts of a chunk of texts under the model's tokenizer."""
-    from harness.encode import token_counts
+    from harness.embed.encode import token_counts
 
     _WORKER_WORK["just_loaded"] = 0
     encoder = _worker_encoder(model, max_length, trust_remote_code)

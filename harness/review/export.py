@@ -1,6 +1,6 @@
 """One row per configuration of a sweep run, for a spreadsheet or a notebook (`harness export`).
 
-The run is the one `harness report` and `harness cite` describe (``harness.readback.sweep_record``): the
+The run is the one `harness report` and `harness cite` describe (``harness.track.readback.sweep_record``): the
 sweep's newest run whatever its status, or the run given by id; a run whose trials failed is exported with
 its status in every row (``sweep_status``) and its failed configurations, as the report lists them.
 The rows are the sweep run's configuration runs as MLflow holds them: the settings (params) as columns,
@@ -28,7 +28,7 @@ SKIPPED_TAGS = frozenset({"harness.kind", "harness.host", "harness.pid", "harnes
 
 
 def configuration_table(record) -> pd.DataFrame:
-    """The configurations of a sweep record (``harness.readback.SweepRecord``), best first within each dataset."""
+    """The configurations of a sweep record (``harness.track.readback.SweepRecord``), best first within each dataset."""
     rows = []
     for configuration in record.configurations:
         row = {"sweep": record.name, "sweep_run_id": record.run_id, "sweep_status": record.status,

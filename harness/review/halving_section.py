@@ -15,7 +15,7 @@ SURVIVORS_NOTE = ("The leaderboards and the across-corpus verdict are on the sur
 
 def logged_halving(record) -> Optional[dict[str, Any]]:
     """The halving log a sweep run wrote, or None (a grid search)."""
-    from harness.runner import HALVING_ARTIFACT
+    from harness.engine.runner import HALVING_ARTIFACT
 
     with tempfile.TemporaryDirectory() as folder:
         try:

@@ -1,7 +1,7 @@
 """The edge of ``harness plan --estimate``: measure small runs on this machine, cache them, and size the sweep's work.
 
 A calibration is measured once per model and machine (model identity, CPU model, core count, library versions)
-and kept as JSON under the cache folder; the formulas that scale it to a sweep are in harness.estimate.
+and kept as JSON under the cache folder; the formulas that scale it to a sweep are in harness.engine.estimate.
 """
 
 from __future__ import annotations
@@ -18,7 +18,7 @@ from typing import Any, Callable
 
 import numpy as np
 
-from harness.estimate import Calibration, EncodeRates, PlannedStage, padded_batches
+from harness.engine.estimate import Calibration, EncodeRates, PlannedStage, padded_batches
 from harness.keys import settings_key
 
 # How many calibrations this process has measured, by key (a cached one is read, not counted).
@@ -124,8 +124,8 @@ def _encode_rates(resolved, spec, sizes: CalibrationSizes) -> tuple[EncodeRates,
     from scipy.optimize import nnls
 
     from harness.datasets.synthetic import SyntheticSource, synthetic_corpus
-    from harness.encode import pooled_variants, token_counts
-    from harness.models import loaded_encoder
+    from harness.embed.encode import pooled_variants, token_counts
+    from harness.embed.models import loaded_encoder
 
     encoder, load = _timed(lambda: loaded_encoder(resolved, None, spec.trust_remote_code))  # the model's own limit
     baseline = _resident_mb()
@@ -163,8 +163,8 @@ def measured_calibration(resolved, spec, sizes: CalibrationSizes = DEFAULT_SIZES
 
     import umap  # noqa: F401  imported before the baseline is read: every run imports it
 
-    from harness.cluster import AgglomerativeSettings, HdbscanSettings, KmeansSettings, cluster_labels
-    from harness.reduce import PcaSettings, UmapSettings, neighbour_graph, reduced
+    from harness.geometry.cluster import AgglomerativeSettings, HdbscanSettings, KmeansSettings, cluster_labels
+    from harness.geometry.reduce import PcaSettings, UmapSettings, neighbour_graph, reduced
 
     if resolved.family in TRANSFORMER_FAMILIES and spec.backend == "torch":
         rates, vectors, baseline = _encode_rates(resolved, spec, sizes)
@@ -214,11 +214,11 @@ def planned_stages(prepared, is_cached: Callable[[str, str], bool],
     them), each with its sizes. Token counts come from the model's tokenizer over the real corpus."""
     from transformers import AutoTokenizer
 
-    from harness.cluster import resolved_k
-    from harness.estimate import STAGES, reduced_width
-    from harness.layers import output_width
-    from harness.plan import needed_stages
-    from harness.transforms import chain_width
+    from harness.embed.layers import output_width
+    from harness.engine.estimate import STAGES, reduced_width
+    from harness.engine.plan import needed_stages
+    from harness.geometry.cluster import resolved_k
+    from harness.geometry.transforms import chain_width
 
     trials = prepared.trials
     planned: list[PlannedStage] = []

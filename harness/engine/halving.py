@@ -70,7 +70,7 @@ def survivors(values: Mapping[str, float], factor: int,
     texts for every configuration of a round), every one tied with a configuration at the cut line: the paired
     interval of their difference contains 0 (``evidence.tied_with``, the leaderboard's tie test). In the order of
     ``values``."""
-    from harness.evidence import tied_with
+    from harness.score.evidence import tied_with
 
     names = list(values)
     if not names:

@@ -30,9 +30,9 @@ from typing import Iterator
 import numpy as np
 
 from harness._settings import Settings
-from harness.cluster import SEEDED_CLUSTERERS
+from harness.geometry.cluster import SEEDED_CLUSTERERS
+from harness.geometry.reduce import SEEDED_REDUCERS
 from harness.metrics import PairCodes, adjusted_rand, scores_from_table, scores_from_tables, self_pair_counts
-from harness.reduce import SEEDED_REDUCERS
 
 BOOTSTRAPPED = ("ari", "ami", "nmi", "v_measure")
 # Plug-in information scores, re-centred on the sample's score (see recentred); ARI is not: it counts pairs of

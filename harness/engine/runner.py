@@ -19,20 +19,20 @@ import numpy as np
 
 from harness import __version__
 from harness._crashpoints import crash_point
-from harness.cluster import clustering_limits
 from harness.datasets import Corpus, dataset_name, loaded_corpus, needs_tokenizer
+from harness.embed.layers import layer_choice_fits, output_width
+from harness.embed.models import ResolvedModel, model_device, resolve_family_model
+from harness.engine.plan import SINGLE_VECTOR_FAMILIES, Trial, aligned_params, dataset_key, planned_trials
 from harness.errors import HarnessError
-from harness.layers import layer_choice_fits, output_width
-from harness.models import ResolvedModel, model_device, resolve_family_model
-from harness.plan import SINGLE_VECTOR_FAMILIES, Trial, aligned_params, dataset_key, planned_trials
-from harness.reduce import reduction_limits
-from harness.transforms import chain_width, transform_limits
+from harness.geometry.cluster import clustering_limits
+from harness.geometry.reduce import reduction_limits
+from harness.geometry.transforms import chain_width, transform_limits
 from harness.sweep import (
     LABEL_FREE_METRICS, LABELLED_METRICS, TRANSFORMER_FAMILIES, EvidenceSettings, Sweep, load_sweep, sweep_error_at,
 )
 
 if TYPE_CHECKING:
-    from harness.leaderboard import Ranking
+    from harness.score.leaderboard import Ranking
 
 ProgressFactory = Callable[..., Any]
 
@@ -137,7 +137,7 @@ SUBWORD_FAMILIES = ("sentence_transformer", "transformer")
 def _length_tokenizer(path: Path, index: int, spec, sweep: Sweep, models: dict[str, ResolvedModel]) -> Optional[ResolvedModel]:
     """The model whose tokenizer measures lengths for a dataset that balances them (None: word counts):
     the entry's ``length_tokenizer``, else the sweep's first model when it has a subword tokenizer."""
-    from harness.models import resolve_model
+    from harness.embed.models import resolve_model
 
     chosen = spec.length_tokenizer
     if chosen is None:
@@ -234,7 +234,7 @@ def check_against_data(prepared: PreparedSweep, corpora: dict[str, Corpus]) -> N
     search = prepared.sweep.search
     if search.strategy != "halving":
         return
-    from harness.halving import nested_order, round_rows, subcorpus
+    from harness.engine.halving import nested_order, round_rows, subcorpus
 
     smallest = min(corpora.values(), key=lambda c: c.n_texts)
     if search.start_texts >= smallest.n_texts:
@@ -257,7 +257,7 @@ def _check_grid_against(prepared: PreparedSweep, corpora: dict[str, Corpus]) -> 
         for m_index, spec in enumerate(prepared.sweep.models):
             model = prepared.models[spec.label]
             if spec.family == "precomputed":
-                from harness.precomputed import aligned_vectors, vectors_source
+                from harness.embed.precomputed import aligned_vectors, vectors_source
 
                 try:
                     aligned_vectors(vectors_source(spec), corpus.ids, corpus.name)
@@ -309,7 +309,7 @@ def dataset_cards(corpora: dict[str, Corpus], models: dict[str, ResolvedModel]) 
     """The card of each loaded corpus, lengths measured with the tokenizer of the sweep's first transformer model
     (or in words where the sweep has none)."""
     from harness.datasets.card import corpus_card, tokenizer_counter
-    from harness.static_vectors import tokens
+    from harness.embed.static_vectors import tokens
 
     transformer = next((m for m in models.values() if m.family in ("sentence_transformer", "transformer")), None)
     if transformer is not None:
@@ -328,7 +328,7 @@ def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings
     """Compute (or reuse) the trial's stages; score and describe its clustering. ``scored`` holds, by trial key,
     scores and tables computed on a cluster (``distributed_scores``), or the error computing them raised. The last
     item: tags saying why a score is NaN."""
-    from harness.scoring import described_clusters, label_free_notes, label_free_scores, trial_scores
+    from harness.score.scoring import described_clusters, label_free_notes, label_free_scores, trial_scores
 
     clusters = executor.clustered(trial)
     counts = executor.token_counts(trial)
@@ -392,8 +392,8 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
     ``scored`` and ``configuration_evidence`` from a cluster where the sweep runs on one).
     ``kind`` "round": an early round of a halving search (a subsample), which the leaderboard does not read and
     which logs no ``settings`` (a citation reruns a configuration on the whole corpus, never on a round's sample)."""
-    from harness.evidence import configuration_evidence as evidence_here, seed_free
-    from harness.tracking import CONFIGURATION_ARTIFACT
+    from harness.score.evidence import configuration_evidence as evidence_here, seed_free
+    from harness.track.tracking import CONFIGURATION_ARTIFACT
 
     configuration_evidence = configuration_evidence or evidence_here
     first = configuration[0]
@@ -458,10 +458,10 @@ def _log_winner_map(tracker, executor, ranking: "Ranking", corpus: Corpus, evide
     """Compute the 2-D map of the dataset's winner from its first seed and log it with the winner's configuration
     run, so that a report needs nothing but the store. A map that cannot be computed is a tag saying why, never a
     failed run: the scores stand without it."""
-    from harness.describe import cluster_descriptions
-    from harness.winner_map import (
+    from harness.engine.winner_map import (
         MAP_INFO, MAP_LEFT_OUT, MAP_LOGGED, MAP_POINTS, MAP_TAG, map_coordinates, map_failed, map_info, map_points,
     )
+    from harness.score.describe import cluster_descriptions
 
     winner = ranking.winner
     if winner is None or not winner.configuration.complete or winner.value != winner.value:
@@ -515,7 +515,7 @@ def _log_across_verdict(tracker, parent: str, rankings: dict, params: dict, swee
     """The across-corpus verdict over the configurations every dataset ran, logged to the sweep run: its
     numbers as metrics, its best and winner as tags, the whole of it as JSON and its diagram as a PNG.
     A verdict that cannot be made (fewer than 2 shared configurations) is logged as a tag saying why."""
-    from harness.across_corpora import (
+    from harness.score.across_corpora import (
         DIAGRAM_ARTIFACT, VERDICT_ARTIFACT, gathered_scores, run_metrics, run_tags, scored_from_rankings, verdict_of,
         verdict_payload, verdict_png,
     )
@@ -551,12 +551,12 @@ def _halving_search(tracker, prepared: PreparedSweep, corpora: dict[str, Corpus]
     Returns (last-round results, every trial result, work, stage log, the halving log)."""
     from collections import Counter
 
-    from harness.across_corpora import configuration_identity, configuration_label
-    from harness.cache import StageCache
-    from harness.halving import nested_order, round_rows, round_sizes, subcorpus, survivors
-    from harness.leaderboard import ranking_metric
-    from harness.plan import configurations
-    from harness.stages import StageExecutor
+    from harness.engine.cache import StageCache
+    from harness.engine.halving import nested_order, round_rows, round_sizes, subcorpus, survivors
+    from harness.engine.plan import configurations
+    from harness.engine.stages import StageExecutor
+    from harness.score.across_corpora import configuration_identity, configuration_label
+    from harness.score.leaderboard import ranking_metric
 
     sweep, search = prepared.sweep, prepared.sweep.search
     final, seeds, work, stage_log, log = [], [], Counter(), [], {}
@@ -647,11 +647,11 @@ def execute_sweep(
     end, each dataset's winner gets its 2-D map, logged with its configuration run (``winner_map=False``: left
     out, and the run says so).
     """
-    from harness.cache import StageCache
-    from harness.leaderboard import rank_configurations, ranking_metric, table as leaderboard_table
-    from harness.plan import configurations
-    from harness.stages import StageExecutor
-    from harness.tracking import SweepTracker
+    from harness.engine.cache import StageCache
+    from harness.engine.plan import configurations
+    from harness.engine.stages import StageExecutor
+    from harness.score.leaderboard import rank_configurations, ranking_metric, table as leaderboard_table
+    from harness.track.tracking import SweepTracker
 
     sweep = prepared.sweep
     tracker = SweepTracker(tracking_uri, results_dir / "artifacts", sweep.name)
@@ -676,9 +676,9 @@ def execute_sweep(
     scored, evidence_of = None, None
     try:
         if dask_client is not None and not halving:
-            from harness.distributed import precompute_on_cluster
-            from harness.distributed_encode import encode_on_cluster
-            from harness.distributed_scores import evidence_on_cluster, score_on_cluster
+            from harness.engine.distributed import precompute_on_cluster
+            from harness.engine.distributed_encode import encode_on_cluster
+            from harness.engine.distributed_scores import evidence_on_cluster, score_on_cluster
 
             # Inside the try: whatever the cluster does, the sweep run is closed, never left RUNNING.
             encode_on_cluster(executor, pending, dask_client, **({"chunk_size": chunk_texts} if chunk_texts else {}))
@@ -734,9 +734,9 @@ def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None
                    chunk_texts: Optional[int] = None) -> SweepResult:
     """Everything ``harness run`` does, minus printing. The cache defaults to RESULTS_DIR/cache. ``chunk_texts``:
     texts per encode task on a cluster (default ``distributed_encode.CHUNK_TEXTS``)."""
-    from harness.tracking import default_tracking_uri
+    from harness.track.tracking import default_tracking_uri
 
-    from harness.tracking import check_reachable
+    from harness.track.tracking import check_reachable
 
     prepared = prepared_sweep(path)
     corpora = loaded_corpora(prepared)
@@ -746,7 +746,7 @@ def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None
     results_dir.mkdir(parents=True, exist_ok=True)
     client = None
     if executor == "dask":
-        from harness.distributed import dask_client
+        from harness.engine.distributed import dask_client
 
         client = dask_client(scheduler)
     try:

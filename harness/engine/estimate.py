@@ -1,7 +1,7 @@
 """What a sweep will cost before it runs: seconds and peak memory per stage, from a calibration scaled by growth rules.
 
 Pure formulas only. The calibration (a few hundred texts through the model, small UMAP, HDBSCAN, k-means, PCA and
-agglomerative fits on this machine) is measured by ``harness.calibration``; here each stage's measured cost is
+agglomerative fits on this machine) is measured by ``harness.engine.calibration``; here each stage's measured cost is
 scaled from the calibration's size to the sweep's by the growth rule written beside it. Where a rule is a rule of
 thumb rather than a published complexity, the comment says so.
 """
@@ -70,7 +70,7 @@ class Calibration:
 # -- the forward pass --------------------------------------------------------------------------------------------
 def padded_batches(counts: np.ndarray, batch_size: int, max_length: int, specials: int,
                    long_texts: str = "truncate") -> list[tuple[int, int]]:
-    """(rows, padded length) of each batch the forward pass runs, as harness.encode builds them: pieces sorted by
+    """(rows, padded length) of each batch the forward pass runs, as harness.embed.encode builds them: pieces sorted by
     length, longest first; under ``truncate`` a text keeps its first max_length tokens (special tokens included),
     under ``chunk_mean`` it is split into windows of max_length - specials tokens."""
     counts = np.asarray(counts, dtype=np.int64)
@@ -110,9 +110,10 @@ def umap_knn_seconds(cal: dict[str, float], n: int, d: int, n_neighbors: int) ->
 
 
 def graph_seconds(cal: dict[str, float], n: int, d: int, n_neighbors: int, method: str) -> float:
-    """The neighbour-graph stage (harness.reduce.neighbour_graph), computed once and shared by every UMAP fit on the
-    same vectors, metric and n_neighbors: exact (all pairwise distances, n^2 d, scaled from the calibration's exact
-    search) up to harness.reduce.EXACT_NEIGHBOURS_UP_TO texts, NN-descent above (as umap_knn_seconds)."""
+    """The neighbour-graph stage (harness.geometry.reduce.neighbour_graph), computed once and shared by every UMAP
+    fit on the same vectors, metric and n_neighbors: exact (all pairwise distances, n^2 d, scaled from the
+    calibration's exact search) up to harness.geometry.reduce.EXACT_NEIGHBOURS_UP_TO texts, NN-descent above (as
+    umap_knn_seconds)."""
     if method == "exact":
         return cal["knn_small"] * (n / cal["n_small"]) ** 2 * (d / cal["d"])
     return umap_knn_seconds(cal, n, d, n_neighbors)
@@ -170,8 +171,8 @@ def umap_transient_bytes(n: int, d: int, n_neighbors: int) -> int:
 
 
 def hdbscan_transient_bytes(n: int, d: int) -> int:
-    """A float64 copy of the points (harness.cluster casts them), the kd-tree, the minimum spanning tree and the
-    condensed tree: about 100 bytes per point beyond the copy (rule of thumb)."""
+    """A float64 copy of the points (harness.geometry.cluster casts them), the kd-tree, the minimum spanning tree
+    and the condensed tree: about 100 bytes per point beyond the copy (rule of thumb)."""
     return n * d * 8 + 100 * n
 
 
