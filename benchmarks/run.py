@@ -365,7 +365,7 @@ def sweep_overhead_figures(n_texts: int, repeats: int) -> dict:
     }}
 
 
-@group("dask_encode", default=False)
+@group("dask_encode")
 def dask_encode_group(n_texts: int, repeats: int) -> dict:
     """dask_encode_over_local: the encode stage on a 2-worker LocalCluster over the local executor (benchmarks/dask_encode.py)."""
     sys.path.insert(0, str(Path(__file__).resolve().parent))
