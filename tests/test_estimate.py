@@ -274,6 +274,10 @@ def test_each_model_loads_once_per_worker_and_its_load_is_not_divided():
     assert one.stages["encode"].seconds == pytest.approx(sum(
         est.encode_seconds(r, np.full(5000, 40), 32, 128, 2) for r in (RATES, slow_load)))
     assert four.stages["encode"].seconds == pytest.approx((one.stages["encode"].seconds - loads) / 4 + loads)
+    # One model over two datasets, one process: two forward passes, one load.
+    same = [PlannedStage("encode", 5000, 384, encode, counts=np.full(5000, 40), rates=RATES) for _ in range(2)]
+    compute = est.encode_seconds(RATES, np.full(5000, 40), 32, 128, 2) - RATES.load_seconds
+    assert est.sweep_estimate(same, CAL).stages["encode"].seconds == pytest.approx(2 * compute + RATES.load_seconds)
 
 
 WIDTHS_SWEEP = """
@@ -309,15 +313,16 @@ def test_the_planned_widths_are_the_widths_the_run_computes(tmp_path):
     prepared = prepared_sweep(write_sweep(tmp_path, WIDTHS_SWEEP.format(model=model)))
     planned = planned_stages(prepared, lambda kind, key: False, {m.label: CAL for m in prepared.sweep.models})
     executor = StageExecutor(prepared.corpora, prepared.trials, None)
-    computed = {"pool": set(), "transform": set(), "graph": set(), "reduce": set(), "cluster": set()}
+    computed = {}  # stage key -> the width of the array that stage holds (the graph and a reduction: of their input)
     for trial in prepared.trials:
-        computed["pool"].add(executor.pooled(trial).shape[1])
-        width = executor.transformed(trial).shape[1]
-        computed["transform"].add(width)
-        computed["reduce"].add(width)
+        transformed = executor.transformed(trial).shape[1]
+        computed[trial.stages["pool"].key] = executor.pooled(trial).shape[1]
+        computed[trial.stages["transform"].key] = transformed
+        computed[trial.stages["reduce"].key] = transformed
         if "graph" in trial.stages:
-            computed["graph"].add(width)
-        computed["cluster"].add(executor.reduced(trial).shape[1])
-    for kind, widths in computed.items():
-        assert {s.width for s in planned if s.kind == kind} == widths, kind
-    assert computed["pool"] == {32, 128} and computed["transform"] == {32, 128, 8}  # the cases this test is about
+            computed[trial.stages["graph"].key] = transformed
+        computed[trial.stages["cluster"].key] = executor.reduced(trial).shape[1]
+    planned_widths = {s.key: s.width for s in planned if s.kind != "encode"}
+    assert planned_widths == computed
+    by_kind = lambda kind: {computed[s.key] for s in planned if s.kind == kind}  # noqa: E731
+    assert by_kind("pool") == {32, 128} and by_kind("transform") == {32, 128, 8}  # the cases this test is about

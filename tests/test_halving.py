@@ -245,3 +245,31 @@ def test_every_round_takes_its_vectors_from_the_whole_corpus_forward_pass(tmp_pa
     part = pooled_variants(encoder, subcorpus(corpus, rows).texts, variants, batch_size=32)
     for variant in variants:
         np.testing.assert_allclose(whole[variant][rows], part[variant], rtol=0, atol=1e-5 * np.abs(part[variant]).max())
+
+
+def test_only_backends_whose_vectors_ignore_batch_mates_share_rows(tmp_path, tiny_model_dir):
+    # The rule share_rows and the encode key rest on: under ROW_INDEPENDENT_BACKENDS a text's vectors are the same
+    # (to float rounding) whatever texts share its batch; under the others they are not, so those backends encode
+    # every subsample themselves and their batch size enters the encode key. Checked for every backend the schema
+    # accepts: rows of a 180-text pass against a 20-text subsample's own pass (other batches, same batch size).
+    import typing
+
+    from harness.embed.encode import pooled_variants
+    from harness.embed.models import loaded_encoder, resolve_model
+    from harness.embed.onnx_backend import onnx_encoder
+    from harness.engine.plan import ROW_INDEPENDENT_BACKENDS
+    from harness.sweep import ModelSettings
+
+    backends = typing.get_args(ModelSettings.model_fields["backend"].annotation)
+    corpus = synthetic_corpus(SyntheticSource(source="synthetic", name="easy", n_texts=180, n_topics=3,
+                                              topic_share=0.7, seed=2))
+    rows = round_rows(nested_order(corpus.labels, corpus.n_texts, 0), 20)
+    torch_encoder = loaded_encoder(resolve_model(str(tiny_model_dir)), 32, False)
+    variants = [("last", "mean"), ("last", "max")]
+    for backend in backends:
+        encoder = torch_encoder if backend == "torch" else onnx_encoder(torch_encoder, tmp_path / backend,
+                                                                        int8=backend == "onnx_int8")
+        whole = pooled_variants(encoder, corpus.texts, variants, batch_size=32)
+        part = pooled_variants(encoder, subcorpus(corpus, rows).texts, variants, batch_size=32)
+        agree = all(np.abs(whole[v][rows] - part[v]).max() <= 1e-5 * np.abs(part[v]).max() for v in variants)
+        assert agree == (backend in ROW_INDEPENDENT_BACKENDS), backend

@@ -580,3 +580,28 @@ grid:
     for old, new in zip(before, after, strict=True):
         changed = (old.key != new.key, old.config_key != new.config_key)
         assert changed == ((True, True) if old.reducer.method == "umap" else (False, False)), old.name
+
+
+def test_batch_size_enters_the_key_only_where_the_batch_changes_the_vectors(tmp_path, tiny_model_dir):
+    # batch_size is result-neutral (plan.RESULT_NEUTRAL) except under backends that quantise per batch; there it
+    # must change the trial key (tests/test_halving.py shows which backends depend on their batch-mates).
+    import typing
+
+    from harness.engine.plan import ROW_INDEPENDENT_BACKENDS
+    from harness.sweep import ModelSettings
+
+    for backend in typing.get_args(ModelSettings.model_fields["backend"].annotation):
+        keys = []
+        for batch_size in (8, 16):
+            sweep = write_sweep(tmp_path, f"""name: batches
+datasets: [{{source: synthetic, n_texts: 60, seed: 1}}]
+models: [{{name: {tiny_model_dir}, backend: {backend}, batch_size: {batch_size}}}]
+grid:
+  pooling: [mean]
+  reduce: [{{method: pca, n_components: 3}}]
+  cluster: [{{method: kmeans, k: labels}}]
+  seeds: [0]
+""", f"{backend}-{batch_size}.yaml")
+            (trial,) = prepared_sweep(sweep).trials
+            keys.append(trial.key)
+        assert (keys[0] == keys[1]) == (backend in ROW_INDEPENDENT_BACKENDS), backend

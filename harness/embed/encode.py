@@ -115,21 +115,35 @@ def pooled_variants(
 
 def truncated_fraction(counts: np.ndarray, encoder: LoadedEncoder) -> float:
     """Share of texts longer than the model sees (special tokens included): cut under long_texts: truncate."""
-    specials = encoder.tokenizer.num_special_tokens_to_add(pair=False)
-    return float(np.mean(counts + specials > encoder.max_length))
+    return truncated_share(counts, encoder.max_length, encoder.tokenizer.num_special_tokens_to_add(pair=False))
 
 
 def windows_per_text(counts: np.ndarray, encoder: LoadedEncoder) -> np.ndarray:
     """How many windows each text is split into under long_texts: chunk_mean (at least one; see ``_windows``)."""
-    room = encoder.max_length - encoder.tokenizer.num_special_tokens_to_add(pair=False)
-    return np.maximum(1, -(-np.asarray(counts) // room))
+    return window_counts(counts, encoder.max_length, encoder.tokenizer.num_special_tokens_to_add(pair=False))
+
+
+def truncated_share(counts: np.ndarray, max_length: int, specials: int) -> float:
+    return float(np.mean(np.asarray(counts) + specials > max_length))
+
+
+def window_counts(counts: np.ndarray, max_length: int, specials: int) -> np.ndarray:
+    return np.maximum(1, -(-np.asarray(counts) // (max_length - specials)))
+
+
+def long_text_figures(counts: np.ndarray, max_length: int, specials: int, long_texts: str) -> dict[str, float]:
+    """``long_text_info`` from the model's window (max_length, special tokens per text) instead of the model."""
+    if long_texts == "chunk_mean":
+        windows = window_counts(counts, max_length, specials)
+        return {"truncated_fraction": 0.0, "windows_per_text_mean": float(windows.mean()),
+                "split_fraction": float(np.mean(windows > 1))}
+    return {"truncated_fraction": truncated_share(counts, max_length, specials)}
 
 
 def long_text_info(counts: np.ndarray, encoder: LoadedEncoder, long_texts: str) -> dict[str, float]:
     """What happened to texts longer than the model sees: cut (truncate), or split into windows (chunk_mean, where
-    nothing is cut, so the truncated fraction is 0)."""
-    if long_texts == "chunk_mean":
-        windows = windows_per_text(counts, encoder)
-        return {"truncated_fraction": 0.0, "windows_per_text_mean": float(windows.mean()),
-                "split_fraction": float(np.mean(windows > 1))}
-    return {"truncated_fraction": truncated_fraction(counts, encoder)}
+    nothing is cut, so the truncated fraction is 0). With the window it was measured with (``window_max_length``,
+    ``window_specials``), so that the same figures can be taken for a subset of the texts without the model."""
+    max_length, specials = encoder.max_length, encoder.tokenizer.num_special_tokens_to_add(pair=False)
+    return {**long_text_figures(counts, max_length, specials, long_texts), "window_max_length": int(max_length),
+            "window_specials": int(specials)}

@@ -251,7 +251,8 @@ def planned_stages(prepared, is_cached: Callable[[str, str], bool],
                     counts, specials, max_length = np.ones(n, dtype=np.int64), 0, 1
                 planned.append(PlannedStage("encode", n, width, {
                     "batch_size": trial.model.batch_size, "max_length": max_length, "specials": specials,
-                    "long_texts": trial.model.long_texts, "variants": len(missing)}, counts=counts, rates=cal.encode))
+                    "long_texts": trial.model.long_texts, "variants": len(missing)}, counts=counts, rates=cal.encode,
+                    key=key))
                 continue
             if is_cached(kind, key):
                 continue
@@ -273,5 +274,5 @@ def planned_stages(prepared, is_cached: Callable[[str, str], bool],
                 if settings["method"] == "kmeans":
                     settings["k"] = resolved_k(trial.clusterer, corpus.n_classes)
                 width = reduced_width(trial.reducer.as_params(), transformed_width)
-            planned.append(PlannedStage(kind, n, width, settings))
+            planned.append(PlannedStage(kind, n, width, settings, key=key))
     return planned

@@ -240,6 +240,7 @@ class PlannedStage:
     settings: dict[str, Any]
     counts: Optional[np.ndarray] = None
     rates: Optional[EncodeRates] = None  # encode: this model's calibrated forward pass (None: the calibration's)
+    key: str = ""  # the stage's key, where it comes from a plan
 
 
 def reduced_width(settings: dict[str, Any], width: int) -> int:
@@ -302,12 +303,14 @@ def sweep_estimate(planned: list[PlannedStage], cal: Calibration, workers: int =
         entry.transient_bytes = max(entry.transient_bytes, working)
         seconds[stage.kind].append(took)
     for kind, entry in stages.items():
-        if workers > 1 and kind == "encode":
-            # Each worker loads each model once (in parallel with the others) and shares the chunks' compute.
+        if kind == "encode":
+            # A model is loaded once per process (per worker on a cluster, all loading at once), whatever the
+            # number of forward passes it makes; the passes' compute divides over the workers.
             rates = [s.rates or cal.encode for s in planned if s.kind == "encode"]
             loads = [r.load_seconds if r is not None else 0.0 for r in rates]
             models = {id(r): load for r, load in zip(rates, loads)}
-            entry.seconds = sum(max(t - load, 0.0) for t, load in zip(seconds[kind], loads)) / workers + sum(models.values())
+            compute = sum(max(t - load, 0.0) for t, load in zip(seconds[kind], loads))
+            entry.seconds = compute / max(workers, 1) + sum(models.values())
         elif workers > 1 and kind in PARALLEL_KINDS:
             entry.seconds = parallel_seconds(seconds[kind], workers)
         else:

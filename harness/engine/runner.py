@@ -540,7 +540,7 @@ HALVING_ARTIFACT = "halving.json"
 
 
 def _halving_search(tracker, prepared: PreparedSweep, corpora: dict[str, Corpus], done: dict, parent: str,
-                    cache_dir: Optional[Path], encode_progress, resume: bool, on_trial,
+                    encode_progress, resume: bool, on_trial,
                     full) -> tuple[list, list, dict, list, dict]:
     """Successive halving, per dataset: every configuration on the first nested subsample, the best 1/factor
     (and whatever ties the cut line) on to the next, up to the whole corpus. ``full``: the sweep's executor over
@@ -551,7 +551,6 @@ def _halving_search(tracker, prepared: PreparedSweep, corpora: dict[str, Corpus]
     Returns (last-round results, every trial result, work, stage log, the halving log)."""
     from collections import Counter
 
-    from harness.engine.cache import StageCache
     from harness.engine.halving import nested_order, round_rows, round_sizes, subcorpus, survivors
     from harness.engine.plan import configurations
     from harness.engine.stages import StageExecutor
@@ -584,8 +583,10 @@ def _halving_search(tracker, prepared: PreparedSweep, corpora: dict[str, Corpus]
             if last:
                 executor = full
             else:
-                executor = StageExecutor({dataset: part}, trials, StageCache(cache_dir) if cache_dir else None,
-                                         encode_progress)
+                # No disk cache for a round: its vectors may be rows of the whole corpus's pass (share_rows), equal
+                # to the subsample's own only to float rounding, and nothing computed from them is stored under the
+                # subsample's keys. A resumed round reuses its logged runs (MLflow) instead.
+                executor = StageExecutor({dataset: part}, trials, None, encode_progress)
                 for trial in trials:
                     if trial.key not in reusable:
                         executor.share_rows(trial, full, full_by_identity[configuration_identity(trial.config_params)], rows)
@@ -690,7 +691,7 @@ def execute_sweep(
         halving_seeds, halving_work, halving_stages = [], {}, []
         if halving:
             results, halving_seeds, halving_work, halving_stages, halving_log = _halving_search(
-                tracker, prepared, corpora, done, parent, cache_dir, encode_progress, resume,
+                tracker, prepared, corpora, done, parent, encode_progress, resume,
                 bar.update if bar else (lambda: None), executor)
             tracker.log_text(parent, json.dumps(halving_log, indent=2), HALVING_ARTIFACT)
         else:

@@ -19,10 +19,10 @@ from typing import Any, Callable, Optional
 import numpy as np
 
 from harness.datasets import Corpus
-from harness.embed.encode import long_text_info, pooled_variants, token_counts
+from harness.embed.encode import long_text_figures, long_text_info, pooled_variants, token_counts
 from harness.embed.models import LoadedEncoder, loaded_encoder
 from harness.engine.cache import StageCache
-from harness.engine.plan import Trial, make_stage, pool_stage
+from harness.engine.plan import ROW_INDEPENDENT_BACKENDS, Trial, make_stage, pool_stage
 from harness.geometry.cluster import cluster_labels
 from harness.geometry.reduce import neighbour_graph, reduced
 from harness.geometry.transforms import transformed
@@ -245,12 +245,15 @@ class StageExecutor:
     def share_rows(self, trial: Trial, source: "StageExecutor", source_trial: Trial, rows: np.ndarray) -> None:
         """Take this trial's forward pass as ``rows`` of ``source_trial``'s on another corpus that holds this one's
         texts (a halving round's nested subsample): token counts and every pooled variant it wants, sliced, with
-        no forward pass of its own. Only for transformer families, whose vectors of a text do not depend on the
-        other texts (up to the float rounding of a different batch, as for batch_size, see plan.RESULT_NEUTRAL);
-        TF-IDF and static vectors with SIF or a removed component are fitted on their corpus, so they encode their
-        own. Held in memory only: nothing is written to the cache under this corpus's keys. A source whose forward
-        pass raises is left alone, and the trial computes (and fails) as usual."""
-        if trial.model.family not in TRANSFORMER_FAMILIES:
+        no forward pass of its own. Only for transformer families on a float backend (ROW_INDEPENDENT_BACKENDS),
+        whose vectors of a text do not depend on the other texts (up to the float rounding of a different batch,
+        as for batch_size, see plan.RESULT_NEUTRAL); TF-IDF and static vectors are fitted or read per corpus, so
+        they encode their own. Held in memory only, and the runner gives a round's executor no disk cache, so
+        nothing computed from these rows is stored under the subsample's keys. A source whose forward pass raises
+        is left alone, and the trial computes (and fails) as usual."""
+        # int8 ONNX quantises activations with one scale per batch: a text's vector depends on its batch-mates
+        # (measured: 7e-4 of the scale between a corpus's rows and the subsample's own pass), so it encodes its own.
+        if trial.model.family not in TRANSFORMER_FAMILIES or trial.model.backend not in ROW_INDEPENDENT_BACKENDS:
             return
         encode = trial.stages["encode"]
         wanted = self.wanted_pools(trial)
@@ -259,7 +262,12 @@ class StageExecutor:
         source_wanted = source.wanted_pools(source_trial)
         try:
             counts = source.token_counts(source_trial)
-            info = long_text_info(counts[rows], source._encoder(source_trial), trial.model.long_texts)
+            measured = source.encode_info(source_trial)
+            if "window_max_length" in measured:  # no model load where the whole corpus's pass is stored
+                info = long_text_figures(counts[rows], measured["window_max_length"], measured["window_specials"],
+                                         trial.model.long_texts)
+            else:
+                info = long_text_info(counts[rows], source._encoder(source_trial), trial.model.long_texts)
             pooled = {variant: source._pooled_variant(source_trial, source_wanted[variant]) for variant in wanted}
         except Exception:  # the trial's own stages raise it again, inside the trial
             return
