@@ -53,8 +53,10 @@ def test_seeds_that_share_labels_share_the_computation_and_the_value(tmp_path):
     for trial in prepared.trials:
         clusters = executor.clustered(trial)
         kept = clusters != -1
-        # Outside references: scikit-learn's silhouette_score (cosine) and hdbscan's validity_index.
-        expected_silhouette = silhouette_score(executor.pooled(trial, own=True)[kept], clusters[kept], metric="cosine")
+        # Outside references: scikit-learn's silhouette_score (cosine, in float64 as the tool computes it) and
+        # hdbscan's validity_index.
+        pooled = np.asarray(executor.pooled(trial, own=True), dtype=np.float64)
+        expected_silhouette = silhouette_score(pooled[kept], clusters[kept], metric="cosine")
         assert np.isclose(found[trial.key]["silhouette"], expected_silhouette, rtol=1e-12, atol=0)
         present = np.unique(clusters[kept])
         contiguous = np.where(kept, np.searchsorted(present, clusters), -1)
