@@ -43,17 +43,25 @@ evidence: {{resamples: 50, permutations: 19}}
 
 
 def _reference_map(vectors: np.ndarray) -> np.ndarray:
-    """The report's map settings, applied with umap-learn directly (not through harness): 2 components, cosine,
-    min(15, n - 1) neighbours, min_dist 0, random_state 0."""
+    """The report's map settings, applied with scikit-learn and umap-learn directly (not through harness): the exact
+    cosine neighbours (scikit-learn's brute-force NearestNeighbors, one BLAS thread, each point its own first
+    neighbour) handed to umap-learn as precomputed_knn; 2 components, min(15, n - 1) neighbours, min_dist 0,
+    random_state 0."""
     import warnings
 
     import umap
+    from sklearn.neighbors import NearestNeighbors
+    from threadpoolctl import threadpool_limits
 
     vectors = np.asarray(vectors, dtype=np.float32)
-    reducer = umap.UMAP(n_components=2, n_neighbors=min(15, len(vectors) - 1), min_dist=0.0, metric="cosine",
-                        random_state=0)
+    k = min(15, len(vectors) - 1)
+    with threadpool_limits(limits=1):
+        distances, indices = NearestNeighbors(n_neighbors=k, metric="cosine", algorithm="brute").fit(vectors).kneighbors(vectors)
+    reducer = umap.UMAP(n_components=2, n_neighbors=k, min_dist=0.0, metric="cosine", random_state=0,
+                        precomputed_knn=(indices.astype(np.int64), distances.astype(np.float32), None))
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=".*n_jobs value.*overridden.*")  # a seed makes it single-threaded
+        warnings.filterwarnings("ignore", message=".*knn_search_index.*")
         return reducer.fit_transform(vectors)
 
 
@@ -127,7 +135,8 @@ def test_the_report_of_a_moved_store_shows_the_map_the_run_computed(moved, capsy
         winner = next(c for c in record.configurations if c.run_id == wanted["configuration"].run_id)
         found, why = logged_map(record, winner)
         assert found is not None, why
-        # The coordinates: umap-learn on the vectors the run cached for the winner's first seed.
+        # The coordinates: umap-learn, given scikit-learn's exact neighbours, on the vectors the run cached for the
+        # winner's first seed.
         np.testing.assert_allclose(found.xy, wanted["xy"], rtol=0, atol=1e-6)
         assert np.array_equal(found.clusters, wanted["clusters"])
         assert found.points["id"].tolist() == [str(i) for i in wanted["ids"]]

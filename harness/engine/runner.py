@@ -459,7 +459,7 @@ def _log_winner_map(tracker, executor, ranking: "Ranking", corpus: Corpus, evide
     run, so that a report needs nothing but the store. A map that cannot be computed is a tag saying why, never a
     failed run: the scores stand without it."""
     from harness.engine.winner_map import (
-        MAP_INFO, MAP_LEFT_OUT, MAP_LOGGED, MAP_POINTS, MAP_TAG, map_coordinates, map_failed, map_info, map_points,
+        MAP_INFO, MAP_LEFT_OUT, MAP_LOGGED, MAP_POINTS, MAP_TAG, map_failed, map_info, map_points,
     )
     from harness.score.describe import cluster_descriptions
 
@@ -474,7 +474,7 @@ def _log_winner_map(tracker, executor, ranking: "Ranking", corpus: Corpus, evide
     trial = first.trial
     try:
         counts = executor.token_counts(trial)
-        xy = map_coordinates(executor.transformed(trial))
+        xy = executor.map_coordinates(trial)
         descriptions = cluster_descriptions(executor.term_counts(trial), first.clusters, counts, top=evidence.top_terms)
         info = map_info(dataset=ranking.dataset, configuration=configuration.name, seed_run_id=first.run_id or "",
                         trial_key=trial.key, seed=trial.seed, n_texts=corpus.n_texts, descriptions=descriptions)

@@ -333,6 +333,24 @@ class StageExecutor:
         return self._computed(trial, "reduce", f"{trial.reducer.method}_fits", lambda: (self.transformed(trial),),
                               lambda vectors: reduced(vectors, trial.reducer, trial.seed))
 
+    def map_coordinates(self, trial: Trial) -> np.ndarray:
+        """The (n, 2) map of the vectors the trial's reducer sees (engine.winner_map.map_settings, MAP_SEED), as a
+        graph stage and a reduce stage keyed exactly like a planned 2-D UMAP of those vectors: a sweep that fits
+        that reduction shares it, and a rerun reads the map back from the cache instead of fitting it again."""
+        from harness.engine.plan import graph_stage
+        from harness.engine.winner_map import MAP_SEED, map_settings
+
+        n_texts = self.corpora[trial.dataset].n_texts
+        settings = map_settings(n_texts)
+        graph = graph_stage(trial.stages["transform"].key, settings, n_texts)
+        fit = make_stage("reduce", graph.key, {**settings.as_params(), "seed": MAP_SEED})
+        neighbours = self._computed(trial, "graph", "neighbour_graphs", lambda: (self.transformed(trial),),
+                                    lambda vectors: neighbour_graph(vectors, graph.settings["metric"],
+                                                                    graph.settings["n_neighbors"],
+                                                                    graph.settings["method"]), stage=graph)
+        return self._computed(trial, "reduce", "map_fits", lambda: (self.transformed(trial), neighbours),
+                              lambda vectors, found: reduced(vectors, settings, MAP_SEED, found), stage=fit)
+
     def clustered(self, trial: Trial) -> np.ndarray:
         n_classes = self.corpora[trial.dataset].n_classes
         return self._computed(trial, "cluster", "clusterings", lambda: (self.reduced(trial),),

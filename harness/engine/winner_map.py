@@ -4,7 +4,8 @@ The run has the winner's vectors at hand when it ends; the report, which may run
 copy of the store, has only what was logged. So the run reduces the vectors the winner's reducer saw (its
 first seed's) to two dimensions, always with the same UMAP settings whatever the winner's own reducer, and
 logs the points with what the map draws: each text's id, gold label, cluster and token count, and each
-cluster's distinctive terms for the legend. Pure functions here; the runner logs, the report reads.
+cluster's distinctive terms for the legend. The fit itself is a stage (StageExecutor.map_coordinates: the shared
+neighbour graph, then UMAP), cached like any reduction. Pure functions here; the runner logs, the report reads.
 """
 
 from __future__ import annotations
@@ -28,14 +29,6 @@ def map_settings(n_texts: int):
     from harness.geometry.reduce import UmapSettings
 
     return UmapSettings(method="umap", n_components=2, n_neighbors=min(15, n_texts - 1), metric="cosine")
-
-
-def map_coordinates(vectors: np.ndarray) -> np.ndarray:
-    """(n, 2) float32 coordinates of ``vectors`` under ``map_settings``."""
-    from harness.geometry.reduce import umap_reduced
-
-    vectors = np.asarray(vectors, dtype=np.float32)
-    return umap_reduced(vectors, map_settings(len(vectors)), MAP_SEED)
 
 
 def map_points(ids, labels, clusters: np.ndarray, token_counts: np.ndarray, xy: np.ndarray):
