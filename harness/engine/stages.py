@@ -344,7 +344,7 @@ class StageExecutor:
         settings = map_settings(n_texts)
         graph = graph_stage(trial.stages["transform"].key, settings, n_texts)
         fit = make_stage("reduce", graph.key, {**settings.as_params(), "seed": MAP_SEED})
-        neighbours = self._computed(trial, "graph", "neighbour_graphs", lambda: (self.transformed(trial),),
+        neighbours = self._computed(trial, "graph", "map_graphs", lambda: (self.transformed(trial),),
                                     lambda vectors: neighbour_graph(vectors, graph.settings["metric"],
                                                                     graph.settings["n_neighbors"],
                                                                     graph.settings["method"]), stage=graph)
@@ -393,12 +393,21 @@ class StageExecutor:
 
     def length_leakage(self, trial: Trial, kind: str = "transform", seed: int = 0) -> float:
         """Cross-validated R^2 of log length from the trial's own vectors: after its transform (the vectors that are
-        reduced) or, with ``kind="pool"``, as pooled. Once per stage key."""
+        reduced) or, with ``kind="pool"``, as pooled. Once per stage key, and cached like a stage (it depends on the
+        vectors and, through their chain, on the token counts; not on any clustering), so a rerun that changes only
+        clusterings reads it back."""
+        from harness import __version__
+        from harness.engine.plan import SCORES_VERSION
         from harness.metrics import length_leakage_r2
 
         vectors = self.transformed if kind == "transform" else self.pooled
-        return self._memo(("leakage", trial.own_stages[kind].key, seed), lambda: length_leakage_r2(
-            vectors(trial, own=True), np.maximum(self.token_counts(trial), 1), seed=seed))
+        stage = make_stage("score", trial.own_stages[kind].key, {
+            "score": "length_leakage_r2", "seed": seed, "code": {"harness": __version__, "scores": SCORES_VERSION}})
+        value = self._computed(trial, "score", "leakage_computations",
+                               lambda: (vectors(trial, own=True), self.token_counts(trial)),
+                               lambda points, counts: np.array([length_leakage_r2(points, np.maximum(counts, 1), seed=seed)]),
+                               stage=stage)
+        return float(value[0])
 
     def stage_seconds(self, trial: Trial) -> dict[str, float]:
         """Seconds each of the trial's stages took when it was computed (shared or cached stages count in full)."""
