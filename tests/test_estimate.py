@@ -17,7 +17,8 @@ from conftest import write_sweep
 
 RATES = EncodeRates(linear=1e-3, quadratic=1e-5, tokenize_per_token=1e-6, load_seconds=2.0, max_length=512)
 UMAP_CAL = {"n_small": 1000, "knn_small": 0.1, "fit_small": 2.1, "n_large": 5000, "knn_large": 3.0,
-            "fit_large": 7.0, "n_neighbors": 15, "n_components": 5, "d": 384, "warmup": 5.0}
+            "fit_large": 7.0, "n_neighbors": 15, "n_components": 5, "d": 384, "warmup": 5.0,
+            "warmup_nndescent": 3.0}
 CAL = Calibration(encode=RATES, width=384, umap=UMAP_CAL,
                   hdbscan={"n": 5000, "d": 5, "seconds": 1.0},
                   kmeans={"n": 5000, "d": 5, "k": 10, "n_init": 10, "seconds": 2.0},
@@ -326,3 +327,13 @@ def test_the_planned_widths_are_the_widths_the_run_computes(tmp_path):
     assert planned_widths == computed
     by_kind = lambda kind: {computed[s.key] for s in planned if s.kind == kind}  # noqa: E731
     assert by_kind("pool") == {32, 128} and by_kind("transform") == {32, 128, 8}  # the cases this test is about
+
+
+def test_nn_descent_compile_is_paid_only_by_a_plan_that_runs_nn_descent():
+    # pynndescent compiles on its first call in a process; an exact graph never calls it.
+    exact = est.sweep_estimate(_stages(20_000), CAL)
+    approximate = [PlannedStage("graph", 30_000, 384, {"metric": "cosine", "n_neighbors": 15, "method": "nndescent"})]
+    assert exact.stages["graph"].seconds == pytest.approx(
+        UMAP_CAL["knn_small"] * (20_000 / UMAP_CAL["n_small"]) ** 2 * (384 / UMAP_CAL["d"]))
+    assert est.sweep_estimate(approximate, CAL).stages["graph"].seconds == pytest.approx(
+        est.umap_knn_seconds(UMAP_CAL, 30_000, 384, 15) + UMAP_CAL["warmup_nndescent"])

@@ -49,7 +49,8 @@ class Calibration:
 
     encode: Optional[EncodeRates]
     width: int  # the model's vector width, the d of the calibration vectors
-    umap: dict[str, float]  # n_small, knn_small, fit_small, n_large, knn_large, fit_large, n_neighbors, n_components, d, warmup
+    umap: dict[str, float]  # n_small, knn_small, fit_small, n_large, knn_large, fit_large, n_neighbors, n_components, d,
+    # warmup (UMAP's first-fit compile), warmup_nndescent (pynndescent's first-call compile)
     hdbscan: dict[str, float]  # n, d, seconds
     kmeans: dict[str, float]  # n, d, k, n_init, seconds
     pca: dict[str, float]  # n, d, n_components, seconds
@@ -317,6 +318,9 @@ def sweep_estimate(planned: list[PlannedStage], cal: Calibration, workers: int =
             entry.seconds = sum(seconds[kind])
     if any(s.kind == "reduce" and s.settings["method"] == "umap" for s in planned):
         stages["reduce"].seconds += cal.umap["warmup"]  # the first UMAP fit of a process compiles its numba functions
+    if any(s.kind == "graph" and s.settings["method"] == "nndescent" for s in planned):
+        stages["graph"].seconds += cal.umap.get("warmup_nndescent", 0.0)  # and the first NN-descent, pynndescent's
+        stages["graph"].notes.append("includes pynndescent's first-call compile")
         stages["reduce"].notes.append("includes numba's first-fit compile")
     if any(s.kind == "encode" and (s.rates or cal.encode) is None for s in planned):
         stages["encode"].notes.append("family without a calibrated forward pass: not estimated")
