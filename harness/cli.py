@@ -74,8 +74,9 @@ def command_plan(args: argparse.Namespace) -> int:
         from harness.engine.halving import round_sizes
 
         print(f"\nsearch: halving (factor {search.factor}); the work above is the full grid's on the whole corpora. The "
-              "transformer models' forward passes are the whole corpus's and serve every round (TF-IDF, static and "
-              "precomputed vectors are fitted or read again per round); each round runs the survivors of the round "
+              "forward passes of transformer models on the torch or onnx backend are the whole corpus's and serve every "
+              "round (int8 ONNX, TF-IDF, static and precomputed vectors are computed again per round); each round runs "
+              "the survivors of the round "
               "before on a nested subsample of")
         for name, corpus in prepared.corpora.items():
             print(f"  {name}: " + ", ".join(str(n) for n in round_sizes(corpus.n_texts, search.start_texts, search.factor))

@@ -81,9 +81,13 @@ def test_changing_only_clustering_runs_no_forward_pass_and_no_umap_fit(tmp_path,
     # 6 reductions read back, and the winner's 2-D map too where the new winner has the old winner's vectors
     assert second.work.get("map_fits", 0) in (0, 1)
     assert second.work["clusterings"] == 12 and second.work["reduce_cache_hits"] == 6 + 1 - second.work.get("map_fits", 0)
-    # The same sweep again: every trial reused, and the map is read back from the cache, not fitted again.
+    # The length leakage depends on the vectors only: read back, not cross-validated again.
+    assert second.work.get("leakage_computations", 0) == 0 and first.work["leakage_computations"] > 0
+    # The same sweep again: every trial reused, and the map is read back from the cache (a reduce-stage hit, the
+    # only reduction this run touches), not fitted again.
     third = run_sweep_file(write_sweep(tmp_path, SWEEP.format(model=tiny_model_dir, cluster=CLUSTER_B), "b.yaml"), results)
     assert third.work.get("map_fits", 0) == 0 and third.work.get("umap_fits", 0) == 0
+    assert third.work.get("reduce_cache_hits", 0) == 1
 
 
 def test_equivalent_trials_are_computed_once_and_tagged(tmp_path, tiny_model_dir):

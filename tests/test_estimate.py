@@ -337,3 +337,6 @@ def test_nn_descent_compile_is_paid_only_by_a_plan_that_runs_nn_descent():
         UMAP_CAL["knn_small"] * (20_000 / UMAP_CAL["n_small"]) ** 2 * (384 / UMAP_CAL["d"]))
     assert est.sweep_estimate(approximate, CAL).stages["graph"].seconds == pytest.approx(
         est.umap_knn_seconds(UMAP_CAL, 30_000, 384, 15) + UMAP_CAL["warmup_nndescent"])
+    # and each compile is said where it is counted
+    assert exact.stages["reduce"].notes == ["includes numba's first-fit compile"] and not exact.stages["graph"].notes
+    assert est.sweep_estimate(approximate, CAL).stages["graph"].notes == ["includes pynndescent's first-call compile"]

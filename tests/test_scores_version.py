@@ -17,6 +17,7 @@ import pytest
 from sklearn import metrics as skm
 
 from harness.engine.plan import SCORES_VERSION
+from harness.metrics import length_leakage_r2
 from harness.score.evidence import configuration_evidence
 from harness.score.scoring import VECTOR_SCORES, label_free_scores, trial_scores
 
@@ -45,6 +46,8 @@ def fixed_scores() -> dict[str, float]:
         vector_scores = {name: float(VECTOR_SCORES[name](points, clusters, max_points=5000, seed=seed))
                          for name, points in (("silhouette", vectors), ("dbcv", vectors[:, :3]))}
         scores.update(label_free_scores(clusters, counts, vector_scores, seed=seed, permutations=99))
+        # the length leakage the run caches by its vectors' key (StageExecutor.length_leakage), on the same vectors
+        scores["length_leakage_r2"] = length_leakage_r2(vectors, np.maximum(counts, 1), seed=0)
         seed_scores.append(scores)
         out.update({f"seed{seed}.{k}": v for k, v in scores.items()})
     evidence = configuration_evidence(seed_scores, clusterings, labels, resamples=200, seed=0)
@@ -55,6 +58,12 @@ def fixed_scores() -> dict[str, float]:
 GOLDEN = {  # recorded with this repository's code at SCORES_VERSION 3 (see the module docstring)
     "version": 3,
     "scores": {
+        "configuration.length_leakage_r2": -0.1465387583486767,
+        "configuration.length_leakage_r2_std": 0.0,
+        "configuration.length_leakage_r2_valid_seeds": 3.0,
+        "seed0.length_leakage_r2": -0.1465387583486767,
+        "seed1.length_leakage_r2": -0.1465387583486767,
+        "seed2.length_leakage_r2": -0.1465387583486767,
         "configuration.ami": 0.5863810171254434,
         "configuration.ami_ci_high": 0.6955874818739142,
         "configuration.ami_ci_low": 0.4323021284882793,

@@ -318,10 +318,10 @@ def sweep_estimate(planned: list[PlannedStage], cal: Calibration, workers: int =
             entry.seconds = sum(seconds[kind])
     if any(s.kind == "reduce" and s.settings["method"] == "umap" for s in planned):
         stages["reduce"].seconds += cal.umap["warmup"]  # the first UMAP fit of a process compiles its numba functions
+        stages["reduce"].notes.append("includes numba's first-fit compile")
     if any(s.kind == "graph" and s.settings["method"] == "nndescent" for s in planned):
         stages["graph"].seconds += cal.umap.get("warmup_nndescent", 0.0)  # and the first NN-descent, pynndescent's
         stages["graph"].notes.append("includes pynndescent's first-call compile")
-        stages["reduce"].notes.append("includes numba's first-fit compile")
     if any(s.kind == "encode" and (s.rates or cal.encode) is None for s in planned):
         stages["encode"].notes.append("family without a calibrated forward pass: not estimated")
     return SweepEstimate(stages=stages, baseline_rss_mb=cal.baseline_rss_mb, workers=workers)

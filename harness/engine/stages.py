@@ -294,7 +294,7 @@ class StageExecutor:
         self.work[f"{kind}_failed_on_cluster"] += 1
 
     def _computed(self, trial: Trial, kind: str, counter: str, inputs: Callable[[], tuple],
-                  compute: Callable[..., np.ndarray], stage=None) -> np.ndarray:
+                  compute: Callable[..., np.ndarray], stage=None, logged_as: Optional[str] = None) -> np.ndarray:
         """The stage's output; when computed, its inputs are fetched first so that only its own work is timed."""
         stage = stage or trial.stages[kind]
         if stage.key in self._refused:
@@ -305,7 +305,7 @@ class StageExecutor:
             array = compute(*arguments)
             seconds = time.perf_counter() - started
             self.work[counter] += 1
-            self._logged(kind, seconds)
+            self._logged(logged_as or kind, seconds)
             self._keep(kind, stage.key, array, {"settings": stage.settings, "seconds": seconds})
         return self._outputs[stage.key]
 
@@ -344,12 +344,14 @@ class StageExecutor:
         settings = map_settings(n_texts)
         graph = graph_stage(trial.stages["transform"].key, settings, n_texts)
         fit = make_stage("reduce", graph.key, {**settings.as_params(), "seed": MAP_SEED})
+        # Logged as "map" (not graph or reduce): the plan and its estimate count the sweep's own stages only.
         neighbours = self._computed(trial, "graph", "map_graphs", lambda: (self.transformed(trial),),
                                     lambda vectors: neighbour_graph(vectors, graph.settings["metric"],
                                                                     graph.settings["n_neighbors"],
-                                                                    graph.settings["method"]), stage=graph)
+                                                                    graph.settings["method"]), stage=graph, logged_as="map")
         return self._computed(trial, "reduce", "map_fits", lambda: (self.transformed(trial), neighbours),
-                              lambda vectors, found: reduced(vectors, settings, MAP_SEED, found), stage=fit)
+                              lambda vectors, found: reduced(vectors, settings, MAP_SEED, found), stage=fit,
+                              logged_as="map")
 
     def clustered(self, trial: Trial) -> np.ndarray:
         n_classes = self.corpora[trial.dataset].n_classes
@@ -394,15 +396,18 @@ class StageExecutor:
     def length_leakage(self, trial: Trial, kind: str = "transform", seed: int = 0) -> float:
         """Cross-validated R^2 of log length from the trial's own vectors: after its transform (the vectors that are
         reduced) or, with ``kind="pool"``, as pooled. Once per stage key, and cached like a stage (it depends on the
-        vectors and, through their chain, on the token counts; not on any clustering), so a rerun that changes only
-        clusterings reads it back."""
+        vectors and, through their chain, on the token counts, and on the folds, penalty and seed in its key; not on
+        any clustering), so a rerun that changes only clusterings reads it back. (On Dask, distributed_scores
+        computes it on the workers and does not use this cache.)"""
         from harness import __version__
         from harness.engine.plan import SCORES_VERSION
         from harness.metrics import length_leakage_r2
+        from harness.metrics._length import LEAKAGE_ALPHA, LEAKAGE_FOLDS
 
         vectors = self.transformed if kind == "transform" else self.pooled
         stage = make_stage("score", trial.own_stages[kind].key, {
-            "score": "length_leakage_r2", "seed": seed, "code": {"harness": __version__, "scores": SCORES_VERSION}})
+            "score": "length_leakage_r2", "seed": seed, "folds": LEAKAGE_FOLDS, "alpha": LEAKAGE_ALPHA,
+            "code": {"harness": __version__, "scores": SCORES_VERSION}})
         value = self._computed(trial, "score", "leakage_computations",
                                lambda: (vectors(trial, own=True), self.token_counts(trial)),
                                lambda points, counts: np.array([length_leakage_r2(points, np.maximum(counts, 1), seed=seed)]),

@@ -108,7 +108,13 @@ def length_eta2_pvalue(lengths: np.ndarray, groups: np.ndarray, *, permutations:
     return (1 + exceed) / (1 + permutations)
 
 
-def length_leakage_r2(vectors: np.ndarray, lengths: np.ndarray, *, folds: int = 5, seed: int = 0, alpha: float = 1.0) -> float:
+# The cross-validation of length_leakage_r2: folds and ridge penalty (they enter the cached figure's key).
+LEAKAGE_FOLDS = 5
+LEAKAGE_ALPHA = 1.0
+
+
+def length_leakage_r2(vectors: np.ndarray, lengths: np.ndarray, *, folds: int = LEAKAGE_FOLDS, seed: int = 0,
+                      alpha: float = LEAKAGE_ALPHA) -> float:
     """Cross-validated R^2 of a ridge regression predicting log length from the standardised vectors.
 
     How much length the vectors themselves encode, whatever the clustering. Each feature is
