@@ -53,7 +53,8 @@ STAGE_LIBRARIES: dict[str, tuple[str, ...]] = {
 # 2: bootstrap intervals count pairs of distinct texts (ARI) and re-centre AMI, NMI and V; DBCV is NaN on
 #    duplicate points instead of failing the trial.
 # 3: the silhouette is computed in float64 (float32 distances rounded differently with the BLAS threads).
-SCORES_VERSION = 3
+# 4: length_leakage_r2 chooses its ridge penalty by cross-validation on each training fold (RidgeCV).
+SCORES_VERSION = 4
 
 # Settings that cannot change any number a seed run logs, each with the reason. Every other field of the
 # typed settings (the Sweep and everything nested in it) enters the trial key: through the dataset's content

@@ -396,17 +396,17 @@ class StageExecutor:
     def length_leakage(self, trial: Trial, kind: str = "transform", seed: int = 0) -> float:
         """Cross-validated R^2 of log length from the trial's own vectors: after its transform (the vectors that are
         reduced) or, with ``kind="pool"``, as pooled. Once per stage key, and cached like a stage (it depends on the
-        vectors and, through their chain, on the token counts, and on the folds, penalty and seed in its key; not on
+        vectors and, through their chain, on the token counts, and on the folds, penalties and seed in its key; not on
         any clustering), so a rerun that changes only clusterings reads it back. (On Dask, distributed_scores
         computes it on the workers and does not use this cache.)"""
         from harness import __version__
         from harness.engine.plan import SCORES_VERSION
         from harness.metrics import length_leakage_r2
-        from harness.metrics._length import LEAKAGE_ALPHA, LEAKAGE_FOLDS
+        from harness.metrics._length import LEAKAGE_ALPHAS, LEAKAGE_FOLDS
 
         vectors = self.transformed if kind == "transform" else self.pooled
         stage = make_stage("score", trial.own_stages[kind].key, {
-            "score": "length_leakage_r2", "seed": seed, "folds": LEAKAGE_FOLDS, "alpha": LEAKAGE_ALPHA,
+            "score": "length_leakage_r2", "seed": seed, "folds": LEAKAGE_FOLDS, "alphas": list(LEAKAGE_ALPHAS),
             "code": {"harness": __version__, "scores": SCORES_VERSION}})
         value = self._computed(trial, "score", "leakage_computations",
                                lambda: (vectors(trial, own=True), self.token_counts(trial)),

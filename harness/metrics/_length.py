@@ -108,21 +108,25 @@ def length_eta2_pvalue(lengths: np.ndarray, groups: np.ndarray, *, permutations:
     return (1 + exceed) / (1 + permutations)
 
 
-# The cross-validation of length_leakage_r2: folds and ridge penalty (they enter the cached figure's key).
+# The cross-validation of length_leakage_r2: outer folds, and the ridge penalties the inner search chooses from
+# (they enter the cached figure's key).
 LEAKAGE_FOLDS = 5
-LEAKAGE_ALPHA = 1.0
+LEAKAGE_ALPHAS = tuple(float(a) for a in np.logspace(-2, 4, 13))
 
 
 def length_leakage_r2(vectors: np.ndarray, lengths: np.ndarray, *, folds: int = LEAKAGE_FOLDS, seed: int = 0,
-                      alpha: float = LEAKAGE_ALPHA) -> float:
+                      alphas: tuple[float, ...] = LEAKAGE_ALPHAS) -> float:
     """Cross-validated R^2 of a ridge regression predicting log length from the standardised vectors.
 
     How much length the vectors themselves encode, whatever the clustering. Each feature is
-    standardised (on the training folds) before the ridge, so that the penalty ``alpha`` weighs
-    the same at any scale of the vectors and R^2 does not depend on it. Folds are shuffled with
-    ``seed``; the score is the mean R^2 over folds.
+    standardised (on the training folds) before the ridge, so that the penalty weighs the same at any
+    scale of the vectors and R^2 does not depend on it. The penalty is chosen on each training fold
+    among ``alphas`` by scikit-learn's RidgeCV (efficient leave-one-out), so that vectors with more
+    dimensions than a fold has texts are not fitted to noise: with a fixed penalty of 1, 768-d vectors of
+    1,200 texts gave R^2 of -11 (measured on 20 Newsgroups), a figure about the fit, not the vectors.
+    Folds are shuffled with ``seed``; the score is the mean R^2 over the outer folds.
     """
-    from sklearn.linear_model import Ridge
+    from sklearn.linear_model import RidgeCV
     from sklearn.model_selection import KFold, cross_val_score
     from sklearn.pipeline import make_pipeline
     from sklearn.preprocessing import StandardScaler
@@ -132,5 +136,5 @@ def length_leakage_r2(vectors: np.ndarray, lengths: np.ndarray, *, folds: int = 
         raise ValueError(f"The 'vectors' parameter must have one row per length. Got {vectors.shape[0]} rows for {lengths.size} lengths instead.")
     target = np.log(check_positive(lengths, "lengths"))
     splitter = KFold(n_splits=folds, shuffle=True, random_state=seed)
-    model = make_pipeline(StandardScaler(), Ridge(alpha=alpha))
+    model = make_pipeline(StandardScaler(), RidgeCV(alphas=alphas))
     return float(cross_val_score(model, np.asarray(vectors, dtype=np.float64), target, cv=splitter, scoring="r2").mean())
