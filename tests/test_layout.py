@@ -26,6 +26,7 @@ TOP_GROUPS = {
     "_yaml_lines": "ground",
     "keys": "ground",
     "_crashpoints": "ground",
+    "_lazy": "ground",
     "plots": "ground",
     "cd_diagram": "ground",
     "metrics": "metrics",
