@@ -88,9 +88,13 @@ def main(argv: list[str] | None = None) -> int:
         ratio = f"{mine.seconds / got['seconds']:.2f}" if got["seconds"] > 0 and mine.seconds > 0 else "-"
         print(f"{kind:<10} {mine.count:>5} {mine.seconds:>8.1f} {got['seconds']:>8.1f} {ratio:>6} "
               f"{stage_peak_mb(estimate, kind):>8.0f} {got['peak_mb']:>8.0f}")
-    measured_stages = sum(s["seconds"] for s in run["stages"].values())
+    # Only the kinds the estimate covers; the rest of the stage log (cached scores, the winner's map) is not estimated.
+    measured_stages = sum(s["seconds"] for kind, s in run["stages"].items() if kind in STAGES)
     print(f"{'stages':<10} {'':>5} {estimate.total_seconds:>8.1f} {measured_stages:>8.1f} "
           f"{estimate.total_seconds / measured_stages:>6.2f} {estimate.peak_mb:>8.0f} {run['peak_mb']:>8.0f}")
+    others = {kind: s["seconds"] for kind, s in run["stages"].items() if kind not in STAGES}
+    if others:
+        print("logged but not estimated: " + ", ".join(f"{kind} {seconds:.1f} s" for kind, seconds in sorted(others.items())))
     print(f"whole run wall time (with scoring and MLflow, not estimated): {run['wall']:.1f} s")
     dominant = estimate.dominant
     got = run["stages"].get(dominant, {"seconds": 0.0})["seconds"]
