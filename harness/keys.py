@@ -51,3 +51,12 @@ def texts_digest(texts: list[str], labels: np.ndarray | None) -> str:
     if labels is not None:
         digest.update(array_digest(np.asarray(labels)).encode())
     return digest.hexdigest()[:KEY_LENGTH]
+
+
+def file_sha256(path) -> str:
+    """SHA-256 of a file's bytes, read in blocks (a cache entry or a mirror file may be large)."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 22), b""):
+            digest.update(block)
+    return digest.hexdigest()

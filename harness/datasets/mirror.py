@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import datetime as _dt
 import difflib
-import hashlib
 import json
 import os
 import uuid
@@ -25,6 +24,7 @@ import pandas as pd
 
 from harness.datasets.public import MIRROR_FILES, PUBLIC_ROUTES, SPLITS, RouteFailure
 from harness.errors import DataError
+from harness.keys import file_sha256
 
 MANIFEST = "manifest.json"
 COLUMNS = ("text", "label", "label_name", "split")
@@ -45,14 +45,6 @@ def mirror_frame(table: pd.DataFrame, source: str) -> pd.DataFrame:
     return frame
 
 
-def _sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with path.open("rb") as stream:
-        for block in iter(lambda: stream.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
-
-
 def manifest_entry(frame: pd.DataFrame, path: Path, route: str) -> dict:
     return {
         "file": path.name,
@@ -61,7 +53,7 @@ def manifest_entry(frame: pd.DataFrame, path: Path, route: str) -> dict:
         "rows_per_split": {s: int((frame.split == s).sum()) for s in SPLITS if (frame.split == s).any()},
         "classes": int(frame.label.nunique()),
         "bytes": path.stat().st_size,
-        "sha256": _sha256(path),
+        "sha256": file_sha256(path),
     }
 
 

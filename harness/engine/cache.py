@@ -13,7 +13,6 @@ A failed write warns and the computed result is still used.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import os
 import secrets
@@ -28,6 +27,7 @@ import numpy as np
 from filelock import FileLock
 
 from harness import __version__
+from harness.keys import file_sha256
 
 DATA_FILE = "data.npy"
 META_FILE = "meta.json"
@@ -45,14 +45,6 @@ class CacheEntry:
     folder: Path
     bytes: int
     last_used: float
-
-
-def _sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with path.open("rb") as handle:
-        for block in iter(lambda: handle.read(1 << 22), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def _atomic_write(target: Path, write) -> None:
@@ -90,7 +82,7 @@ class StageCache:
         except (OSError, ValueError):
             warnings.warn(f"cache entry {folder}: unreadable {META_FILE}; rebuilding it", CacheWarning, stacklevel=3)
             return None
-        if _sha256(data_path) != meta.get("sha256"):
+        if file_sha256(data_path) != meta.get("sha256"):
             warnings.warn(f"cache entry {folder}: checksum mismatch; rebuilding it", CacheWarning, stacklevel=3)
             return None
         return meta
@@ -125,7 +117,7 @@ class StageCache:
                 _atomic_write(folder / DATA_FILE, lambda handle: np.save(handle, array, allow_pickle=False))
                 meta = {
                     "key": key, "kind": kind, "shape": list(array.shape), "dtype": str(array.dtype),
-                    "sha256": _sha256(folder / DATA_FILE), "created": time.time(),
+                    "sha256": file_sha256(folder / DATA_FILE), "created": time.time(),
                     "producer": f"harness {__version__}", **info,
                 }
                 _atomic_write(folder / META_FILE, lambda handle: handle.write(json.dumps(meta, indent=1, default=str).encode()))

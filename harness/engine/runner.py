@@ -7,7 +7,6 @@ sweep goes on.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import tempfile
 import traceback
@@ -18,6 +17,7 @@ from typing import TYPE_CHECKING, Any, Callable, Optional
 import numpy as np
 
 from harness import __version__
+from harness.keys import file_sha256
 from harness._crashpoints import crash_point
 from harness.datasets import Corpus, dataset_name, loaded_corpus, needs_tokenizer
 from harness.embed.layers import layer_choice_fits, output_width
@@ -317,10 +317,6 @@ def dataset_cards(corpora: dict[str, Corpus], models: dict[str, ResolvedModel]) 
     else:
         count, measure = (lambda texts: np.array([len(tokens(t)) for t in texts])), "words"
     return {name: {**corpus_card(corpus, count), "length_tokenizer": measure} for name, corpus in corpora.items()}
-
-
-def _file_sha256(path: Path) -> str:
-    return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
 def run_trial(executor, trial: Trial, corpus: Corpus, evidence: EvidenceSettings, scored: Optional[dict] = None
@@ -663,7 +659,7 @@ def execute_sweep(
     parent = tracker.start_run(sweep.name, None, "sweep",
         {"n_trials": len(prepared.trials), "rank_by": sweep.rank_by or "default", **{f"grid.{k}": v for k, v in grid.items()},
          **{f"evidence.{k}": v for k, v in sweep.evidence.as_params().items()}},
-        {"harness.version": __version__, "harness.sweep_sha256": _file_sha256(prepared.path),
+        {"harness.version": __version__, "harness.sweep_sha256": file_sha256(prepared.path),
          "harness.sweep_path": str(prepared.path.resolve()), "harness.results_dir": str(results_dir.resolve()),
          "harness.cache_dir": str(cache_dir.resolve()) if cache_dir else "",
          "harness.question": sweep.question, "harness.reused_trials": str(len(prepared.trials) - len(pending)),
