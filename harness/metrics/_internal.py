@@ -77,14 +77,14 @@ def density_validity_undefined(vectors: np.ndarray, clusters: np.ndarray, *, max
 
 
 def density_validity(vectors: np.ndarray, clusters: np.ndarray, *, max_points: int = 5000, seed: int = 0) -> float:
-    """DBCV (the hdbscan package's validity index) on the space that was clustered, noise included.
+    """DBCV (the hdbscan package's validity index, computed by ``_dbcv``) on the space that was clustered, noise included.
 
     Sampled to at most ``max_points`` (seeded): the index needs all pairwise distances
     within clusters. NaN when fewer than 2 clusters are present, when a cluster has one point, when clustered
     points are identical (``density_validity_undefined`` says which), and when the hdbscan package's own check
     fails (an AssertionError in its spanning tree, seen on near-identical points).
     """
-    from hdbscan.validity import validity_index
+    from harness.metrics._dbcv import SpanningTreeAmbiguous, validity_index
 
     (clusters,) = check_same_length(clusters, names=("clusters",))
     if density_validity_undefined(vectors, clusters, max_points=max_points, seed=seed):
@@ -96,6 +96,6 @@ def density_validity(vectors: np.ndarray, clusters: np.ndarray, *, max_points: i
     try:
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             value = validity_index(np.asarray(vectors[rows], dtype=np.float64), contiguous)
-    except AssertionError:
+    except SpanningTreeAmbiguous:
         return float("nan")
     return float(value)
