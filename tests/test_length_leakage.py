@@ -106,3 +106,71 @@ evidence: {{resamples: 20, permutations: 19}}
     assert by_transform["remove_length"]["length_leakage_r2"] < pooled_r2 - 0.3  # the remedy shows its effect
     for metrics in by_transform.values():
         assert metrics["length_leakage_r2_pooled"] == pytest.approx(pooled_r2, abs=1e-6)
+
+
+def _ridgecv_pipeline_leakage(vectors, lengths, seed=0):
+    """The previous implementation, kept as a reference: scikit-learn's StandardScaler + RidgeCV (efficient
+    leave-one-out over the same penalties) scored by cross_val_score on the same shuffled folds."""
+    from sklearn.linear_model import RidgeCV
+    from sklearn.model_selection import KFold, cross_val_score
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import StandardScaler
+
+    from harness.metrics._length import LEAKAGE_ALPHAS, LEAKAGE_FOLDS
+
+    model = make_pipeline(StandardScaler(), RidgeCV(alphas=LEAKAGE_ALPHAS))
+    splitter = KFold(n_splits=LEAKAGE_FOLDS, shuffle=True, random_state=seed)
+    return float(cross_val_score(model, np.asarray(vectors, dtype=np.float64), np.log(lengths), cv=splitter,
+                                 scoring="r2").mean())
+
+
+def _design(shape: str, rng):
+    n, p = {"tall": (300, 20), "square": (120, 96), "wide": (60, 200), "very_wide": (40, 768)}[shape]
+    lengths = rng.integers(3, 300, n)
+    signal = (np.log(lengths) - np.log(lengths).mean())[:, None] * rng.normal(size=(1, p)) * rng.choice([0.0, 0.1, 1.0])
+    return signal + rng.normal(size=(n, p)), lengths
+
+
+@pytest.mark.parametrize("shape", ["tall", "square", "wide", "very_wide"])
+@pytest.mark.parametrize("variant", ["plain", "constant_column", "collinear", "float32_scaled"])
+@pytest.mark.parametrize("seed", [0, 1])
+def test_leakage_equals_the_ridgecv_pipeline_on_every_shape(shape, variant, seed):
+    # Reference: scikit-learn's RidgeCV (the previous implementation). Every shape where a training fold has more
+    # texts than dimensions and fewer (the two branches of _ridge_loo), a constant feature (StandardScaler leaves
+    # its scale at 1), exactly collinear features (a zero eigenvalue), float32 vectors at a tiny scale.
+    rng = np.random.default_rng(seed)
+    vectors, lengths = _design(shape, rng)
+    if variant == "constant_column":
+        vectors[:, 3] = 7.0
+    elif variant == "collinear":
+        vectors[:, 1] = 2 * vectors[:, 0] - vectors[:, 2]
+    elif variant == "float32_scaled":
+        vectors = (vectors * 1e-3).astype(np.float32)
+    assert length_leakage_r2(vectors, lengths, seed=seed) == pytest.approx(
+        _ridgecv_pipeline_leakage(vectors, lengths, seed=seed), abs=1e-9)
+
+
+@pytest.mark.parametrize("n,p", [(40, 8), (30, 60)])
+def test_the_chosen_penalty_and_fit_equal_brute_force_leave_one_out(n, p):
+    # Reference: leave-one-out written out, one plain scikit-learn Ridge refit per left-out text, for a design with
+    # fewer dimensions than texts and one with more (both branches); then the full fit at the chosen penalty.
+    from sklearn.linear_model import Ridge
+
+    from harness.metrics._length import LEAKAGE_ALPHAS
+    from harness.metrics._ridge_loo import ridge_loo_fit
+
+    rng = np.random.default_rng(n + p)
+    x = rng.normal(size=(n, p))
+    y = x[:, 0] * 0.5 + rng.normal(size=n)
+
+    def loo_error(alpha: float) -> float:
+        keep = ~np.eye(n, dtype=bool)
+        return float(np.mean([(Ridge(alpha=alpha).fit(x[keep[i]], y[keep[i]]).predict(x[i:i + 1])[0] - y[i]) ** 2
+                              for i in range(n)]))
+
+    best = min(LEAKAGE_ALPHAS, key=loo_error)
+    coefficients, intercept, alpha = ridge_loo_fit(x, y, np.asarray(LEAKAGE_ALPHAS))
+    assert alpha == best
+    reference = Ridge(alpha=best).fit(x, y)
+    np.testing.assert_allclose(coefficients, reference.coef_, atol=1e-9)
+    assert intercept == pytest.approx(reference.intercept_, abs=1e-9)
