@@ -14,10 +14,19 @@ from harness.embed.pooling import POOLINGS
 Variant = tuple[LayerChoice, str]  # (layer selection, pooling)
 
 
+def token_ids(encoder: LoadedEncoder, texts: list[str]) -> list[list[int]]:
+    """Each text's token ids under the model's tokenizer, special tokens excluded, not truncated (one call: a fast
+    tokenizer spreads it over the cores)."""
+    return encoder.tokenizer(texts, add_special_tokens=False, truncation=False, verbose=False)["input_ids"]
+
+
+def counts_of(ids: list[list[int]]) -> np.ndarray:
+    return np.fromiter((len(text_ids) for text_ids in ids), dtype=np.int64, count=len(ids))
+
+
 def token_counts(encoder: LoadedEncoder, texts: list[str]) -> np.ndarray:
     """Tokens per text under the model's tokenizer, special tokens excluded, not truncated."""
-    encoded = encoder.tokenizer(texts, add_special_tokens=False, truncation=False, verbose=False)["input_ids"]
-    return np.fromiter((len(ids) for ids in encoded), dtype=np.int64, count=len(texts))
+    return counts_of(token_ids(encoder, texts))
 
 
 def length_sorted_batches(counts: np.ndarray, batch_size: int) -> list[np.ndarray]:
@@ -26,10 +35,22 @@ def length_sorted_batches(counts: np.ndarray, batch_size: int) -> list[np.ndarra
     return [order[start : start + batch_size] for start in range(0, order.size, batch_size)]
 
 
-def _windows(encoder: LoadedEncoder, texts: list[str]) -> tuple[list[list[int]], np.ndarray]:
+def _room(encoder: LoadedEncoder) -> int:
+    """How many of a text's own tokens fit the model with its special tokens."""
+    return encoder.max_length - encoder.tokenizer.num_special_tokens_to_add(pair=False)
+
+
+def _truncated(encoder: LoadedEncoder, ids: list[list[int]]) -> list[list[int]]:
+    """Each text's ids cut to fit the model, from the side the tokenizer cuts (its ``truncation_side``)."""
+    room = _room(encoder)
+    if getattr(encoder.tokenizer, "truncation_side", "right") == "left":
+        return [text_ids[-room:] if len(text_ids) > room else text_ids for text_ids in ids]
+    return [text_ids[:room] for text_ids in ids]
+
+
+def _windows(encoder: LoadedEncoder, ids: list[list[int]]) -> tuple[list[list[int]], np.ndarray]:
     """Token ids of every window of every text (windows fit the model with its special tokens), and each window's text."""
-    room = encoder.max_length - encoder.tokenizer.num_special_tokens_to_add(pair=False)
-    ids = encoder.tokenizer(texts, add_special_tokens=False, truncation=False, verbose=False)["input_ids"]
+    room = _room(encoder)
     pieces, owners = [], []
     for index, text_ids in enumerate(ids):
         for start in range(0, max(len(text_ids), 1), room):
@@ -48,17 +69,26 @@ def special_wrapping(tokenizer) -> tuple[list[int], list[int]]:
     raise ValueError("cannot tell where this tokenizer puts its special tokens")
 
 
-def _batch_inputs(encoder: LoadedEncoder, texts: list[str], pieces: Optional[list[list[int]]], batch: np.ndarray):
+def _tokenized_batch(encoder: LoadedEncoder, texts: list[str], batch: np.ndarray):
+    """A batch as the tokenizer itself pads and truncates it."""
+    return encoder.tokenizer([texts[i] for i in batch], padding=True, truncation=True, max_length=encoder.max_length,
+                             return_tensors="pt")
+
+
+def _batch_inputs(encoder: LoadedEncoder, pieces: list[list[int]], batch: np.ndarray):
+    """A batch built from token ids already cut to fit: the special tokens around each, then the tokenizer's padding."""
     tokenizer = encoder.tokenizer
-    if pieces is None:
-        return tokenizer([texts[i] for i in batch], padding=True, truncation=True,
-                         max_length=encoder.max_length, return_tensors="pt")
     before, after = special_wrapping(tokenizer)
     features = {"input_ids": [before + pieces[i] + after for i in batch]}
     features["attention_mask"] = [[1] * len(ids) for ids in features["input_ids"]]
     if "token_type_ids" in tokenizer.model_input_names:
         features["token_type_ids"] = [[0] * len(ids) for ids in features["input_ids"]]
     return tokenizer.pad(features, return_tensors="pt")
+
+
+def _same_inputs(left, right) -> bool:
+    return left.keys() == right.keys() and all(left[name].shape == right[name].shape and bool((left[name] == right[name]).all())
+                                               for name in left)
 
 
 def pooled_variants(
@@ -68,6 +98,7 @@ def pooled_variants(
     *,
     batch_size: int,
     counts: Optional[np.ndarray] = None,
+    ids: Optional[list[list[int]]] = None,
     on_batch: Optional[Callable[[int], None]] = None,
     long_texts: str = "truncate",
 ) -> dict[Variant, np.ndarray]:
@@ -75,34 +106,45 @@ def pooled_variants(
 
     ``long_texts="truncate"`` keeps the first tokens that fit the model; ``"chunk_mean"``
     splits longer texts into windows that fit, pools each window, and averages the
-    window vectors of each text.
+    window vectors of each text. The texts are tokenised once (``ids``, from ``token_ids``, where the caller has
+    them); batches are built from those ids. Under truncate, the first batch is also tokenised by the tokenizer
+    itself, and where the two differ (a tokenizer whose ids depend on the special tokens) every batch is.
     """
     import torch
 
     variants = list(dict.fromkeys(variants))
+    ids = token_ids(encoder, texts) if ids is None else ids
     if long_texts == "chunk_mean":
-        pieces, owners = _windows(encoder, texts)
+        pieces, owners = _windows(encoder, ids)
         piece_lengths = np.array([len(p) for p in pieces])
     else:
-        pieces, owners = None, np.arange(len(texts))
-        piece_lengths = token_counts(encoder, texts) if counts is None else counts
+        pieces, owners = _truncated(encoder, ids), np.arange(len(texts))
+        piece_lengths = counts_of(ids) if counts is None else counts
+    by_tokenizer = False
     outputs: dict[Variant, np.ndarray] = {}
     with torch.inference_mode():
-        for batch in length_sorted_batches(piece_lengths, batch_size):
-            inputs = _batch_inputs(encoder, texts, pieces, batch)
+        for number, batch in enumerate(length_sorted_batches(piece_lengths, batch_size)):
+            inputs = _tokenized_batch(encoder, texts, batch) if by_tokenizer else _batch_inputs(encoder, pieces, batch)
+            if number == 0 and long_texts != "chunk_mean":
+                reference = _tokenized_batch(encoder, texts, batch)
+                by_tokenizer = not _same_inputs(dict(inputs), dict(reference))
+                inputs = reference
             if encoder.device != "cpu":
                 inputs = {name: tensor.to(encoder.device) for name, tensor in inputs.items()}
             hidden_states = encoder.transformer(**inputs, output_hidden_states=True).hidden_states
             mask = inputs["attention_mask"]
+            selected: dict = {}  # each layer choice's tensor once per batch, for every pooling of it
             for layer_choice, pooling in variants:
-                pooled = POOLINGS[pooling](selected_hidden(hidden_states, layer_choice), mask).float().cpu().numpy()
+                if layer_choice not in selected:
+                    selected[layer_choice] = selected_hidden(hidden_states, layer_choice)
+                pooled = POOLINGS[pooling](selected[layer_choice], mask).float().cpu().numpy()
                 if (layer_choice, pooling) not in outputs:
                     outputs[(layer_choice, pooling)] = np.empty((owners.size, pooled.shape[1]), dtype=np.float32)
                 outputs[(layer_choice, pooling)][batch] = pooled
             if on_batch is not None:
-                on_batch(int(np.unique(owners[batch]).size) if pieces is not None else len(batch))
+                on_batch(int(np.unique(owners[batch]).size) if long_texts == "chunk_mean" else len(batch))
             crash_point("encode_batch")
-    if pieces is None:
+    if long_texts != "chunk_mean":
         return outputs
     windows_per_text = np.bincount(owners, minlength=len(texts)).astype(np.float32)[:, None]
     averaged = {}

@@ -88,15 +88,16 @@ def encoded_chunk(model, max_length: Optional[int], trust_remote_code: bool, tex
     """One task: token counts and every pooled variant of a chunk of texts (length-sorted within the chunk)."""
     import torch
 
-    from harness.embed.encode import pooled_variants, token_counts
+    from harness.embed.encode import counts_of, pooled_variants, token_ids
 
     torch.set_num_threads(torch_threads(slots_per_host))
     _WORKER_WORK["just_loaded"] = 0
     encoder = _worker_encoder(model, max_length, trust_remote_code)
     loaded = _WORKER_WORK["just_loaded"]  # whether this chunk paid for loading the model on this worker
     started = time.perf_counter()
-    counts = token_counts(encoder, texts)
-    pooled = pooled_variants(encoder, texts, variants, batch_size=batch_size, counts=counts, long_texts=long_texts)
+    ids = token_ids(encoder, texts)
+    pooled = pooled_variants(encoder, texts, variants, batch_size=batch_size, counts=counts_of(ids), ids=ids,
+                             long_texts=long_texts)
     _WORKER_WORK["chunks"] += 1
     crash_point("encode_chunk")  # after the work, before the result leaves: the worst moment to lose a worker
     return {"arrays": [pooled[tuple(v)] for v in variants], "seconds": time.perf_counter() - started,

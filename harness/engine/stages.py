@@ -19,7 +19,7 @@ from typing import Any, Callable, Optional
 import numpy as np
 
 from harness.datasets import Corpus
-from harness.embed.encode import long_text_figures, long_text_info, pooled_variants, token_counts
+from harness.embed.encode import counts_of, long_text_figures, long_text_info, pooled_variants, token_ids
 from harness.embed.models import LoadedEncoder, loaded_encoder
 from harness.engine.cache import StageCache
 from harness.engine.plan import ROW_INDEPENDENT_BACKENDS, Trial, make_stage, pool_stage
@@ -109,10 +109,11 @@ class StageExecutor:
             return
         encoder = self._encoder(trial)
         started = time.perf_counter()
+        ids = token_ids(encoder, corpus.texts)  # once, for the counts and the batches
         if self._held("encode", encode.key):  # counted before: only pooled variants are missing
             counts = self._outputs[encode.key]
         else:
-            counts = token_counts(encoder, corpus.texts)
+            counts = counts_of(ids)
             self._keep("encode", encode.key, counts, {
                 "settings": encode.settings, **long_text_info(counts, encoder, trial.model.long_texts),
                 "seconds": time.perf_counter() - started,
@@ -124,7 +125,7 @@ class StageExecutor:
             on_batch, done = self._encode_progress(corpus.n_texts, f"encode {trial.dataset} / {trial.model.name}")
         try:
             variants = pooled_variants(encoder, corpus.texts, missing, batch_size=trial.model.batch_size,
-                                       counts=counts, on_batch=on_batch, long_texts=trial.model.long_texts)
+                                       counts=counts, ids=ids, on_batch=on_batch, long_texts=trial.model.long_texts)
         finally:
             done()
         self.work["forward_passes"] += 1
