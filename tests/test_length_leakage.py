@@ -106,6 +106,29 @@ evidence: {{resamples: 20, permutations: 19}}
     assert by_transform["remove_length"]["length_leakage_r2"] < pooled_r2 - 0.3  # the remedy shows its effect
     for metrics in by_transform.values():
         assert metrics["length_leakage_r2_pooled"] == pytest.approx(pooled_r2, abs=1e-6)
+    # An empty chain (transform none, normalize none) hands the reducer the pooled array itself, so its figure is
+    # the pooled one, computed once: the pooled vectors and the remove_length vectors, 2 computations, not 3.
+    assert by_transform["none"]["length_leakage_r2"] == by_transform["none"]["length_leakage_r2_pooled"]
+    assert result.work["leakage_computations"] == 2
+
+
+def test_only_the_empty_chain_hands_the_reducer_the_pooled_array_itself():
+    # The rule behind computing the leakage of an empty chain once: for every transform step the grid offers and
+    # every normalisation, the chain is empty exactly for (none, none), and then transformed() returns its input.
+    from harness.engine.plan import effective_chain
+    from harness.geometry.transforms import NORMALIZATIONS, TRANSFORMS, transformed
+    from harness.sweep import GridSettings
+
+    vectors, counts = VECTORS.astype(np.float32), LENGTHS
+    steps_with_settings = {"whiten": {"k": 8}, "all_but_the_top": {"d": 2}}
+    options = ["none", *({"method": method, **steps_with_settings.get(method, {})} for method in TRANSFORMS)]
+    for option in options:
+        chain = GridSettings.model_validate({"pooling": ["mean"], "transform": [option],
+                                             "cluster": [{"method": "kmeans"}]}).transform[0]
+        for normalize in NORMALIZATIONS:
+            steps = effective_chain(chain, normalize)
+            assert (not steps) == (option == "none" and normalize == "none")
+            assert (transformed(vectors, counts, steps) is vectors) == (not steps)
 
 
 def _ridgecv_pipeline_leakage(vectors, lengths, seed=0):

@@ -292,3 +292,28 @@ evidence: {resamples: 20, permutations: 19}
     assert "identical points" in trial.data.tags["harness.nan_reason.dbcv"]
     for name in ("ari", "ami", "nmi", "v_measure", "silhouette", "cluster_size_entropy", "length_eta2_clusters"):
         assert math.isfinite(metrics[name]), name
+
+
+SILHOUETTE_CASES = [  # (points, clusters, width, noise share, max_points): two clusters, many, singletons, sampled
+    (200, 2, 8, 0.0, 5000), (600, 6, 32, 0.2, 5000), (600, 40, 16, 0.1, 5000), (150, 75, 4, 0.0, 5000),
+    (900, 5, 384, 0.3, 300), (400, 3, 2, 0.0, 5000),
+]
+
+
+@pytest.mark.parametrize("n,k,width,noise,max_points", SILHOUETTE_CASES)
+@pytest.mark.parametrize("held", [False, True])
+def test_silhouette_equals_scikit_learn_on_every_case(n, k, width, noise, max_points, held):
+    # Reference: sklearn.metrics.silhouette_score(metric="cosine") on the same clustered (and sampled) points, in
+    # float64. Both ways of computing it: the points' own distances, and the block taken from the distances of all
+    # points that the executor keeps for several labellings (harness.engine.stages.DISTANCES_KEPT_UP_TO).
+    from harness.metrics._internal import _clustered_sample, cosine_distances, silhouette_cosine
+
+    rng = np.random.default_rng(n + k)
+    vectors = (rng.normal(size=(n, width)) + rng.integers(0, 3, (n, 1))).astype(np.float32)
+    clusters = rng.integers(0, k, n)
+    clusters[rng.random(n) < noise] = -1
+    rows = _clustered_sample(clusters, max_points, 7)
+    reference = skm.silhouette_score(vectors[rows].astype(np.float64), clusters[rows], metric="cosine")
+    found = silhouette_cosine(vectors, clusters, max_points=max_points, seed=7,
+                              distances=cosine_distances(vectors) if held else None)
+    assert found == pytest.approx(reference, rel=1e-12, abs=1e-15)

@@ -30,6 +30,9 @@ from harness.keys import array_digest, settings_key
 from harness.sweep import TRANSFORMER_FAMILIES
 
 BatchCallback = Callable[[int], None]
+# Up to this many texts, the cosine distances of a set of pooled vectors are kept (8 bytes each: 128 MB at 4,000)
+# for every silhouette of a labelling of them; above, each silhouette computes those of its own points.
+DISTANCES_KEPT_UP_TO = 4000
 
 
 class StageExecutor:
@@ -51,6 +54,7 @@ class StageExecutor:
         self._encode_progress = encode_progress
         self._derived: dict[tuple, Any] = {}
         self._refused: dict[str, BaseException] = {}  # stage key -> the error a cluster worker raised computing it
+        self._distances: tuple[str, np.ndarray] | None = None  # the last pooled vectors' cosine distances, by stage key
         for trial in trials:  # the pooling the chain is computed from, and the trial's own (one forward pass serves both)
             for pool in (trial.stages["pool"], trial.own_stages["pool"]):
                 self._variants[trial.stages["encode"].key].add((trial.layers, pool.settings["pooling"]))
@@ -378,10 +382,26 @@ class StageExecutor:
             "sample_seed": trial.seed if subsampled else None,
             "code": {"harness": __version__, "vector_scores": VECTOR_SCORES_VERSION, "scores": SCORES_VERSION}})
         compute = VECTOR_SCORES[name]
+        if name == "silhouette" and clusters.size <= DISTANCES_KEPT_UP_TO:
+            def compute(points, clusters, *, max_points, seed):  # noqa: F811 - the same score from held distances
+                from harness.metrics._internal import silhouette_cosine
+
+                return silhouette_cosine(points, clusters, max_points=max_points, seed=seed,
+                                         distances=self._cosine_distances(vectors_stage.key, points))
         value = self._computed(trial, "score", f"{name}_computations", lambda: (vectors(),),
                                lambda points: np.array([compute(points, clusters, max_points=max_points, seed=trial.seed)]),
                                stage=stage)
         return float(value[0])
+
+    def _cosine_distances(self, key: str, points: np.ndarray) -> np.ndarray:
+        """All cosine distances of one set of pooled vectors, kept for the next labellings of the same vectors (the
+        trials of a configuration, and the configurations sharing a pooling, follow each other)."""
+        from harness.metrics._internal import cosine_distances
+
+        if self._distances is None or self._distances[0] != key:
+            self._distances = None  # release the former matrix before computing the next
+            self._distances = (key, cosine_distances(points))
+        return self._distances[1]
 
     def _memo(self, key: tuple, compute: Callable[[], Any]) -> Any:
         if key not in self._derived:
@@ -405,6 +425,8 @@ class StageExecutor:
         from harness.metrics import length_leakage_r2
         from harness.metrics._length import LEAKAGE_ALPHAS, LEAKAGE_FOLDS
 
+        if kind == "transform" and not trial.steps:
+            kind = "pool"  # an empty chain hands the reducer the pooled vectors themselves: the same figure
         vectors = self.transformed if kind == "transform" else self.pooled
         stage = make_stage("score", trial.own_stages[kind].key, {
             "score": "length_leakage_r2", "seed": seed, "folds": LEAKAGE_FOLDS, "alphas": list(LEAKAGE_ALPHAS),

@@ -26,20 +26,49 @@ def _clustered_sample(clusters: np.ndarray, max_points: int, seed: int) -> np.nd
     return kept
 
 
-def silhouette_cosine(vectors: np.ndarray, clusters: np.ndarray, *, max_points: int = 5000, seed: int = 0) -> float:
+def cosine_distances(vectors: np.ndarray) -> np.ndarray:
+    """All pairwise cosine distances of ``vectors`` in float64 (scikit-learn's pairwise_distances).
+
+    In float64: float32 distances round differently with the BLAS threads (a Dask worker has one), which moved a
+    silhouette near 0 by 5e-4 of itself between a worker and this process.
+    """
+    from sklearn.metrics import pairwise_distances
+
+    return pairwise_distances(np.asarray(vectors, dtype=np.float64), metric="cosine")
+
+
+def silhouette_from_distances(distances: np.ndarray, labels: np.ndarray) -> float:
+    """Mean silhouette (Rousseeuw 1987) from a square distance matrix, every point's distances to each cluster
+    summed by one matrix product. As scikit-learn's silhouette_samples: a point alone in its cluster scores 0."""
+    _, codes = np.unique(labels, return_inverse=True)
+    sizes = np.bincount(codes).astype(np.float64)
+    points = np.arange(codes.size)
+    membership = np.zeros((codes.size, sizes.size))
+    membership[points, codes] = 1.0
+    totals = distances @ membership  # (points, clusters): each point's summed distance to each cluster
+    with np.errstate(divide="ignore", invalid="ignore"):
+        own = totals[points, codes] / (sizes[codes] - 1)
+        means = totals / sizes
+        means[points, codes] = np.inf
+        nearest = means.min(axis=1)
+        samples = (nearest - own) / np.maximum(own, nearest)
+    return float(np.nan_to_num(samples).mean())
+
+
+def silhouette_cosine(vectors: np.ndarray, clusters: np.ndarray, *, max_points: int = 5000, seed: int = 0,
+                      distances: np.ndarray | None = None) -> float:
     """Mean silhouette with cosine distance, on clustered points (noise left out), sampled to at most ``max_points``.
 
+    ``distances``: the cosine distances of all of ``vectors`` (``cosine_distances``), where the caller holds them
+    for several labellings of the same vectors; the clustered points' block is taken from it.
     NaN when fewer than 2 clusters remain.
     """
-    from sklearn.metrics import silhouette_score
-
     (clusters,) = check_same_length(clusters, names=("clusters",))
     rows = _clustered_sample(clusters, max_points, seed)
     if np.unique(clusters[rows]).size < 2 or np.unique(clusters[rows]).size >= rows.size:
         return float("nan")
-    # In float64: float32 distances round differently with the BLAS threads (a Dask worker has one), which moved
-    # a silhouette near 0 by 5e-4 of itself between a worker and this process.
-    return float(silhouette_score(np.asarray(vectors[rows], dtype=np.float64), clusters[rows], metric="cosine"))
+    block = cosine_distances(vectors[rows]) if distances is None else distances[np.ix_(rows, rows)]
+    return silhouette_from_distances(block, clusters[rows])
 
 
 def _dbcv_sample(clusters: np.ndarray, max_points: int, seed: int) -> np.ndarray:
