@@ -317,3 +317,45 @@ def test_silhouette_equals_scikit_learn_on_every_case(n, k, width, noise, max_po
     found = silhouette_cosine(vectors, clusters, max_points=max_points, seed=7,
                               distances=cosine_distances(vectors) if held else None)
     assert found == pytest.approx(reference, rel=1e-12, abs=1e-15)
+
+
+def _pvalue_drawing_each_time(lengths, groups, permutations, seed):
+    """length_eta2_pvalue as it was before shuffles were kept between calls: drawn anew in each call."""
+    log_len = np.log(np.asarray(lengths, dtype=float))
+    _, codes = np.unique(groups, return_inverse=True)
+    sizes = np.bincount(codes).astype(float)
+    centred = log_len - log_len.mean()
+    membership = np.zeros((codes.size, sizes.size))
+    membership[np.arange(codes.size), codes] = 1.0
+    between = lambda values: ((values @ membership) ** 2 / sizes).sum(axis=1)  # noqa: E731
+    observed = between(centred[None, :])[0]
+    rng, exceed, done = np.random.default_rng(seed), 0, 0
+    while done < permutations:
+        chunk = min(256, permutations - done)
+        shuffled = np.stack([rng.permutation(centred) for _ in range(chunk)])
+        exceed += int((between(shuffled) >= observed - 1e-12 * max(abs(observed), 1.0)).sum())
+        done += chunk
+    return (1 + exceed) / (1 + permutations)
+
+
+def test_kept_shuffles_give_the_same_pvalues_as_shuffles_drawn_each_time():
+    # The shuffles of a corpus's lengths depend on the lengths, the seed and the count only, so every clustering of
+    # the corpus with that seed reuses them. Checked against drawing them in each call, over seeds, counts that are
+    # and are not multiples of the chunk, groupings with and without noise and strongly length-tied ones, and
+    # calls interleaved so that kept sets are reused, replaced and evicted.
+    from harness.metrics import _length, length_eta2_pvalue
+
+    rng = np.random.default_rng(5)
+    corpora = [rng.integers(1, 300, n) for n in (40, 500, 1200)]
+    calls = 0
+    for round_ in range(2):
+        for lengths in corpora:
+            for seed in (0, 1, 2):
+                for permutations in (1, 99, 256, 999):
+                    for groups in (rng.integers(-1, 4, lengths.size), np.argsort(np.argsort(lengths)) * 5 // lengths.size):
+                        assert length_eta2_pvalue(lengths, groups, permutations=permutations, seed=seed) == \
+                            _pvalue_drawing_each_time(lengths, groups, permutations, seed)
+                        calls += 1
+    assert calls == 2 * 3 * 3 * 4 * 2
+    assert any(key[1] == 999 and key[2] == 1200 for key in _length._kept_shuffles)  # kept for the next grouping
+    assert sum(k[1] * k[2] for k in _length._kept_shuffles) <= _length._SHUFFLES_KEPT_UP_TO

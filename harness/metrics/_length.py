@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import hashlib
+
 import numpy as np
 import pandas as pd
 
@@ -97,15 +99,34 @@ def length_eta2_pvalue(lengths: np.ndarray, groups: np.ndarray, *, permutations:
         return ((values @ membership) ** 2 / sizes).sum(axis=1)
 
     observed = between(centred[None, :])[0]
-    rng = np.random.default_rng(seed)
-    exceed, done = 0, 0
     tolerance = 1e-12 * max(abs(observed), 1.0)  # ties at floating-point level count as exceeding
+    exceed = sum(int((between(shuffled) >= observed - tolerance).sum())
+                 for shuffled in _shuffled_chunks(centred, permutations, seed))
+    return (1 + exceed) / (1 + permutations)
+
+
+# The shuffles of a set of lengths, kept for the next grouping with the same seed (every clustering of a corpus
+# with that seed draws the same ones): the newest sets, up to this many values in all (8 bytes each, 128 MB).
+_SHUFFLES_KEPT_UP_TO = 16_000_000
+_kept_shuffles: dict[tuple, list[np.ndarray]] = {}
+
+
+def _shuffled_chunks(centred: np.ndarray, permutations: int, seed: int) -> list[np.ndarray]:
+    """``permutations`` shuffles of ``centred`` drawn with ``seed``, in chunks of 256 rows."""
+    key = (seed, permutations, centred.size, hashlib.sha256(centred.tobytes()).hexdigest())
+    if key in _kept_shuffles:
+        return _kept_shuffles[key]
+    rng = np.random.default_rng(seed)
+    chunks, done = [], 0
     while done < permutations:
         chunk = min(256, permutations - done)
-        shuffled = np.stack([rng.permutation(centred) for _ in range(chunk)])
-        exceed += int((between(shuffled) >= observed - tolerance).sum())
+        chunks.append(np.stack([rng.permutation(centred) for _ in range(chunk)]))
         done += chunk
-    return (1 + exceed) / (1 + permutations)
+    if permutations * centred.size <= _SHUFFLES_KEPT_UP_TO:
+        _kept_shuffles[key] = chunks
+        while sum(k[1] * k[2] for k in _kept_shuffles) > _SHUFFLES_KEPT_UP_TO:
+            del _kept_shuffles[next(iter(_kept_shuffles))]  # the oldest set first
+    return chunks
 
 
 # The cross-validation of length_leakage_r2: outer folds, and the ridge penalties the inner search chooses from
