@@ -305,7 +305,7 @@ SILHOUETTE_CASES = [  # (points, clusters, width, noise share, max_points): two 
 def test_silhouette_equals_scikit_learn_on_every_case(n, k, width, noise, max_points, held):
     # Reference: sklearn.metrics.silhouette_score(metric="cosine") on the same clustered (and sampled) points, in
     # float64. Both ways of computing it: the points' own distances, and the block taken from the distances of all
-    # points that the executor keeps for several labellings (harness.engine.stages.DISTANCES_KEPT_UP_TO).
+    # points that the executor keeps for several labellings (harness.metrics._internal.DISTANCES_KEPT_UP_TO).
     from harness.metrics._internal import _clustered_sample, cosine_distances, silhouette_cosine
 
     rng = np.random.default_rng(n + k)
@@ -338,24 +338,76 @@ def _pvalue_drawing_each_time(lengths, groups, permutations, seed):
     return (1 + exceed) / (1 + permutations)
 
 
-def test_kept_shuffles_give_the_same_pvalues_as_shuffles_drawn_each_time():
+@pytest.mark.parametrize("limit", [16_000_000, 600_000])
+def test_kept_shuffles_give_the_same_pvalues_as_shuffles_drawn_each_time(limit, monkeypatch):
     # The shuffles of a corpus's lengths depend on the lengths, the seed and the count only, so every clustering of
     # the corpus with that seed reuses them. Checked against drawing them in each call, over seeds, counts that are
-    # and are not multiples of the chunk, groupings with and without noise and strongly length-tied ones, and
-    # calls interleaved so that kept sets are reused, replaced and evicted.
+    # and are not multiples of the chunk, groupings with and without noise and strongly length-tied ones, calls
+    # interleaved; with the default bound nothing is evicted, with a small one sets are evicted oldest first and
+    # sets larger than the bound are never kept.
     from harness.metrics import _length, length_eta2_pvalue
 
+    monkeypatch.setattr(_length, "_SHUFFLES_KEPT_UP_TO", limit)
+    monkeypatch.setattr(_length, "_kept_shuffles", {})
     rng = np.random.default_rng(5)
     corpora = [rng.integers(1, 300, n) for n in (40, 500, 1200)]
-    calls = 0
+    evicted, kept_newest, too_big = 0, 0, 0
     for round_ in range(2):
         for lengths in corpora:
             for seed in (0, 1, 2):
                 for permutations in (1, 99, 256, 999):
                     for groups in (rng.integers(-1, 4, lengths.size), np.argsort(np.argsort(lengths)) * 5 // lengths.size):
+                        before = list(_length._kept_shuffles)
                         assert length_eta2_pvalue(lengths, groups, permutations=permutations, seed=seed) == \
                             _pvalue_drawing_each_time(lengths, groups, permutations, seed)
-                        calls += 1
-    assert calls == 2 * 3 * 3 * 4 * 2
-    assert any(key[1] == 999 and key[2] == 1200 for key in _length._kept_shuffles)  # kept for the next grouping
-    assert sum(k[1] * k[2] for k in _length._kept_shuffles) <= _length._SHUFFLES_KEPT_UP_TO
+                        after = list(_length._kept_shuffles)
+                        assert sum(k[1] * k[2] for k in after) <= limit
+                        gone = [k for k in before if k not in after]
+                        assert gone == before[:len(gone)]  # the oldest first
+                        evicted += len(gone)
+                        if permutations * lengths.size <= limit:
+                            kept_newest += any(k[:3] == (seed, permutations, lengths.size) for k in after)
+                        else:
+                            too_big += 1
+                            assert not any(k[:3] == (seed, permutations, lengths.size) for k in after)
+    assert kept_newest == sum(2 * 3 * 2 for p in (1, 99, 256, 999) for n in (40, 500, 1200) if p * n <= limit)
+    assert (evicted > 0) == (limit < 16_000_000) and (too_big > 0) == (limit < 16_000_000)
+
+
+def test_kept_shuffles_are_shared_safely_between_threads(monkeypatch):
+    # A Dask worker may score on several threads: with a bound small enough to evict at almost every call and
+    # threads switching as often as the interpreter allows, eight threads drawing shuffles at once raise nothing
+    # (without the lock: "dictionary changed size during iteration" and KeyErrors, seen), and every p-value equals
+    # the one drawn anew.
+    import sys
+    import threading
+
+    from harness.metrics import _length, length_eta2_pvalue
+
+    monkeypatch.setattr(_length, "_SHUFFLES_KEPT_UP_TO", 2000)
+    monkeypatch.setattr(_length, "_kept_shuffles", {})
+    errors, wrong = [], []
+
+    def work(thread: int) -> None:
+        rng = np.random.default_rng(thread)
+        for _ in range(400):
+            lengths = rng.integers(1, 100, int(rng.integers(5, 40)))
+            groups, permutations, seed = rng.integers(0, 3, lengths.size), int(rng.integers(1, 30)), int(rng.integers(0, 50))
+            try:
+                if length_eta2_pvalue(lengths, groups, permutations=permutations, seed=seed) != \
+                        _pvalue_drawing_each_time(lengths, groups, permutations, seed):
+                    wrong.append((thread, seed))
+            except Exception as err:
+                errors.append(repr(err))
+
+    interval = sys.getswitchinterval()
+    sys.setswitchinterval(1e-6)
+    try:
+        threads = [threading.Thread(target=work, args=(t,)) for t in range(8)]
+        for thread in threads:
+            thread.start()
+        for thread in threads:
+            thread.join()
+    finally:
+        sys.setswitchinterval(interval)
+    assert errors == [] and wrong == []

@@ -32,14 +32,20 @@ def scored_trial(clusters: np.ndarray, counts: np.ndarray, labels: Optional[np.n
     error a score raised."""
     import joblib
 
+    from harness.metrics._internal import DISTANCES_KEPT_UP_TO, cosine_distances, silhouette_cosine
     from harness.score.scoring import VECTOR_SCORES, described_clusters, label_free_scores, trial_scores
 
     try:
         with joblib.parallel_config(backend="sequential"):  # nested joblib calls stay on this worker
             scores = trial_scores(clusters, counts, labels)
-            # The functions StageExecutor.label_free_score caches locally, on the same vectors and seed: equal values.
-            vector_scores = {name: float(VECTOR_SCORES[name](points, clusters, max_points=max_points, seed=seed))
-                             for name, points in (("silhouette", own_pooled), ("dbcv", reduced))}
+            # The functions StageExecutor.label_free_score caches locally, on the same vectors and seed, with the
+            # same arithmetic (the silhouette from the block of all the vectors' distances, up to the same size).
+            held = cosine_distances(own_pooled) if clusters.size <= DISTANCES_KEPT_UP_TO else None
+            vector_scores = {
+                "silhouette": float(silhouette_cosine(own_pooled, clusters, max_points=max_points, seed=seed,
+                                                      distances=held)),
+                "dbcv": float(VECTOR_SCORES["dbcv"](reduced, clusters, max_points=max_points, seed=seed)),
+            }
             scores.update(label_free_scores(clusters, counts, vector_scores, seed=seed, permutations=permutations))
             scores["length_leakage_r2"] = leakage_transformed
             scores["length_leakage_r2_pooled"] = leakage_pooled

@@ -54,7 +54,9 @@ STAGE_LIBRARIES: dict[str, tuple[str, ...]] = {
 #    duplicate points instead of failing the trial.
 # 3: the silhouette is computed in float64 (float32 distances rounded differently with the BLAS threads).
 # 4: length_leakage_r2 chooses its ridge penalty by cross-validation on each training fold (RidgeCV).
-SCORES_VERSION = 4
+# 5: the same figures by other arithmetic, equal to the last bits or nearly: the silhouette's cluster sums by a
+#    matrix product, the leakage's leave-one-out from one eigendecomposition, DBCV vectorised.
+SCORES_VERSION = 5
 
 # Settings that cannot change any number a seed run logs, each with the reason. Every other field of the
 # typed settings (the Sweep and everything nested in it) enters the trial key: through the dataset's content

@@ -408,7 +408,7 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
                                                 clusters=clusters))
                 continue
             current = tracker.start_run(trial.name, config_run, "trial", params[trial.key], _trial_tags(trial, corpus),
-                                        trial_key=trial.key, params_with_results=True)
+                                        trial_key=trial.key)
             tracker.log_dataset(current, corpus.name, corpus.fingerprint, _source_type(corpus), corpus.source,
                                 {"rows": corpus.n_texts, "classes": corpus.n_classes})
             try:

@@ -30,9 +30,6 @@ from harness.keys import array_digest, settings_key
 from harness.sweep import TRANSFORMER_FAMILIES
 
 BatchCallback = Callable[[int], None]
-# Up to this many texts, the cosine distances of a set of pooled vectors are kept (8 bytes each: 128 MB at 4,000)
-# for every silhouette of a labelling of them; above, each silhouette computes those of its own points.
-DISTANCES_KEPT_UP_TO = 4000
 
 
 class StageExecutor:
@@ -382,6 +379,8 @@ class StageExecutor:
             "sample_seed": trial.seed if subsampled else None,
             "code": {"harness": __version__, "vector_scores": VECTOR_SCORES_VERSION, "scores": SCORES_VERSION}})
         compute = VECTOR_SCORES[name]
+        from harness.metrics._internal import DISTANCES_KEPT_UP_TO
+
         if name == "silhouette" and clusters.size <= DISTANCES_KEPT_UP_TO:
             def compute(points, clusters, *, max_points, seed):  # noqa: F811 - the same score from held distances
                 from harness.metrics._internal import silhouette_cosine

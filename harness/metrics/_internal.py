@@ -26,6 +26,12 @@ def _clustered_sample(clusters: np.ndarray, max_points: int, seed: int) -> np.nd
     return kept
 
 
+# Up to this many texts, the silhouette of a labelling takes its points' block of the cosine distances of all the
+# vectors (8 bytes each: 128 MB at 4,000), which the executor keeps for every labelling of the same vectors and a
+# cluster worker computes per trial: the same arithmetic in both places. Above, each computes its own points'.
+DISTANCES_KEPT_UP_TO = 4000
+
+
 def cosine_distances(vectors: np.ndarray) -> np.ndarray:
     """All pairwise cosine distances of ``vectors`` in float64 (scikit-learn's pairwise_distances).
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import hashlib
+import threading
 
 import numpy as np
 import pandas as pd
@@ -109,13 +110,15 @@ def length_eta2_pvalue(lengths: np.ndarray, groups: np.ndarray, *, permutations:
 # with that seed draws the same ones): the newest sets, up to this many values in all (8 bytes each, 128 MB).
 _SHUFFLES_KEPT_UP_TO = 16_000_000
 _kept_shuffles: dict[tuple, list[np.ndarray]] = {}
+_kept_shuffles_lock = threading.Lock()  # a Dask worker may score on several threads
 
 
 def _shuffled_chunks(centred: np.ndarray, permutations: int, seed: int) -> list[np.ndarray]:
     """``permutations`` shuffles of ``centred`` drawn with ``seed``, in chunks of 256 rows."""
-    key = (seed, permutations, centred.size, hashlib.sha256(centred.tobytes()).hexdigest())
-    if key in _kept_shuffles:
-        return _kept_shuffles[key]
+    key = (seed, permutations, centred.size, centred.dtype.str, hashlib.sha256(centred.tobytes()).hexdigest())
+    with _kept_shuffles_lock:
+        if key in _kept_shuffles:
+            return _kept_shuffles[key]
     rng = np.random.default_rng(seed)
     chunks, done = [], 0
     while done < permutations:
@@ -123,9 +126,10 @@ def _shuffled_chunks(centred: np.ndarray, permutations: int, seed: int) -> list[
         chunks.append(np.stack([rng.permutation(centred) for _ in range(chunk)]))
         done += chunk
     if permutations * centred.size <= _SHUFFLES_KEPT_UP_TO:
-        _kept_shuffles[key] = chunks
-        while sum(k[1] * k[2] for k in _kept_shuffles) > _SHUFFLES_KEPT_UP_TO:
-            del _kept_shuffles[next(iter(_kept_shuffles))]  # the oldest set first
+        with _kept_shuffles_lock:
+            _kept_shuffles[key] = chunks
+            while sum(k[1] * k[2] for k in _kept_shuffles) > _SHUFFLES_KEPT_UP_TO:
+                del _kept_shuffles[next(iter(_kept_shuffles))]  # the oldest set first
     return chunks
 
 
@@ -142,8 +146,9 @@ def length_leakage_r2(vectors: np.ndarray, lengths: np.ndarray, *, folds: int = 
     How much length the vectors themselves encode, whatever the clustering. Each feature is
     standardised (on the training folds, scikit-learn's StandardScaler) before the ridge, so that the penalty
     weighs the same at any scale of the vectors and R^2 does not depend on it. The penalty is chosen on each
-    training fold among ``alphas`` by exact leave-one-out (``_ridge_loo``, the choice scikit-learn's RidgeCV
-    makes), so that vectors with more dimensions than a fold has texts are not fitted to noise: with a fixed
+    training fold among ``alphas`` by exact leave-one-out (``_ridge_loo``: the rule scikit-learn's RidgeCV
+    uses, lowest mean squared leave-one-out error; where two penalties' errors tie to the last bits, the two
+    computations can round to different choices), so that vectors with more dimensions than a fold has texts are not fitted to noise: with a fixed
     penalty of 1, 768-d vectors of 1,200 texts gave R^2 of -11 (measured on 20 Newsgroups), a figure about the
     fit, not the vectors. Folds are shuffled with ``seed`` (KFold); the score is the mean R^2 over the outer folds.
     """

@@ -75,7 +75,6 @@ class SweepTracker:
         from mlflow.tracking import MlflowClient
 
         self.tracking_uri = tracking_uri
-        self._params_due: dict[str, dict[str, Any]] = {}  # run id -> params to log with its first results
         check_reachable(tracking_uri)
         self.client = MlflowClient(tracking_uri=tracking_uri)
         try:
@@ -135,27 +134,20 @@ class SweepTracker:
         return marked
 
     def start_run(self, name: str, parent_id: str | None, kind: str, params: dict[str, Any], tags: dict[str, str],
-                  trial_key: str | None = None, params_with_results: bool = False) -> str:
-        """Create a run (nested under ``parent_id`` when given) with its params; every run records its host and PID.
-
-        ``params_with_results``: the params go in the same batch as the run's first results, or with its end,
-        whichever comes first (one store call less, for runs that last one trial)."""
+                  trial_key: str | None = None) -> str:
+        """Create a run (nested under ``parent_id`` when given) with its params; every run records its host and PID."""
         tags = {KIND_TAG: kind, HOST_TAG: socket.gethostname(), PID_TAG: str(os.getpid()), **tags}
         if parent_id is not None:
             tags[PARENT_TAG] = parent_id
         if trial_key is not None:
             tags[TRIAL_KEY_TAG] = trial_key
         run = self.client.create_run(self.experiment_id, run_name=name, tags=tags)
-        if params_with_results:
-            self._params_due[run.info.run_id] = dict(params)
-        else:
-            self._log(run.info.run_id, params=params)
+        self._log(run.info.run_id, params=params)
         return run.info.run_id
 
     def _log(self, run_id: str, params: dict | None = None, metrics: dict | None = None, tags: dict | None = None) -> None:
         from mlflow.entities import Metric, Param, RunTag
 
-        params = {**self._params_due.pop(run_id, {}), **(params or {})}
         now = int(time.time() * 1000)
         self.client.log_batch(
             run_id,
@@ -190,8 +182,8 @@ class SweepTracker:
         self.client.log_inputs(run_id, [DatasetInput(dataset, tags=[InputTag("mlflow.data.context", "clustering")])])
 
     def end(self, run_id: str, status: str, error: str | None = None) -> None:
-        if error is not None or run_id in self._params_due:
-            self._log(run_id, tags={"harness.error": error} if error is not None else None)
+        if error is not None:
+            self._log(run_id, tags={"harness.error": error})
         self.client.set_terminated(run_id, status=status)
 
 
