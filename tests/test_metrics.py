@@ -343,8 +343,8 @@ def test_kept_shuffles_give_the_same_pvalues_as_shuffles_drawn_each_time(limit, 
     # The shuffles of a corpus's lengths depend on the lengths, the seed and the count only, so every clustering of
     # the corpus with that seed reuses them. Checked against drawing them in each call, over seeds, counts that are
     # and are not multiples of the chunk, groupings with and without noise and strongly length-tied ones, calls
-    # interleaved; with the default bound nothing is evicted, with a small one sets are evicted oldest first and
-    # sets larger than the bound are never kept.
+    # interleaved; with the default bound nothing is evicted, with a small one the least recently used sets are
+    # evicted first and sets larger than the bound are never kept.
     from harness.metrics import _length, length_eta2_pvalue
 
     monkeypatch.setattr(_length, "_SHUFFLES_KEPT_UP_TO", limit)
@@ -363,15 +363,30 @@ def test_kept_shuffles_give_the_same_pvalues_as_shuffles_drawn_each_time(limit, 
                         after = list(_length._kept_shuffles)
                         assert sum(k[1] * k[2] for k in after) <= limit
                         gone = [k for k in before if k not in after]
-                        assert gone == before[:len(gone)]  # the oldest first
+                        assert gone == before[:len(gone)]  # the least recently used first
                         evicted += len(gone)
                         if permutations * lengths.size <= limit:
-                            kept_newest += any(k[:3] == (seed, permutations, lengths.size) for k in after)
+                            kept_newest += after[-1][:3] == (seed, permutations, lengths.size)  # used last
                         else:
                             too_big += 1
-                            assert not any(k[:3] == (seed, permutations, lengths.size) for k in after)
+                            assert after == before  # never kept, and nothing evicted for it
     assert kept_newest == sum(2 * 3 * 2 for p in (1, 99, 256, 999) for n in (40, 500, 1200) if p * n <= limit)
     assert (evicted > 0) == (limit < 16_000_000) and (too_big > 0) == (limit < 16_000_000)
+
+
+def test_kept_shuffles_belong_to_their_own_lengths():
+    # Two corpora of the same size, the same seed and count: each clustering gets the shuffles of its own lengths
+    # (the key holds a hash of the values), checked against drawing them anew.
+    from harness.metrics import length_eta2_pvalue
+
+    rng = np.random.default_rng(12)
+    groups = rng.integers(0, 4, 200)
+    wide, narrow = rng.integers(1, 300, 200), rng.integers(1, 10, 200)
+    for lengths in (wide, narrow, wide, narrow):
+        assert length_eta2_pvalue(lengths, groups, permutations=99, seed=0) == \
+            _pvalue_drawing_each_time(lengths, groups, 99, 0)
+    shifted = wide.astype(float) * 2  # another set of values with the same log-length shape differs too
+    assert length_eta2_pvalue(shifted, groups, permutations=99, seed=0) == _pvalue_drawing_each_time(shifted, groups, 99, 0)
 
 
 def test_kept_shuffles_are_shared_safely_between_threads(monkeypatch):
@@ -390,9 +405,10 @@ def test_kept_shuffles_are_shared_safely_between_threads(monkeypatch):
 
     def work(thread: int) -> None:
         rng = np.random.default_rng(thread)
+        shared = [np.random.default_rng(k).integers(1, 100, 30) for k in range(6)]  # the same corpora in every thread
         for _ in range(400):
-            lengths = rng.integers(1, 100, int(rng.integers(5, 40)))
-            groups, permutations, seed = rng.integers(0, 3, lengths.size), int(rng.integers(1, 30)), int(rng.integers(0, 50))
+            lengths = shared[int(rng.integers(0, 6))] if rng.random() < 0.5 else rng.integers(1, 100, int(rng.integers(5, 40)))
+            groups, permutations, seed = rng.integers(0, 3, lengths.size), int(rng.integers(1, 30)), int(rng.integers(0, 3))
             try:
                 if length_eta2_pvalue(lengths, groups, permutations=permutations, seed=seed) != \
                         _pvalue_drawing_each_time(lengths, groups, permutations, seed):

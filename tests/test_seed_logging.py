@@ -38,4 +38,3 @@ def test_a_run_logs_tables_and_scores_per_seed_and_draws_no_figure(tmp_path):
         # One batch: every score of the run carries the same timestamp.
         history = [client.get_metric_history(run.info.run_id, name)[0].timestamp for name in ("ari", "silhouette", "dbcv")]
         assert len(set(history)) == 1
-

@@ -107,7 +107,8 @@ def length_eta2_pvalue(lengths: np.ndarray, groups: np.ndarray, *, permutations:
 
 
 # The shuffles of a set of lengths, kept for the next grouping with the same seed (every clustering of a corpus
-# with that seed draws the same ones): the newest sets, up to this many values in all (8 bytes each, 128 MB).
+# with that seed draws the same ones): the most recently used sets, up to this many values in all (8 bytes each,
+# 128 MB).
 _SHUFFLES_KEPT_UP_TO = 16_000_000
 _kept_shuffles: dict[tuple, list[np.ndarray]] = {}
 _kept_shuffles_lock = threading.Lock()  # a Dask worker may score on several threads
@@ -118,6 +119,7 @@ def _shuffled_chunks(centred: np.ndarray, permutations: int, seed: int) -> list[
     key = (seed, permutations, centred.size, centred.dtype.str, hashlib.sha256(centred.tobytes()).hexdigest())
     with _kept_shuffles_lock:
         if key in _kept_shuffles:
+            _kept_shuffles[key] = _kept_shuffles.pop(key)  # the most recently used set is evicted last
             return _kept_shuffles[key]
     rng = np.random.default_rng(seed)
     chunks, done = [], 0
@@ -129,7 +131,7 @@ def _shuffled_chunks(centred: np.ndarray, permutations: int, seed: int) -> list[
         with _kept_shuffles_lock:
             _kept_shuffles[key] = chunks
             while sum(k[1] * k[2] for k in _kept_shuffles) > _SHUFFLES_KEPT_UP_TO:
-                del _kept_shuffles[next(iter(_kept_shuffles))]  # the oldest set first
+                del _kept_shuffles[next(iter(_kept_shuffles))]  # the least recently used set first
     return chunks
 
 
