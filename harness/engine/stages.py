@@ -378,17 +378,14 @@ class StageExecutor:
             "score": name, "labels": array_digest(np.asarray(clusters, dtype=np.int64)), "max_points": max_points,
             "sample_seed": trial.seed if subsampled else None,
             "code": {"harness": __version__, "vector_scores": VECTOR_SCORES_VERSION, "scores": SCORES_VERSION}})
-        compute = VECTOR_SCORES[name]
         from harness.metrics._internal import DISTANCES_KEPT_UP_TO
 
-        if name == "silhouette" and clusters.size <= DISTANCES_KEPT_UP_TO:
-            def compute(points, clusters, *, max_points, seed):  # noqa: F811 - the same score from held distances
-                from harness.metrics._internal import silhouette_cosine
-
-                return silhouette_cosine(points, clusters, max_points=max_points, seed=seed,
-                                         distances=self._cosine_distances(vectors_stage.key, points))
+        compute = VECTOR_SCORES[name]
+        held = name == "silhouette" and clusters.size <= DISTANCES_KEPT_UP_TO  # the distances of all the vectors
         value = self._computed(trial, "score", f"{name}_computations", lambda: (vectors(),),
-                               lambda points: np.array([compute(points, clusters, max_points=max_points, seed=trial.seed)]),
+                               lambda points: np.array([compute(
+                                   points, clusters, max_points=max_points, seed=trial.seed,
+                                   **({"distances": self._cosine_distances(vectors_stage.key, points)} if held else {}))]),
                                stage=stage)
         return float(value[0])
 

@@ -150,9 +150,10 @@ def length_leakage_r2(vectors: np.ndarray, lengths: np.ndarray, *, folds: int = 
     weighs the same at any scale of the vectors and R^2 does not depend on it. The penalty is chosen on each
     training fold among ``alphas`` by exact leave-one-out (``_ridge_loo``: the rule scikit-learn's RidgeCV
     uses, lowest mean squared leave-one-out error; where two penalties' errors tie to the last bits, the two
-    computations can round to different choices), so that vectors with more dimensions than a fold has texts are not fitted to noise: with a fixed
-    penalty of 1, 768-d vectors of 1,200 texts gave R^2 of -11 (measured on 20 Newsgroups), a figure about the
-    fit, not the vectors. Folds are shuffled with ``seed`` (KFold); the score is the mean R^2 over the outer folds.
+    computations can round to different choices), so that vectors with more dimensions than a fold has texts
+    are not fitted to noise: with a fixed penalty of 1, 768-d vectors of 1,200 texts gave R^2 of -11 (measured
+    on 20 Newsgroups), a figure about the fit, not the vectors. Folds are shuffled with ``seed`` (KFold); the
+    score is the mean R^2 over the outer folds.
     """
     from sklearn.metrics import r2_score
     from sklearn.model_selection import KFold
