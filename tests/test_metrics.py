@@ -26,23 +26,69 @@ LABELS = RNG.integers(0, 4, 300)
 CLUSTERS = np.where(RNG.random(300) < 0.7, LABELS, RNG.integers(-1, 5, 300))
 
 
-def test_external_scores_equal_scikit_learn():
-    # Reference: sklearn.metrics (adjusted_rand_score, adjusted_mutual_info_score, normalized_mutual_info_score,
-    # homogeneity_completeness_v_measure).
-    ours = external_scores(LABELS, CLUSTERS)
-    assert ours["ari"] == skm.adjusted_rand_score(LABELS, CLUSTERS)
-    assert ours["ami"] == skm.adjusted_mutual_info_score(LABELS, CLUSTERS)
-    assert ours["nmi"] == skm.normalized_mutual_info_score(LABELS, CLUSTERS)
-    h, c, v = skm.homogeneity_completeness_v_measure(LABELS, CLUSTERS)
-    assert (ours["homogeneity"], ours["completeness"], ours["v_measure"]) == (h, c, v)
+def _scikit_learn_external(labels_true, labels_pred) -> dict[str, float]:
+    """Reference: sklearn.metrics' adjusted_rand_score, adjusted_mutual_info_score, normalized_mutual_info_score and
+    homogeneity_completeness_v_measure, each on the label arrays."""
+    h, c, v = skm.homogeneity_completeness_v_measure(labels_true, labels_pred)
+    return {"ari": skm.adjusted_rand_score(labels_true, labels_pred),
+            "ami": skm.adjusted_mutual_info_score(labels_true, labels_pred),
+            "nmi": skm.normalized_mutual_info_score(labels_true, labels_pred),
+            "v_measure": v, "homogeneity": h, "completeness": c}
+
+
+def _external_cases():
+    """Label arrays covering the shapes a clustering takes: noise or none, all noise, one cluster, one gold class,
+    gold classes carried by noise points only, singletons, every point its own cluster, two points, string gold
+    labels, cluster ids with gaps, and larger corpora with many clusters."""
+    rng = np.random.default_rng(11)
+    labels = rng.integers(0, 4, 300)
+    yield "noise", LABELS, CLUSTERS
+    yield "no_noise", labels, np.where(rng.random(300) < 0.7, labels, rng.integers(0, 5, 300))
+    yield "all_noise", labels, np.full(300, -1)
+    yield "one_cluster", labels, np.zeros(300, dtype=int)
+    yield "one_cluster_and_noise", labels, np.where(rng.random(300) < 0.5, 0, -1)
+    yield "one_class", np.zeros(300, dtype=int), rng.integers(-1, 5, 300)
+    only_noise = labels.copy()
+    only_noise[:20] = 9  # gold class 9 carried by noise points only
+    yield "class_only_in_noise", only_noise, np.where(np.arange(300) < 20, -1, rng.integers(0, 4, 300))
+    yield "singletons", labels, np.where(rng.random(300) < 0.9, labels, 100 + np.arange(300))
+    yield "own_cluster_each", labels, np.arange(300)
+    yield "two_points", np.array([0, 1]), np.array([0, 0])
+    yield "two_points_apart", np.array([0, 1]), np.array([0, 1])
+    yield "string_labels", np.array(["sport", "world", "tech"])[labels % 3], rng.integers(-1, 6, 300)
+    yield "gaps_in_ids", labels, np.array([-1, 3, 17, 400])[rng.integers(0, 4, 300)]
+    yield "perfect_with_noise", labels, np.where(rng.random(300) < 0.8, labels, -1)
+    for n, classes, clusters in ((2000, 6, 9), (5000, 20, 60), (1200, 2, 40)):
+        gold = rng.integers(0, classes, n)
+        yield f"n{n}_k{clusters}", gold, np.where(rng.random(n) < 0.5, gold, rng.integers(-1, clusters, n))
+
+
+@pytest.mark.parametrize("name, labels, clusters", list(_external_cases()), ids=[c[0] for c in _external_cases()])
+def test_external_scores_equal_scikit_learn_on_every_case(name, labels, clusters):
+    # Reference: scikit-learn's four functions (_scikit_learn_external) on all points, noise (-1) as one more
+    # cluster id, and on the clustered points only; the tool computes both from one contingency table.
+    # 1e-12: the same formulas with other arithmetic (AMI's expected mutual information summed differently,
+    # harness/metrics/_expected_mi.py); measured differences are below 1e-13.
+    ours = external_scores(labels, clusters)
+    for score, value in _scikit_learn_external(labels, clusters).items():
+        assert ours[score] == pytest.approx(value, rel=0, abs=1e-12), score
+    aware = noise_aware_scores(labels, clusters)
+    for score, value in _scikit_learn_external(labels, clusters).items():
+        assert aware[score] == pytest.approx(value, rel=0, abs=1e-12), score
+    kept = clusters != -1
+    for score, value in (_scikit_learn_external(labels[kept], clusters[kept]) if kept.any() else {}).items():
+        assert aware[f"{score}_clustered"] == pytest.approx(value, rel=0, abs=1e-12), score
+    if not kept.any():
+        assert all(np.isnan(aware[f"{score}_clustered"]) for score in ("ari", "ami", "nmi", "v_measure"))
 
 
 def test_noise_counted_as_one_cluster_and_left_out():
     # Reference: scikit-learn's ARI on all points (noise label -1 is just another cluster id) and on clustered points.
     scores = noise_aware_scores(LABELS, CLUSTERS)
     kept = CLUSTERS != -1
-    assert scores["ari"] == skm.adjusted_rand_score(LABELS, CLUSTERS)
-    assert scores["ari_clustered"] == skm.adjusted_rand_score(LABELS[kept], CLUSTERS[kept])
+    assert scores["ari"] == pytest.approx(skm.adjusted_rand_score(LABELS, CLUSTERS), rel=0, abs=1e-12)
+    assert scores["ari_clustered"] == pytest.approx(skm.adjusted_rand_score(LABELS[kept], CLUSTERS[kept]), rel=0, abs=1e-12)
+    assert abs(scores["ari"] - scores["ari_clustered"]) > 0.01  # the two ways differ on this case
     assert scores["coverage"] == pytest.approx(kept.mean())
     assert scores["noise_fraction"] == pytest.approx(1 - kept.mean())
     assert scores["n_clusters"] == np.unique(CLUSTERS[kept]).size

@@ -56,7 +56,9 @@ STAGE_LIBRARIES: dict[str, tuple[str, ...]] = {
 # 4: length_leakage_r2 chooses its ridge penalty by cross-validation on each training fold (RidgeCV).
 # 5: the same figures by other arithmetic, equal to the last bits or nearly: the silhouette's cluster sums by a
 #    matrix product, the leakage's leave-one-out from one eigendecomposition, DBCV vectorised.
-SCORES_VERSION = 5
+# 6: a trial's ARI, AMI, NMI, V, homogeneity and completeness from one contingency table (scikit-learn's formulas,
+#    the bootstrap's arithmetic) instead of scikit-learn's functions: equal to 1e-12, moved in the last bits.
+SCORES_VERSION = 6
 
 # Settings that cannot change any number a seed run logs, each with the reason. Every other field of the
 # typed settings (the Sweep and everything nested in it) enters the trial key: through the dataset's content

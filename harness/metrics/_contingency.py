@@ -24,8 +24,8 @@ class PairCodes:
     """Fixed integer codes of (label, cluster) pairs, so that any reweighting of texts gives a contingency table."""
 
     def __init__(self, labels_true: np.ndarray, labels_pred: np.ndarray):
-        _, true_codes = np.unique(labels_true, return_inverse=True)
-        _, pred_codes = np.unique(labels_pred, return_inverse=True)
+        self.label_values, true_codes = np.unique(labels_true, return_inverse=True)
+        self.cluster_values, pred_codes = np.unique(labels_pred, return_inverse=True)
         self.shape = (int(true_codes.max()) + 1, int(pred_codes.max()) + 1)
         self.codes = true_codes * self.shape[1] + pred_codes
 
@@ -56,7 +56,8 @@ def self_pair_counts(indices: np.ndarray, n: int) -> np.ndarray:
 
 
 def scores_from_tables(tables: np.ndarray, self_pairs: np.ndarray | None = None) -> dict[str, np.ndarray]:
-    """ARI, AMI, NMI and V-measure of each table of a stack (T, rows: gold labels, columns: clusters).
+    """ARI, AMI, NMI, V-measure, homogeneity and completeness of each table of a stack (T, rows: gold labels,
+    columns: clusters).
 
     Empty rows and columns are ignored, as scikit-learn ignores labels that do not occur. ``self_pairs`` (T,) is,
     per table, the weighted number of ordered pairs of an item with a copy of itself (a bootstrap resample: the sum
@@ -117,10 +118,10 @@ def scores_from_tables(tables: np.ndarray, self_pairs: np.ndarray | None = None)
             numerator = mi[full] - emi
             numerator = np.where(numerator < 0, np.minimum(numerator, -EPS), np.maximum(numerator, EPS))
             ami[full] = numerator / denominator
-    return {"ari": ari, "ami": ami, "nmi": nmi, "v_measure": v}
+    return {"ari": ari, "ami": ami, "nmi": nmi, "v_measure": v, "homogeneity": homogeneity, "completeness": completeness}
 
 
 def scores_from_table(table: np.ndarray, self_pairs: float | None = None) -> dict[str, float]:
-    """ARI, AMI, NMI and V-measure of one contingency table (rows: gold labels, columns: clusters)."""
+    """The scores of ``scores_from_tables`` for one contingency table (rows: gold labels, columns: clusters)."""
     pairs = None if self_pairs is None else np.array([self_pairs], dtype=np.float64)
     return {name: float(values[0]) for name, values in scores_from_tables(np.asarray(table)[None], pairs).items()}
