@@ -39,6 +39,8 @@ from harness.score.describe import (
     term_counts,
 )
 from harness.score.evidence import (
+    BOOTSTRAPPED,
+    RECENTRED,
     SEED_LEVEL_MINIMUM,
     bootstrap_distributions,
     configuration_evidence,
@@ -688,3 +690,63 @@ grid:
                for c in configs)  # no labels, no intervals: nothing to scope
     assert all(c.data.tags["harness.coherence"] == "not_meaningful" and float(c.data.tags["harness.median_words"]) < 40
                for c in configs)  # one-line requests: NPMI is not a coherence level
+
+
+def _per_block_scores(labels, clusterings, resamples, seed):
+    """Reference: the bootstrap scored one block of resamples at a time (one scores_from_tables call per block and
+    distinct clustering, as before the tables of all blocks were scored in one call), before re-centring."""
+    from harness.score.evidence import resample_blocks
+
+    out = {name: [] for name in BOOTSTRAPPED}
+    for clusters in clusterings:
+        codes, parts = PairCodes(labels, clusters), []
+        for block in resample_blocks(labels.size, resamples, seed):
+            parts.append(scores_from_tables(codes.resampled_tables(block), self_pair_counts(block, labels.size)))
+        for name in BOOTSTRAPPED:
+            out[name].append(np.concatenate([p[name] for p in parts]))
+    return out
+
+
+@pytest.mark.parametrize("resamples", [1, 63, 64, 65, 200, 1000])
+@pytest.mark.parametrize("n, classes, clusters, kept", BATCH_CASES)
+def test_scoring_all_blocks_at_once_equals_scoring_each_block(n, classes, clusters, kept, resamples, monkeypatch):
+    # Each resample's scores come from its own table: scoring every block's tables in one call (and the expected
+    # mutual information of many tables on threads) must give each resample the same value, bit for bit.
+    import harness.score.evidence as evidence
+
+    rng = np.random.default_rng(n + 1)
+    labels = rng.integers(0, classes, n)
+    clusterings = [np.where(rng.random(n) < kept, labels, rng.integers(-1, clusters, n)) for _ in range(2)]
+    recentring = []
+    monkeypatch.setattr(evidence, "recentred", lambda values, estimate: recentring.append(estimate) or values)
+    ours = evidence.per_seed_resampled_scores(labels, clusterings, resamples=resamples, seed=5)
+    reference = _per_block_scores(labels, clusterings, resamples, seed=5)
+    for name in BOOTSTRAPPED:
+        for seed in range(2):
+            np.testing.assert_array_equal(ours[name][seed], reference[name][seed], err_msg=name)
+    assert len(recentring) == 2 * len(RECENTRED)
+
+
+@pytest.mark.parametrize("cores", [1, 2, 3, 8])
+@pytest.mark.parametrize("tables", [0, 1, 127, 128, 255, 256, 257, 1000])
+def test_expected_mutual_info_on_threads_equals_one_loop(tables, cores, monkeypatch):
+    # The tables are cut into contiguous slices, one per thread, only from TABLES_PER_THREAD tables per thread on;
+    # every value must equal the single loop's bit for bit, and in the same order.
+    import harness.metrics._expected_mi as emi
+
+    rng = np.random.default_rng(tables + cores)
+    labels = rng.integers(0, 5, 400)
+    codes = PairCodes(labels, np.where(rng.random(400) < 0.5, labels, rng.integers(-1, 7, 400)))
+    indices = rng.integers(0, 400, (tables, 400))
+    counts = np.rint(codes.resampled_tables(indices)).astype(np.int64)
+    rows, cols = counts.sum(axis=2), counts.sum(axis=1)
+    monkeypatch.setattr(emi, "_cores", lambda: 1)
+    single = emi.expected_mutual_info(rows, cols)
+    monkeypatch.setattr(emi, "_cores", lambda: cores)
+    threads = []
+    real_pool = __import__("concurrent.futures").futures.ThreadPoolExecutor
+    monkeypatch.setattr("concurrent.futures.ThreadPoolExecutor",
+                        lambda max_workers: threads.append(max_workers) or real_pool(max_workers=max_workers))
+    np.testing.assert_array_equal(emi.expected_mutual_info(rows, cols), single)
+    expected_workers = min(cores, tables // emi.TABLES_PER_THREAD)
+    assert threads == ([expected_workers] if expected_workers >= 2 else [])

@@ -114,12 +114,16 @@ def per_seed_resampled_scores(labels_true: np.ndarray, seed_clusterings: list[np
     distinct: dict[bytes, int] = {}
     order = [distinct.setdefault(np.asarray(c).tobytes(), len(distinct)) for c in seed_clusterings]
     codes = [PairCodes(labels_true, seed_clusterings[order.index(i)]) for i in range(len(distinct))]
-    blocks: list[list[dict[str, np.ndarray]]] = [[] for _ in codes]
+    tables: list[list[np.ndarray]] = [[] for _ in codes]
+    copies = []
     for block in resample_blocks(labels_true.size, resamples, seed):
-        copies = self_pair_counts(block, labels_true.size)
+        copies.append(self_pair_counts(block, labels_true.size))
         for i, code in enumerate(codes):
-            blocks[i].append(scores_from_tables(code.resampled_tables(block), copies))
-    scored = [{name: np.concatenate([b[name] for b in seed_blocks]) for name in BOOTSTRAPPED} for seed_blocks in blocks]
+            tables[i].append(code.resampled_tables(block))
+    # Every resample's table is scored on its own (no score mixes tables), so one call per clustering over all its
+    # tables gives each resample the value a call per block gives it (tests/test_evidence.py compares the two).
+    copies = np.concatenate(copies)
+    scored = [scores_from_tables(np.concatenate(seed_tables), copies) for seed_tables in tables]
     for code, values in zip(codes, scored):
         estimate = scores_from_table(code.table())
         for name in RECENTRED:
