@@ -707,16 +707,26 @@ def _per_block_scores(labels, clusterings, resamples, seed):
     return out
 
 
+@pytest.mark.parametrize("cells_per_call", ["default", "one_block", "three_blocks"])
 @pytest.mark.parametrize("resamples", [1, 63, 64, 65, 200, 1000])
 @pytest.mark.parametrize("n, classes, clusters, kept", BATCH_CASES)
-def test_scoring_all_blocks_at_once_equals_scoring_each_block(n, classes, clusters, kept, resamples, monkeypatch):
-    # Each resample's scores come from its own table: scoring every block's tables in one call (and the expected
-    # mutual information of many tables on threads) must give each resample the same value, bit for bit.
+def test_scoring_all_blocks_at_once_equals_scoring_each_block(n, classes, clusters, kept, resamples, cells_per_call,
+                                                               monkeypatch):
+    # Each resample's scores come from its own table: scoring the tables of many blocks in one call (all of them
+    # by default here; one or three blocks per call where the tables are large) and the expected mutual information
+    # of many tables on threads must give each resample the same value, bit for bit.
     import harness.score.evidence as evidence
 
     rng = np.random.default_rng(n + 1)
     labels = rng.integers(0, classes, n)
     clusterings = [np.where(rng.random(n) < kept, labels, rng.integers(-1, clusters, n)) for _ in range(2)]
+    largest = max(np.unique(labels).size * np.unique(c).size for c in clusterings)
+    if cells_per_call != "default":
+        monkeypatch.setattr(evidence, "SCORED_CELLS", 1 if cells_per_call == "one_block" else 3 * 64 * largest)
+    calls = []
+    real_scores = evidence.scores_from_tables
+    monkeypatch.setattr(evidence, "scores_from_tables", lambda tables, copies: calls.append(len(tables)) or
+                        real_scores(tables, copies))
     recentring = []
     monkeypatch.setattr(evidence, "recentred", lambda values, estimate: recentring.append(estimate) or values)
     ours = evidence.per_seed_resampled_scores(labels, clusterings, resamples=resamples, seed=5)
@@ -725,6 +735,9 @@ def test_scoring_all_blocks_at_once_equals_scoring_each_block(n, classes, cluste
         for seed in range(2):
             np.testing.assert_array_equal(ours[name][seed], reference[name][seed], err_msg=name)
     assert len(recentring) == 2 * len(RECENTRED)
+    per_call = {"default": resamples, "one_block": 64, "three_blocks": 3 * 64}[cells_per_call]
+    expected = [min(per_call, resamples - start) for start in range(0, resamples, per_call)]
+    assert calls == [rows for rows in expected for _ in range(2)]  # both clusterings, call after call
 
 
 @pytest.mark.parametrize("cores", [1, 2, 3, 8])

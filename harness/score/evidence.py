@@ -39,6 +39,8 @@ BOOTSTRAPPED = ("ari", "ami", "nmi", "v_measure")
 # distinct texts only (harness/metrics/_contingency.py), which removes the copies' agreement at its source.
 RECENTRED = ("ami", "nmi", "v_measure")
 ROWS_PER_DRAW = 64  # resamples per block; an even number keeps the random stream equal to one (B, n) draw
+SCORED_CELLS = 1 << 21  # table cells scored per call (16 MB per float64 temporary): a whole B = 1,000 of tables up
+#                         to about 2,000 cells (e.g. 20 labels x 100 clusters), blocks of 64 for the largest
 SEED_LEVEL_MINIMUM = 3  # fewer seeds than this: intervals and ties cover text sampling only
 SEED_STREAM = 1  # the seed draws use np.random.default_rng([seed, SEED_STREAM]), apart from the text draws
 SCOPE_SEEDS_AND_TEXTS, SCOPE_TEXTS_ONLY = "seeds_and_texts", "texts_only"
@@ -114,16 +116,31 @@ def per_seed_resampled_scores(labels_true: np.ndarray, seed_clusterings: list[np
     distinct: dict[bytes, int] = {}
     order = [distinct.setdefault(np.asarray(c).tobytes(), len(distinct)) for c in seed_clusterings]
     codes = [PairCodes(labels_true, seed_clusterings[order.index(i)]) for i in range(len(distinct))]
-    tables: list[list[np.ndarray]] = [[] for _ in codes]
-    copies = []
+    # Every resample's table is scored on its own (no score mixes tables), so scoring the tables of many blocks in
+    # one call gives each resample the value a call per block gives it (tests/test_evidence.py compares the two);
+    # calls hold up to SCORED_CELLS table cells, so that memory stays bounded for large tables.
+    rows_per_call = max(ROWS_PER_DRAW, SCORED_CELLS // max(code.shape[0] * code.shape[1] for code in codes))
+    pending: list[list[np.ndarray]] = [[] for _ in codes]
+    pending_copies: list[np.ndarray] = []
+    parts: list[list[dict[str, np.ndarray]]] = [[] for _ in codes]
+
+    def score_pending() -> None:
+        copies = np.concatenate(pending_copies)
+        for i, tables in enumerate(pending):
+            parts[i].append(scores_from_tables(np.concatenate(tables), copies))
+            tables.clear()
+        pending_copies.clear()
+
     for block in resample_blocks(labels_true.size, resamples, seed):
-        copies.append(self_pair_counts(block, labels_true.size))
+        pending_copies.append(self_pair_counts(block, labels_true.size))
         for i, code in enumerate(codes):
-            tables[i].append(code.resampled_tables(block))
-    # Every resample's table is scored on its own (no score mixes tables), so one call per clustering over all its
-    # tables gives each resample the value a call per block gives it (tests/test_evidence.py compares the two).
-    copies = np.concatenate(copies)
-    scored = [scores_from_tables(np.concatenate(seed_tables), copies) for seed_tables in tables]
+            pending[i].append(code.resampled_tables(block))
+        if sum(c.size for c in pending_copies) >= rows_per_call:
+            score_pending()
+    if pending_copies:
+        score_pending()
+    scored = [{name: np.concatenate([part[name] for part in seed_parts]) for name in BOOTSTRAPPED}
+              for seed_parts in parts]
     for code, values in zip(codes, scored):
         estimate = scores_from_table(code.table())
         for name in RECENTRED:
