@@ -343,49 +343,6 @@ def umap_graph_figures(n_texts: int, repeats: int) -> dict:
     }}
 
 
-@group("store_logging")
-def store_logging_figures(n_texts: int, repeats: int) -> dict:
-    """store_wal_over_rollback: a new SQLite store and 96 seed-like runs logged through SweepTracker (29 params, 31
-    metrics, 2 tags each, then ended), in the WAL mode a new local store starts in over SQLite's default
-    rollback journal (a store file created beforehand in that mode, which the tracker then leaves alone)."""
-    import sqlite3
-
-    from harness.track.tracking import SweepTracker, default_tracking_uri
-
-    params = {f"param_{i}": i for i in range(29)}
-    metrics = {f"metric_{i}": i / 7 for i in range(31)}
-
-    def logged(mode: str) -> tuple[float, float]:
-        with tempfile.TemporaryDirectory(dir=REPO / "results") as folder:
-            folder = Path(folder)
-            if mode == "rollback":
-                sqlite3.connect(folder / "mlflow.db").execute("PRAGMA journal_mode=DELETE").connection.close()
-            started = time.perf_counter()
-            tracker = SweepTracker(default_tracking_uri(folder), folder / "artifacts", "bench_store")
-            created = time.perf_counter() - started
-            started = time.perf_counter()
-            for i in range(96):
-                run = tracker.start_run(f"run {i}", None, "trial", params, {"harness.bench": "1"})
-                tracker.log_results(run, metrics, tags={"note": "x", "other": "y"})
-                tracker.end(run, "FINISHED")
-            journal = sqlite3.connect(folder / "mlflow.db").execute("PRAGMA journal_mode").fetchone()[0]
-            assert journal == ("wal" if mode == "wal" else "delete"), journal
-            return created, time.perf_counter() - started
-
-    times: dict[str, list] = {"rollback": [], "wal": []}
-    for _ in range(repeats):  # alternated, so that a drift of the machine touches both alike
-        for mode in ("rollback", "wal"):
-            times[mode].append(logged(mode))
-    create = {mode: statistics.median(t[0] for t in v) for mode, v in times.items()}
-    runs = {mode: statistics.median(t[1] for t in v) for mode, v in times.items()}
-    value = (create["wal"] + runs["wal"]) / (create["rollback"] + runs["rollback"])
-    return {"store_wal_over_rollback": {
-        "value": value, "target": "reported (< 1: the WAL store is faster)", "met": True,
-        "seconds": {"create_rollback": create["rollback"], "create_wal": create["wal"],
-                    "96_runs_rollback": runs["rollback"], "96_runs_wal": runs["wal"]},
-    }}
-
-
 @group("sweep_overhead")
 def sweep_overhead_figures(n_texts: int, repeats: int) -> dict:
     """sweep_overhead_fraction: (demo wall - the summed seconds of its encode, reduction and clustering stages)

@@ -15,7 +15,6 @@ from pathlib import Path
 from typing import Any, Iterable
 
 from harness.errors import HarnessError
-from harness.track.sqlite_store import local_mounts, sqlite_path, start_in_wal_mode
 from harness.track.runs_view import EXPERIMENT_KIND_TAG, MODEL_DEVELOPMENT, RANKING_VIEW_TAG, ranking_view_tag
 
 PARENT_TAG = "mlflow.parentRunId"
@@ -77,9 +76,6 @@ class SweepTracker:
 
         self.tracking_uri = tracking_uri
         check_reachable(tracking_uri)
-        store = sqlite_path(tracking_uri)
-        if store is not None:
-            start_in_wal_mode(store, local_mounts())
         self.client = MlflowClient(tracking_uri=tracking_uri)
         try:
             experiment = self.client.get_experiment_by_name(experiment_name)
