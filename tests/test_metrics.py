@@ -82,6 +82,30 @@ def test_external_scores_equal_scikit_learn_on_every_case(name, labels, clusters
         assert all(np.isnan(aware[f"{score}_clustered"]) for score in ("ari", "ami", "nmi", "v_measure"))
 
 
+@pytest.mark.parametrize("bad", [np.nan, np.inf])
+def test_non_finite_labels_are_refused_as_scikit_learn_refuses_them(bad):
+    # Reference: scikit-learn's adjusted_rand_score raises ValueError on NaN input; counting NaN as a class is wrong.
+    labels = LABELS.astype(float)
+    labels[3] = bad
+    with pytest.raises(ValueError):
+        skm.adjusted_rand_score(labels, CLUSTERS)
+    for compute in (external_scores, noise_aware_scores):
+        with pytest.raises(ValueError, match="must not contain NaN or infinity"):
+            compute(labels, CLUSTERS)
+        with pytest.raises(ValueError, match="must not contain NaN or infinity"):
+            compute(LABELS, np.where(np.arange(300) == 5, bad, CLUSTERS.astype(float)))
+
+
+def test_thousands_of_clusters_agree_with_scikit_learn_to_1e_11():
+    # Reference: scikit-learn's functions; 1e-11 for AMI (see external_scores), 1e-12 for the rest.
+    rng = np.random.default_rng(5)
+    labels = rng.integers(0, 50, 20000)
+    clusters = np.where(rng.random(20000) < 0.5, labels, rng.integers(-1, 2000, 20000))
+    ours = external_scores(labels, clusters)
+    for score, value in _scikit_learn_external(labels, clusters).items():
+        assert ours[score] == pytest.approx(value, rel=0, abs=1e-11 if score == "ami" else 1e-12), score
+
+
 def test_noise_counted_as_one_cluster_and_left_out():
     # Reference: scikit-learn's ARI on all points (noise label -1 is just another cluster id) and on clustered points.
     scores = noise_aware_scores(LABELS, CLUSTERS)

@@ -22,6 +22,14 @@ def check_same_length(*arrays: np.ndarray, names: tuple[str, ...]) -> tuple[np.n
     return tuple(checked)
 
 
+def check_finite_labels(*arrays: np.ndarray, names: tuple[str, ...]) -> None:
+    """Labels of a float dtype must be finite: NaN would be counted as one more class (scikit-learn refuses it)."""
+    for array, name in zip(arrays, names):
+        if np.issubdtype(array.dtype, np.floating) and not np.all(np.isfinite(array)):
+            raise ValueError(f"The '{name}' parameter must not contain NaN or infinity. "
+                             f"Got {int((~np.isfinite(array)).sum())} such values instead.")
+
+
 def check_positive(values: np.ndarray, name: str) -> np.ndarray:
     values = np.asarray(values, dtype=np.float64)
     if not np.all(values > 0):
