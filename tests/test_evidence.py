@@ -763,3 +763,35 @@ def test_expected_mutual_info_on_threads_equals_one_loop(tables, cores, monkeypa
     np.testing.assert_array_equal(emi.expected_mutual_info(rows, cols), single)
     expected_workers = min(cores, tables // emi.TABLES_PER_THREAD)
     assert threads == ([expected_workers] if expected_workers >= 2 else [])
+
+
+@pytest.mark.parametrize("pattern", [[0], [0, 0, 1], [0, 1, 2], [0, 1, 0, 2], [0, 1, 2, 3], [3, 3, 3]])
+@pytest.mark.parametrize("cells", ["default", "65_rows", "129_rows"])
+@pytest.mark.parametrize("resamples", [1, 65, 128, 1001])
+def test_every_resample_is_scored_once_in_order_for_any_mix_of_clusterings(pattern, cells, resamples, monkeypatch):
+    # Seeds whose clusterings differ in their number of clusters (so in table size), repeat one another, or number
+    # up to four; calls sized from the largest table, where that size is not a whole number of blocks.
+    import harness.score.evidence as evidence
+
+    rng = np.random.default_rng(len(pattern) + resamples)
+    labels = rng.integers(0, 4, 500)
+    distinct = [np.where(rng.random(500) < 0.5, labels, rng.integers(-1, k, 500)) for k in (3, 12, 30, 60)]
+    clusterings = [distinct[i] for i in pattern]
+    largest = max(np.unique(labels).size * np.unique(c).size for c in clusterings)
+    if cells != "default":
+        monkeypatch.setattr(evidence, "SCORED_CELLS", (65 if cells == "65_rows" else 129) * largest)
+    monkeypatch.setattr(evidence, "recentred", lambda values, estimate: values)
+    calls = []
+    real_scores = evidence.scores_from_tables
+    monkeypatch.setattr(evidence, "scores_from_tables", lambda tables, copies: calls.append(tables.shape) or
+                        real_scores(tables, copies))
+    ours = evidence.per_seed_resampled_scores(labels, clusterings, resamples=resamples, seed=2)
+    reference = _per_block_scores(labels, clusterings, resamples, seed=2)
+    # Memory: no call holds more than SCORED_CELLS cells, unless one block of the largest table alone exceeds it.
+    bound = max(evidence.SCORED_CELLS, evidence.ROWS_PER_DRAW * largest)
+    assert calls and all(rows * r * c <= bound for rows, r, c in calls), (calls, bound)
+    assert all(rows % evidence.ROWS_PER_DRAW == 0 for rows, _, _ in calls[:-len(set(pattern))])
+    for name in BOOTSTRAPPED:
+        assert ours[name].shape == (len(pattern), resamples)
+        for seed in range(len(pattern)):
+            np.testing.assert_array_equal(ours[name][seed], reference[name][seed], err_msg=name)

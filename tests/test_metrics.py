@@ -89,11 +89,23 @@ def test_non_finite_labels_are_refused_as_scikit_learn_refuses_them(bad):
     labels[3] = bad
     with pytest.raises(ValueError):
         skm.adjusted_rand_score(labels, CLUSTERS)
+    as_objects = LABELS.astype(object)
+    as_objects[7] = bad  # a Python float among Python ints, as a table read without a dtype gives
+    if np.isnan(bad):  # scikit-learn refuses NaN among objects; an infinite label is refused here all the same
+        with pytest.raises(ValueError):
+            skm.adjusted_rand_score(as_objects, CLUSTERS)
     for compute in (external_scores, noise_aware_scores):
         with pytest.raises(ValueError, match="must not contain NaN or infinity"):
             compute(labels, CLUSTERS)
         with pytest.raises(ValueError, match="must not contain NaN or infinity"):
             compute(LABELS, np.where(np.arange(300) == 5, bad, CLUSTERS.astype(float)))
+        with pytest.raises(ValueError, match="must not contain NaN or infinity"):
+            compute(as_objects, CLUSTERS)
+        with pytest.raises(ValueError, match="complex"):
+            compute(LABELS.astype(complex), CLUSTERS)
+    # Object labels without a NaN are scored as scikit-learn scores them.
+    words = np.array(["a", "b", "c", "d"], dtype=object)[LABELS]
+    assert external_scores(words, CLUSTERS)["ari"] == pytest.approx(skm.adjusted_rand_score(words, CLUSTERS), abs=1e-12)
 
 
 def test_thousands_of_clusters_agree_with_scikit_learn_to_1e_11():

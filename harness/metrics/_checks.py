@@ -23,11 +23,20 @@ def check_same_length(*arrays: np.ndarray, names: tuple[str, ...]) -> tuple[np.n
 
 
 def check_finite_labels(*arrays: np.ndarray, names: tuple[str, ...]) -> None:
-    """Labels of a float dtype must be finite: NaN would be counted as one more class (scikit-learn refuses it)."""
+    """Labels must not hold NaN or infinity (as floats, or as Python floats in an object array) nor complex
+    numbers: scikit-learn refuses them, and a contingency table would count each NaN as a class of its own."""
     for array, name in zip(arrays, names):
-        if np.issubdtype(array.dtype, np.floating) and not np.all(np.isfinite(array)):
-            raise ValueError(f"The '{name}' parameter must not contain NaN or infinity. "
-                             f"Got {int((~np.isfinite(array)).sum())} such values instead.")
+        if array.dtype.kind == "c":
+            raise ValueError(f"The '{name}' parameter must not hold complex numbers. Got dtype {array.dtype} instead.")
+        if array.dtype.kind == "f":
+            bad = int((~np.isfinite(array)).sum())
+        elif array.dtype.kind == "O":
+            bad = sum(1 for value in array.tolist()
+                      if isinstance(value, (float, np.floating)) and not np.isfinite(value))
+        else:
+            continue
+        if bad:
+            raise ValueError(f"The '{name}' parameter must not contain NaN or infinity. Got {bad} such values instead.")
 
 
 def check_positive(values: np.ndarray, name: str) -> np.ndarray:

@@ -119,7 +119,10 @@ def per_seed_resampled_scores(labels_true: np.ndarray, seed_clusterings: list[np
     # Every resample's table is scored on its own (no score mixes tables), so scoring the tables of many blocks in
     # one call gives each resample the value a call per block gives it (tests/test_evidence.py compares the two);
     # calls hold up to SCORED_CELLS table cells, so that memory stays bounded for large tables.
-    rows_per_call = max(ROWS_PER_DRAW, SCORED_CELLS // max(code.shape[0] * code.shape[1] for code in codes))
+    # (whole blocks: the rows of a call are a multiple of ROWS_PER_DRAW, at least one block; the tables of every
+    # distinct clustering are held until the call, so memory is their number times SCORED_CELLS)
+    largest = max(code.shape[0] * code.shape[1] for code in codes)
+    rows_per_call = max(ROWS_PER_DRAW, SCORED_CELLS // largest // ROWS_PER_DRAW * ROWS_PER_DRAW)
     pending: list[list[np.ndarray]] = [[] for _ in codes]
     pending_copies: list[np.ndarray] = []
     parts: list[list[dict[str, np.ndarray]]] = [[] for _ in codes]
