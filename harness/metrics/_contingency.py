@@ -24,7 +24,7 @@ class PairCodes:
     """Fixed integer codes of (label, cluster) pairs, so that any reweighting of texts gives a contingency table."""
 
     def __init__(self, labels_true: np.ndarray, labels_pred: np.ndarray):
-        self.label_values, true_codes = np.unique(labels_true, return_inverse=True)
+        _, true_codes = np.unique(labels_true, return_inverse=True)
         self.cluster_values, pred_codes = np.unique(labels_pred, return_inverse=True)
         self.shape = (int(true_codes.max()) + 1, int(pred_codes.max()) + 1)
         self.codes = true_codes * self.shape[1] + pred_codes

@@ -16,22 +16,6 @@ def adjusted_rand(labels_true: np.ndarray, labels_pred: np.ndarray) -> float:
     return float(skm.adjusted_rand_score(labels_true, labels_pred))
 
 
-def adjusted_mutual_info(labels_true: np.ndarray, labels_pred: np.ndarray) -> float:
-    labels_true, labels_pred = check_same_length(labels_true, labels_pred, names=("labels_true", "labels_pred"))
-    return float(skm.adjusted_mutual_info_score(labels_true, labels_pred))
-
-
-def normalized_mutual_info(labels_true: np.ndarray, labels_pred: np.ndarray) -> float:
-    labels_true, labels_pred = check_same_length(labels_true, labels_pred, names=("labels_true", "labels_pred"))
-    return float(skm.normalized_mutual_info_score(labels_true, labels_pred))
-
-
-def homogeneity_completeness_v(labels_true: np.ndarray, labels_pred: np.ndarray) -> tuple[float, float, float]:
-    labels_true, labels_pred = check_same_length(labels_true, labels_pred, names=("labels_true", "labels_pred"))
-    h, c, v = skm.homogeneity_completeness_v_measure(labels_true, labels_pred)
-    return float(h), float(c), float(v)
-
-
 EXTERNAL = ("ari", "ami", "nmi", "v_measure", "homogeneity", "completeness")
 
 
