@@ -11,6 +11,7 @@ from __future__ import annotations
 import os
 import signal
 from collections import Counter
+from typing import Callable, Optional
 
 VARIABLE = "HARNESS_CRASH_AT"
 ONCE_VARIABLE = "HARNESS_CRASH_ONCE"
@@ -18,7 +19,9 @@ POINTS = ("encode_batch", "umap_fit", "between_trials", "mlflow_write", "archive
 _reached: Counter = Counter()
 
 
-def crash_point(name: str) -> None:
+def crash_point(name: str, before: Optional[Callable[[], None]] = None) -> None:
+    """``before``: called just before the kill, to make the point what its name says (e.g. wait until queued
+    MLflow writes have landed, for a point defined as "after the write")."""
     wanted = os.environ.get(VARIABLE)
     if not wanted:
         return
@@ -33,4 +36,6 @@ def crash_point(name: str) -> None:
                 os.close(os.open(once, os.O_CREAT | os.O_EXCL | os.O_WRONLY))
             except FileExistsError:
                 return
+        if before is not None:
+            before()
         os.kill(os.getpid(), signal.SIGKILL)

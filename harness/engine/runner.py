@@ -362,7 +362,7 @@ def _log_trial(tracker, run_id: str, trial: Trial, corpus: Corpus, scores: dict[
         pd.DataFrame(table, columns=["cluster", "size", "median_tokens", "top_terms", "npmi"]).to_parquet(
             Path(folder) / "clusters.parquet", index=False)
         tracker.log_folder(run_id, Path(folder))
-    crash_point("mlflow_write")
+    crash_point("mlflow_write", before=tracker.flush)  # killed once the artifacts are in the store
     tracker.log_results(run_id, scores, tags=notes or None)
 
 
@@ -416,7 +416,7 @@ def _run_configuration(tracker, executor, configuration: list[Trial], done: dict
                 _log_trial(tracker, current, trial, corpus, scores, table, clusters, counts, notes)
                 tracker.end(current, "FINISHED")
                 result.seeds.append(TrialResult(trial, "FINISHED", scores, run_id=current, clusters=clusters))
-                crash_point("between_trials")
+                crash_point("between_trials", before=tracker.flush)  # killed once the trial is FINISHED in the store
                 if not result.descriptions:
                     result.descriptions = table
             except (KeyboardInterrupt, SystemExit):
@@ -472,7 +472,9 @@ def _log_winner_map(tracker, executor, ranking: "Ranking", corpus: Corpus, evide
         counts = executor.token_counts(trial)
         xy = executor.map_coordinates(trial)
         descriptions = cluster_descriptions(executor.term_counts(trial), first.clusters, counts, top=evidence.top_terms)
-        info = map_info(dataset=ranking.dataset, configuration=configuration.name, seed_run_id=first.run_id or "",
+        # After the map's fit: waiting here for the seed run's MLflow id lets the writer catch up meanwhile.
+        seed_run_id = tracker.run_id(first.run_id) if first.run_id else ""
+        info = map_info(dataset=ranking.dataset, configuration=configuration.name, seed_run_id=seed_run_id,
                         trial_key=trial.key, seed=trial.seed, n_texts=corpus.n_texts, descriptions=descriptions)
         with tempfile.TemporaryDirectory() as folder:
             points = Path(folder) / MAP_POINTS
@@ -648,12 +650,14 @@ def execute_sweep(
     from harness.engine.plan import configurations
     from harness.engine.stages import StageExecutor
     from harness.score.leaderboard import rank_configurations, ranking_metric, table as leaderboard_table
-    from harness.track.tracking import SweepTracker
+    from harness.track.queued import QueuedTracker, store_reader
 
     sweep = prepared.sweep
-    tracker = SweepTracker(tracking_uri, results_dir / "artifacts", sweep.name)
-    killed = tracker.mark_orphans_killed()
-    done = _reusable_runs(tracker, prepared.trials, corpora) if resume else {}
+    # Reads first, in this process; then every write goes through the writer process, in order.
+    reader = store_reader(tracking_uri, results_dir / "artifacts", sweep.name)
+    killed = reader.mark_orphans_killed() if reader is not None else 0
+    done = _reusable_runs(reader, prepared.trials, corpora) if resume and reader is not None else {}
+    tracker = QueuedTracker(tracking_uri, results_dir / "artifacts", sweep.name, reader)
     pending = [t for t in prepared.trials if t.key not in done]
     grid = sweep.grid.as_params()
     parent = tracker.start_run(sweep.name, None, "sweep",
@@ -689,6 +693,9 @@ def execute_sweep(
             results, halving_seeds, halving_work, halving_stages, halving_log = _halving_search(
                 tracker, prepared, corpora, done, parent, encode_progress, resume,
                 bar.update if bar else (lambda: None), executor)
+            for rounds in halving_log.values():
+                for entry in (c for r in rounds["rounds"] for c in r["configurations"]):
+                    entry["run_id"] = tracker.run_id(entry["run_id"])
             tracker.log_text(parent, json.dumps(halving_log, indent=2), HALVING_ARTIFACT)
         else:
             for configuration in configurations(prepared.trials):
@@ -720,6 +727,14 @@ def execute_sweep(
     finally:
         if bar is not None:
             bar.close()
+        tracker.close()
+    if tracker.error is not None:
+        raise HarnessError(tracker.error)
+    parent = tracker.resolved(parent)
+    for configuration in results:
+        configuration.run_id = tracker.resolved(configuration.run_id)
+    for seed in [*trial_results, *(r for c in results for r in c.seeds)]:
+        seed.run_id = tracker.resolved(seed.run_id)
     return SweepResult(parent_run_id=parent, tracking_uri=tracking_uri, results=trial_results, work=dict(executor.work),
                        rankings=rankings, configurations=results, stage_log=executor.stage_log, across=across)
 
@@ -734,7 +749,9 @@ def run_sweep_file(path: str | Path, results_dir: Path, tracking_uri: str | None
     from harness.track.tracking import default_tracking_uri
 
     from harness.track.tracking import check_reachable
+    from harness.track.queued import writer_process
 
+    writer_process()  # started first: its imports overlap loading the data and the models
     prepared = prepared_sweep(path)
     corpora = loaded_corpora(prepared)
     check_against_data(prepared, corpora)

@@ -12,7 +12,7 @@ import socket
 import tempfile
 import time
 from pathlib import Path
-from typing import Any, Iterable
+from typing import Any, Iterable, Optional
 
 from harness.errors import HarnessError
 from harness.track.runs_view import EXPERIMENT_KIND_TAG, MODEL_DEVELOPMENT, RANKING_VIEW_TAG, ranking_view_tag
@@ -71,10 +71,13 @@ def default_tracking_uri(results_dir: Path) -> str:
 class SweepTracker:
     """Creates and ends the runs of one sweep in one MLflow experiment."""
 
-    def __init__(self, tracking_uri: str, artifact_root: Path, experiment_name: str):
+    def __init__(self, tracking_uri: str, artifact_root: Path, experiment_name: str, *, owner_pid: Optional[int] = None):
+        """``owner_pid``: the process whose death leaves these runs orphaned (default this one; a writer process
+        that logs for a sweep names the sweep's)."""
         from mlflow.tracking import MlflowClient
 
         self.tracking_uri = tracking_uri
+        self.owner_pid = os.getpid() if owner_pid is None else owner_pid
         check_reachable(tracking_uri)
         self.client = MlflowClient(tracking_uri=tracking_uri)
         try:
@@ -136,7 +139,7 @@ class SweepTracker:
     def start_run(self, name: str, parent_id: str | None, kind: str, params: dict[str, Any], tags: dict[str, str],
                   trial_key: str | None = None) -> str:
         """Create a run (nested under ``parent_id`` when given) with its params; every run records its host and PID."""
-        tags = {KIND_TAG: kind, HOST_TAG: socket.gethostname(), PID_TAG: str(os.getpid()), **tags}
+        tags = {KIND_TAG: kind, HOST_TAG: socket.gethostname(), PID_TAG: str(self.owner_pid), **tags}
         if parent_id is not None:
             tags[PARENT_TAG] = parent_id
         if trial_key is not None:
@@ -165,7 +168,11 @@ class SweepTracker:
 
     def log_folder(self, run_id: str, folder: Path) -> None:
         """Every file of a folder as the run's artifacts, in one call."""
-        self.client.log_artifacts(run_id, str(folder))
+        self.log_folder_as(run_id, folder, None)
+
+    def log_folder_as(self, run_id: str, folder: Path, artifact_path: Optional[str]) -> None:
+        """Every file of a folder as the run's artifacts, under ``artifact_path`` (None: at the top)."""
+        self.client.log_artifacts(run_id, str(folder), artifact_path)
 
     def log_text(self, run_id: str, text: str, file_name: str) -> None:
         with tempfile.TemporaryDirectory() as folder:
