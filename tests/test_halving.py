@@ -11,6 +11,7 @@ from __future__ import annotations
 import itertools
 import json
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -137,6 +138,25 @@ def test_the_logged_survivors_follow_the_halving_rule_on_the_logged_scores(halvi
         cut = {name for name, run in by_round[index].items() if run.data.tags.get("harness.cut_at") == str(index)}
         assert cut == set(values) - kept
     assert not any("harness.cut_at" in r.data.tags for r in by_round[2].values())
+
+
+def test_the_halving_log_names_each_configurations_own_run(halving_and_grid):
+    """halving.json's run ids are the MLflow runs of the configurations it lists (written before the sweep's writes
+    have all landed, so each id must have been resolved, never left a reference)."""
+    from mlflow.tracking import MlflowClient
+
+    from harness.engine.runner import HALVING_ARTIFACT
+
+    _, uri = halving_and_grid
+    client = MlflowClient(tracking_uri=uri)
+    (sweep,) = [r for r in _runs(uri, "halved") if r.data.tags["harness.kind"] == "sweep"]
+    log = json.loads(Path(client.download_artifacts(sweep.info.run_id, HALVING_ARTIFACT)).read_text())
+    listed = [(r["round"], c) for d in log.values() for r in d["rounds"] for c in r["configurations"]]
+    ranked = [r for r in _runs(uri, "halved") if r.data.tags["harness.kind"] in ("round", "configuration")]
+    assert sorted(c["run_id"] for _, c in listed) == sorted(r.info.run_id for r in ranked)  # each run listed once
+    for index, entry in listed:
+        run = client.get_run(entry["run_id"])
+        assert run.data.params["round"] == str(index) and run.data.tags["mlflow.parentRunId"] == sweep.info.run_id
 
 
 def test_halving_finds_the_full_grids_winner_on_an_easy_corpus(halving_and_grid):

@@ -28,7 +28,7 @@ from harness.errors import HarnessError
 from harness.track.queued import QueuedTracker, sqlite_store_path, store_reader
 from harness.track.runs_view import RANKING_VIEW_TAG
 from harness.track.tracking import PARENT_TAG, PID_TAG, SweepTracker, default_tracking_uri
-from harness.track.writer import REF_PREFIX, serve
+from harness.track.writer import REF_PREFIX, SESSION_TAG, serve
 
 from conftest import write_sweep
 
@@ -124,6 +124,9 @@ def test_every_queued_write_lands_as_the_direct_write(tmp_path):
     assert len(ids) == 5 and all(len(i) == 32 for i in ids.values())
 
     direct, written = _store_contents(direct_uri, "same"), _store_contents(queued_uri, "same")
+    # The one addition: the writer session's tag, by which the runs are found if the writer dies.
+    sessions = {run["tags"].pop(SESSION_TAG) for name, run in written.items() if name != "experiment_tags"}
+    assert len(sessions) == 1
     assert set(direct) == set(written)
     for name in direct:
         assert written[name] == direct[name], name
@@ -230,33 +233,172 @@ def test_the_writer_applies_nothing_after_the_sweep_process_is_gone(tmp_path, di
     assert applied == ops[:min(dies_after, len(ops))]
 
 
-def test_the_writer_process_exits_when_the_sweep_process_is_killed(tmp_path):
-    """A sweep process killed with writes still queued: its writer ends too, and the run it left RUNNING is marked
-    KILLED by the next sweep (its PID tag is the dead process's)."""
+def _wait_gone(pid: int) -> bool:
+    """Whether the process ends (or is a zombie) within a minute: a bound on a wait, not a timing assertion."""
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline:
+        try:
+            if "zombie" in Path(f"/proc/{pid}/status").read_text():
+                return True
+        except FileNotFoundError:
+            return True
+        time.sleep(0.1)
+    return False
+
+
+def test_the_writer_stops_when_the_sweep_process_is_killed(tmp_path):
+    """The sweep process queues 300 writes while its writer is paused (as a starved writer is), then dies. Resumed,
+    the writer reads them all (they are in the pipe) and must apply none: it stops with the sweep. Its run stays
+    RUNNING, with the dead process's PID, for the next sweep to mark KILLED."""
+    import signal
+
     script = f"""
-import os, signal, sys
+import os, signal
 from pathlib import Path
 from harness.track.queued import QueuedTracker, writer_process
 tracker = QueuedTracker({default_tracking_uri(tmp_path)!r}, Path({str(tmp_path / 'artifacts')!r}), "killed")
 run = tracker.start_run("sweep", None, "sweep", {{}}, {{}})
 tracker.flush()
-for i in range(2000):
+writer = writer_process()
+print(writer.process.pid, flush=True)
+os.kill(writer.process.pid, signal.SIGSTOP)
+for i in range(300):
     tracker.log_results(run, {{f"m{{i}}": float(i)}})
-print(writer_process().process.pid, flush=True)
+while not writer.lines.empty():  # every line handed to the pipe
+    pass
 os.kill(os.getpid(), signal.SIGKILL)
 """
-    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=120)
-    assert done.returncode == -9, done.stderr[-2000:]
-    writer_pid = int(done.stdout.split()[0])
-    deadline = time.monotonic() + 60
-    while Path(f"/proc/{writer_pid}").exists() and time.monotonic() < deadline:
-        status = Path(f"/proc/{writer_pid}/status").read_text() if Path(f"/proc/{writer_pid}").exists() else ""
-        if "zombie" in status:
-            break
-        time.sleep(0.1)
-    assert not Path(f"/proc/{writer_pid}").exists() or "zombie" in Path(f"/proc/{writer_pid}/status").read_text()
+    sweep = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.PIPE, text=True)
+    writer_pid = int(sweep.stdout.readline())
+    assert sweep.wait(timeout=120) == -9
+    os.kill(writer_pid, signal.SIGCONT)
+    assert _wait_gone(writer_pid)
+    from mlflow.tracking import MlflowClient
+
+    client = MlflowClient(tracking_uri=default_tracking_uri(tmp_path))
+    (run,) = client.search_runs([client.get_experiment_by_name("killed").experiment_id])
+    assert run.info.status == "RUNNING" and len(run.data.metrics) <= 2  # the 300 were not applied (one may have been)
     reader = SweepTracker(default_tracking_uri(tmp_path), tmp_path / "artifacts", "killed")
     assert reader.mark_orphans_killed() == 1
+
+
+def test_a_writer_that_dies_leaves_no_run_running_in_a_living_process(tmp_path):
+    """The writer is killed while this process lives on (a notebook): the error is one line, and the runs it had made
+    are ended KILLED from here (no later start would: their owner is alive)."""
+    import signal
+
+    from mlflow.tracking import MlflowClient
+
+    from harness.track import queued
+
+    uri = default_tracking_uri(tmp_path)
+    tracker = QueuedTracker(uri, tmp_path / "artifacts", "lost")
+    parent = tracker.start_run("sweep", None, "sweep", {}, {})
+    tracker.start_run("seed", parent, "trial", {}, {})
+    tracker.flush()
+    writer = queued.writer_process()
+    os.kill(writer.process.pid, signal.SIGKILL)
+    writer.process.wait()
+    with pytest.raises(HarnessError, match=r"^tracking store .*: the writer process stopped \(exit status -9\)$"):
+        tracker.log_results(parent, {"ari": 1.0})
+    tracker.close()
+    client = MlflowClient(tracking_uri=uri)
+    runs = client.search_runs([client.get_experiment_by_name("lost").experiment_id])
+    assert sorted(r.info.status for r in runs) == ["KILLED", "KILLED"]
+    assert queued.writer_process().alive()  # the next sweep gets a new writer
+
+
+def test_half_a_command_ends_every_open_session_with_its_runs_killed(tmp_path):
+    """A line cut short (the sweep's process interrupted while sending) cannot be said to belong to a session:
+    every open session fails, its runs KILLED, and each is told."""
+    import io
+
+    from mlflow.tracking import MlflowClient
+
+    uri = default_tracking_uri(tmp_path)
+    common = {"uri": uri, "open_uri": uri, "artifact_root": str(tmp_path / "artifacts"), "owner_pid": os.getpid(),
+              "environ": dict(os.environ)}
+    lines = [json.dumps({"session": "a", "op": "open", "experiment": "a", **common}),
+             json.dumps({"session": "b", "op": "open", "experiment": "b", **common}),
+             json.dumps({"session": "a", "op": "start_run", "ref": "pending-a-0", "name": "r", "parent": None,
+                         "kind": "sweep", "params": {}, "tags": {}, "trial_key": None}),
+             '{"session": "b", "op": "sta',
+             json.dumps({"session": "a", "op": "log", "run": "pending-a-0", "metrics": {"x": 1.0}, "tags": {}}),
+             json.dumps({"session": "a", "op": "close", "token": 0})]
+    commands: queue.Queue = queue.Queue()
+    for line in lines + [None]:
+        commands.put(line.encode() if line else None)
+    out = io.StringIO()
+    serve(commands, threading.Event(), out)
+    answers = [json.loads(line) for line in out.getvalue().splitlines()]
+    assert [(a["session"], a["kind"]) for a in answers] == [("a", "error"), ("b", "error"), ("a", "close")]
+    assert "could not be read" in answers[0]["error"] and answers[2]["error"] == answers[0]["error"]
+    client = MlflowClient(tracking_uri=uri)
+    (run,) = client.search_runs([client.get_experiment_by_name("a").experiment_id])
+    assert run.info.status == "KILLED" and "x" not in run.data.metrics  # nothing applied after the bad line
+
+
+def test_the_writer_runs_this_harness_whatever_the_working_folder_holds(tmp_path, monkeypatch):
+    from harness.track import queued
+
+    fake = tmp_path / "elsewhere" / "harness"
+    fake.mkdir(parents=True)
+    (fake / "__init__.py").write_text("raise ImportError('the wrong harness')\n")
+    monkeypatch.chdir(tmp_path / "elsewhere")
+    writer = queued._WriterProcess()
+    try:
+        monkeypatch.setattr(queued, "_writer", writer)
+        tracker = QueuedTracker(default_tracking_uri(tmp_path), tmp_path / "artifacts", "here")
+        tracker.start_run("sweep", None, "sweep", {}, {})
+        tracker.flush()
+        tracker.close()
+        assert tracker.error is None
+    finally:
+        writer.stop()
+
+
+def test_relative_paths_are_the_sweeps_own_folder_not_the_writers(tmp_path, monkeypatch):
+    """One writer serves a process's sweeps: a relative store and artifact folder are resolved in the sweep's own
+    working folder at each sweep, not in the folder the writer started in."""
+    from mlflow.tracking import MlflowClient
+
+    for folder in ("first", "second"):
+        (tmp_path / folder).mkdir()
+        monkeypatch.chdir(tmp_path / folder)
+        tracker = QueuedTracker("sqlite:///mlflow.db", Path("artifacts"), "relative")
+        run = tracker.start_run("sweep", None, "sweep", {}, {})
+        tracker.log_text(run, "hello", "note.txt")
+        tracker.end(run, "FINISHED")
+        tracker.close()
+        assert tracker.error is None
+    for folder in ("first", "second"):
+        client = MlflowClient(tracking_uri=f"sqlite:///{tmp_path / folder / 'mlflow.db'}")
+        experiment = client.get_experiment_by_name("relative")
+        assert experiment.artifact_location == (tmp_path / folder / "artifacts" / "relative").as_uri()
+        (run,) = client.search_runs([experiment.experiment_id])
+        assert client.list_artifacts(run.info.run_id)[0].path == "note.txt"
+
+
+def test_the_sweep_process_environment_is_the_writers_at_each_session(tmp_path, monkeypatch):
+    """MLflow reads its settings (credentials, timeouts) from the environment when it writes: the writer takes the
+    sweep process's environment as it is when each session opens, not as it was when the writer started."""
+    from harness.track import queued, writer
+
+    sent = []
+    monkeypatch.setattr(queued._WriterProcess, "send", lambda self, command: sent.append(command))
+    monkeypatch.setenv("HARNESS_PROBE_VARIABLE", "set after the writer started")
+    QueuedTracker(default_tracking_uri(tmp_path), tmp_path / "artifacts", "environment")
+    (opened,) = [c for c in sent if c["op"] == "open"]
+    assert opened["environ"] == dict(os.environ)
+
+    before = dict(os.environ)
+    try:
+        session = writer._Session({**opened, "environ": {**before, "HARNESS_PROBE_VARIABLE": "the session's"}})
+        session.open()
+        assert os.environ["HARNESS_PROBE_VARIABLE"] == "the session's"
+    finally:
+        os.environ.clear()
+        os.environ.update(before)
 
 
 @pytest.mark.parametrize("uri, path", [
@@ -339,6 +481,28 @@ def test_a_store_failing_during_a_sweep_stops_it_with_one_line_and_no_run_left_r
     assert main(["run", str(sweep), "--results-dir", str(results), "--no-progress"]) == 2
     err = capsys.readouterr().err.strip()
     assert err.startswith(f"harness: error: tracking store {uri}: ") and len(err.splitlines()) == 1, err
+    client = MlflowClient(tracking_uri=uri)
+    runs = client.search_runs([client.get_experiment_by_name("ids").experiment_id])
+    assert runs and all(r.info.status == "KILLED" for r in runs)
+
+
+def test_a_store_error_that_arrives_only_at_the_end_still_fails_the_sweep(tmp_path, tiny_model_dir, monkeypatch):
+    """The writer's error can come back after the sweep's last write (the writer is behind): close() holds it, and
+    the sweep must raise it rather than return results whose runs the store does not hold. Simulated by keeping
+    every error from coming back before close."""
+    from mlflow.tracking import MlflowClient
+
+    from harness.engine.runner import run_sweep_file
+
+    monkeypatch.setattr(QueuedTracker, "_raise_reported", lambda self: None)
+    sweep = write_sweep(tmp_path, SWEEP.format(model=tiny_model_dir))
+    results = tmp_path / "results"
+    results.mkdir()
+    uri = default_tracking_uri(results)
+    SweepTracker(uri, results / "artifacts", "ids")
+    (results / "artifacts" / "ids").write_text("a file where the runs' artifact folders should go")
+    with pytest.raises(HarnessError, match=r"^tracking store "):
+        run_sweep_file(sweep, results)
     client = MlflowClient(tracking_uri=uri)
     runs = client.search_runs([client.get_experiment_by_name("ids").experiment_id])
     assert runs and all(r.info.status == "KILLED" for r in runs)

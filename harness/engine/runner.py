@@ -676,6 +676,9 @@ def execute_sweep(
     results: list[ConfigurationResult] = []
     scored, evidence_of = None, None
     try:
+        # Wait until the store holds the sweep run: a store that cannot be written fails here, before any
+        # computation, and a sweep killed from now on leaves its run for the next start to mark KILLED.
+        tracker.flush()
         if dask_client is not None and not halving:
             from harness.engine.distributed import precompute_on_cluster
             from harness.engine.distributed_encode import encode_on_cluster

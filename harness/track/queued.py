@@ -33,18 +33,28 @@ from pathlib import Path
 from typing import Any, Iterable, Optional
 
 from harness.errors import HarnessError
-from harness.track.writer import REF_PREFIX
+from harness.track.writer import REF_PREFIX, SESSION_TAG
 
 
 class _WriterProcess:
-    """One writer process per sweep process, shared by its sweeps one after another (its imports paid once)."""
+    """One writer process per sweep process, shared by its sweeps one after another (its imports paid once).
+
+    Lines go to it from a sender thread: the caller only queues them, so an interrupt (Ctrl-C) in the caller can
+    never leave half a line on the pipe, and a writer slow to read never blocks the sweep."""
 
     def __init__(self) -> None:
-        self.process = subprocess.Popen([sys.executable, "-m", "harness.track.writer"], stdin=subprocess.PIPE,
-                                        stdout=subprocess.PIPE)
+        import harness
+
+        # -P and the package's own folder first: the writer runs this harness, never one found in the working folder.
+        source = str(Path(harness.__file__).resolve().parent.parent)
+        path = os.pathsep.join([source, *filter(None, [os.environ.get("PYTHONPATH")])])
+        self.process = subprocess.Popen([sys.executable, "-P", "-m", "harness.track.writer"], stdin=subprocess.PIPE,
+                                        stdout=subprocess.PIPE, env={**os.environ, "PYTHONPATH": path})
         self.replies: dict[str, "queue.Queue[dict]"] = {}
-        self.lock = threading.Lock()
+        self.lines: "queue.Queue[Optional[bytes]]" = queue.Queue()
+        self.broken = False
         threading.Thread(target=self._route_replies, daemon=True).start()
+        threading.Thread(target=self._send_lines, daemon=True).start()
 
     def _route_replies(self) -> None:
         for line in self.process.stdout:
@@ -56,18 +66,27 @@ class _WriterProcess:
             if box is not None:
                 box.put(reply)
 
+    def _send_lines(self) -> None:
+        while (line := self.lines.get()) is not None:
+            try:
+                self.process.stdin.write(line)
+                self.process.stdin.flush()
+            except OSError:
+                self.broken = True
+                return
+
     def alive(self) -> bool:
-        return self.process.poll() is None
+        return not self.broken and self.process.poll() is None
 
     def send(self, command: dict) -> None:
-        data = (json.dumps(command) + "\n").encode()
-        with self.lock:  # a buffered write of the whole line, then flushed: never a partial line on the pipe
-            self.process.stdin.write(data)
-            self.process.stdin.flush()
+        if not self.alive():
+            raise BrokenPipeError("the writer process has stopped")
+        self.lines.put((json.dumps(command) + "\n").encode())
 
     def stop(self) -> None:
         """End the writer at this process's exit. A closed session's commands are all applied by then; one never
         closed belongs to a sweep that did not finish, whose writes stop here as if this process had died."""
+        self.lines.put(None)
         try:
             self.process.stdin.close()
         except OSError:
@@ -98,6 +117,15 @@ def sqlite_store_path(tracking_uri: str) -> Optional[Path]:
     return Path(location) if location and location != ":memory:" else None
 
 
+def _absolute_uri(tracking_uri: str) -> str:
+    """A ``sqlite:///`` store's URI with its file's absolute path; any other URI as it is."""
+    path = sqlite_store_path(tracking_uri)
+    if path is None or path.is_absolute():
+        return tracking_uri
+    query = tracking_uri.partition("?")[2]
+    return f"sqlite:///{path.resolve()}" + (f"?{query}" if query else "")
+
+
 def store_reader(tracking_uri: str, artifact_root: Path, experiment_name: str):
     """The store opened for reading in this process, or None where it is a SQLite file that does not exist yet: a
     store not yet created holds no run to reuse and no orphan to mark (and opening it would create it here)."""
@@ -126,8 +154,11 @@ class QueuedTracker:
         self._writer = writer_process()
         self._replies: "queue.Queue[dict]" = queue.Queue()
         self._writer.replies[self._session] = self._replies
-        self._send("open", uri=tracking_uri, artifact_root=str(artifact_root), experiment=experiment_name,
-                   owner_pid=os.getpid())
+        # Paths resolved and the environment sent here: the writer was started in another folder and environment
+        # (by an earlier sweep of this process), and MLflow reads both (relative store paths, credentials).
+        self._send("open", uri=tracking_uri, open_uri=_absolute_uri(tracking_uri),
+                   artifact_root=str(Path(artifact_root).resolve()), experiment=experiment_name,
+                   owner_pid=os.getpid(), environ=dict(os.environ))
 
     # -- sending -------------------------------------------------------------------------------------------
     def _send(self, op: str, **fields: Any) -> None:
@@ -192,8 +223,8 @@ class QueuedTracker:
                   trial_key: Optional[str] = None) -> str:
         ref = f"{REF_PREFIX}{self._session[:12]}-{next(self._refs)}"
         self._send("start_run", ref=ref, name=name, parent=parent_id, kind=kind,
-                   params={k: str(v) for k, v in params.items()}, tags={k: str(v) for k, v in tags.items()},
-                   trial_key=trial_key)
+                   params={k: str(v) for k, v in params.items()},
+                   tags={**{k: str(v) for k, v in tags.items()}, SESSION_TAG: self._session}, trial_key=trial_key)
         return ref
 
     def log_results(self, run_id: str, metrics: dict[str, float], tags: Optional[dict[str, str]] = None) -> None:
@@ -271,7 +302,23 @@ class QueuedTracker:
             self._closed = True
             self._writer.replies.pop(self._session, None)
             shutil.rmtree(self._staging, ignore_errors=True)
+            if not self._writer.alive():
+                self._end_left_running()
         return dict(self._ids)
+
+    def _end_left_running(self) -> None:
+        """The writer died with this process alive: its runs would stay RUNNING (their owner lives), so end them
+        KILLED from here, found by this session's tag."""
+        try:
+            reader = self._reader
+            if reader is None:
+                from harness.track.tracking import SweepTracker
+
+                reader = SweepTracker(self.tracking_uri, self._artifact_root, self._experiment_name)
+            for run in reader._runs(f"attributes.status = 'RUNNING' and tags.`{SESSION_TAG}` = '{self._session}'"):
+                reader.client.set_terminated(run.info.run_id, status="KILLED")
+        except Exception:  # the store itself may be what is broken: the error already says so
+            pass
 
     @property
     def error(self) -> Optional[str]:

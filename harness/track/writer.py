@@ -21,6 +21,7 @@ from pathlib import Path
 from typing import Any, Optional, TextIO
 
 REF_PREFIX = "pending-"  # a run reference, never an MLflow run id (32 hexadecimal digits)
+SESSION_TAG = "harness.log_session"  # on every run a writer session makes: how its runs are found if the writer dies
 
 
 class _Session:
@@ -44,7 +45,9 @@ class _Session:
         from harness.track.tracking import SweepTracker
 
         opened = self.command
-        self.tracker = SweepTracker(opened["uri"], Path(opened["artifact_root"]), opened["experiment"],
+        os.environ.clear()
+        os.environ.update(opened["environ"])
+        self.tracker = SweepTracker(opened["open_uri"], Path(opened["artifact_root"]), opened["experiment"],
                                     owner_pid=opened["owner_pid"])
 
     def apply(self, command: dict) -> None:
@@ -106,8 +109,17 @@ def serve(commands: "queue.Queue[Optional[bytes]]", gone: threading.Event, out: 
         line = commands.get()
         if line is None or gone.is_set():
             return
-        command = json.loads(line)
-        name, op = command["session"], command["op"]
+        try:
+            command = json.loads(line)
+            name, op = command["session"], command["op"]
+        except (ValueError, KeyError, TypeError) as err:
+            # Not a whole command (the sweep's process was interrupted while sending): whose it was is unknown,
+            # so every open session ends here, its runs KILLED, rather than go on with a write missing.
+            for name, session in sessions.items():
+                if session.error is None:
+                    session.fail(ValueError(f"a command could not be read ({err})"))
+                    _answer(out, session=name, kind="error", error=session.error)
+            continue
         if op == "open":
             session = sessions[name] = _Session(command)
             try:
