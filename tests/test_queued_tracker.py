@@ -506,3 +506,20 @@ def test_a_store_error_that_arrives_only_at_the_end_still_fails_the_sweep(tmp_pa
     client = MlflowClient(tracking_uri=uri)
     runs = client.search_runs([client.get_experiment_by_name("ids").experiment_id])
     assert runs and all(r.info.status == "KILLED" for r in runs)
+
+
+def test_a_store_that_cannot_be_written_fails_the_sweep_before_any_computation(tmp_path, tiny_model_dir, capsys):
+    """The sweep waits for its sweep run to be in the store before it computes: a store that cannot be created
+    is one line and exit 2, with nothing computed or cached (not found an hour later, after a forward pass)."""
+    from harness.cli import main
+    from harness.engine.cache import StageCache
+
+    sweep = write_sweep(tmp_path, SWEEP.format(model=tiny_model_dir))
+    blocker = tmp_path / "blocker"
+    blocker.write_text("a file where the store's folder should be")
+    uri = f"sqlite:///{blocker / 'mlflow.db'}"
+    results = tmp_path / "results"
+    assert main(["run", str(sweep), "--results-dir", str(results), "--tracking-uri", uri, "--no-progress"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith(f"harness: error: tracking store {uri}: ") and len(err.splitlines()) == 1, err
+    assert not (results / "cache").exists() or not StageCache(results / "cache").entries()
