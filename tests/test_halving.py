@@ -146,6 +146,7 @@ def test_the_halving_log_names_each_configurations_own_run(halving_and_grid):
     from mlflow.tracking import MlflowClient
 
     from harness.engine.runner import HALVING_ARTIFACT
+    from harness.score.across_corpora import configuration_label
 
     _, uri = halving_and_grid
     client = MlflowClient(tracking_uri=uri)
@@ -157,6 +158,7 @@ def test_the_halving_log_names_each_configurations_own_run(halving_and_grid):
     for index, entry in listed:
         run = client.get_run(entry["run_id"])
         assert run.data.params["round"] == str(index) and run.data.tags["mlflow.parentRunId"] == sweep.info.run_id
+        assert configuration_label(run.info.run_name) == entry["configuration"]  # the entry's own configuration
 
 
 def test_halving_finds_the_full_grids_winner_on_an_easy_corpus(halving_and_grid):

@@ -168,6 +168,23 @@ def test_a_read_sees_every_write_sent_before_it(tmp_path):
     assert tracker.resolved(parent) == ids[parent] and tracker.resolved("0" * 32) == "0" * 32 and tracker.resolved(None) is None
 
 
+def test_a_run_made_just_before_the_store_failed_is_killed_too(tmp_path):
+    """start_run creates the run, then logs its params: when the params fail, the run exists without the writer
+    having its id; it must still end KILLED (found by its session's tag), not stay RUNNING with a live owner."""
+    from mlflow.tracking import MlflowClient
+
+    uri = default_tracking_uri(tmp_path)
+    tracker = QueuedTracker(uri, tmp_path / "artifacts", "half made")
+    parent = tracker.start_run("sweep", None, "sweep", {}, {})
+    tracker.start_run("seed", parent, "trial", {"p" * 300: 1}, {})  # MLflow refuses a param key over 250 characters
+    with pytest.raises(HarnessError, match="tracking store"):
+        tracker.flush()
+    tracker.close()
+    client = MlflowClient(tracking_uri=uri)
+    runs = client.search_runs([client.get_experiment_by_name("half made").experiment_id])
+    assert {r.info.run_name: r.info.status for r in runs} == {"sweep": "KILLED", "seed": "KILLED"}
+
+
 def test_a_store_error_arrives_as_one_line_and_leaves_no_run_running(tmp_path):
     from mlflow.tracking import MlflowClient
 
@@ -270,8 +287,11 @@ os.kill(os.getpid(), signal.SIGKILL)
 """
     sweep = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.PIPE, text=True)
     writer_pid = int(sweep.stdout.readline())
-    assert sweep.wait(timeout=120) == -9
-    os.kill(writer_pid, signal.SIGCONT)
+    try:
+        assert sweep.wait(timeout=120) == -9
+    finally:  # whatever happened, neither is left behind (a stopped writer, a spinning sweep)
+        sweep.kill()
+        os.kill(writer_pid, signal.SIGCONT)
     assert _wait_gone(writer_pid)
     from mlflow.tracking import MlflowClient
 
@@ -292,6 +312,9 @@ def test_a_writer_that_dies_leaves_no_run_running_in_a_living_process(tmp_path):
     from harness.track import queued
 
     uri = default_tracking_uri(tmp_path)
+    other = QueuedTracker(uri, tmp_path / "artifacts", "lost")  # another sweep's run, still going: not this one's
+    other.start_run("another sweep", None, "sweep", {}, {})
+    other.flush()
     tracker = QueuedTracker(uri, tmp_path / "artifacts", "lost")
     parent = tracker.start_run("sweep", None, "sweep", {}, {})
     tracker.start_run("seed", parent, "trial", {}, {})
@@ -304,7 +327,7 @@ def test_a_writer_that_dies_leaves_no_run_running_in_a_living_process(tmp_path):
     tracker.close()
     client = MlflowClient(tracking_uri=uri)
     runs = client.search_runs([client.get_experiment_by_name("lost").experiment_id])
-    assert sorted(r.info.status for r in runs) == ["KILLED", "KILLED"]
+    assert {r.info.run_name: r.info.status for r in runs} == {"sweep": "KILLED", "seed": "KILLED", "another sweep": "RUNNING"}
     assert queued.writer_process().alive()  # the next sweep gets a new writer
 
 

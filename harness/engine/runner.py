@@ -669,13 +669,13 @@ def execute_sweep(
          "harness.question": sweep.question, "harness.reused_trials": str(len(prepared.trials) - len(pending)),
          "harness.orphans_marked_killed": str(killed)})
     tracker.show_ranking(parent, sorted({ranking_metric(sweep.rank_by, c.labels is not None) for c in corpora.values()}))
-    halving = sweep.search.strategy == "halving"
-    executor = StageExecutor(corpora, prepared.trials, StageCache(cache_dir) if cache_dir else None, encode_progress)
-    params = aligned_params(prepared.trials)
-    bar = progress(total=len(pending), desc="trials", unit="trial") if progress else None
     results: list[ConfigurationResult] = []
-    scored, evidence_of = None, None
+    scored, evidence_of, bar = None, None, None
     try:
+        halving = sweep.search.strategy == "halving"
+        executor = StageExecutor(corpora, prepared.trials, StageCache(cache_dir) if cache_dir else None, encode_progress)
+        params = aligned_params(prepared.trials)
+        bar = progress(total=len(pending), desc="trials", unit="trial") if progress else None
         # Wait until the store holds the sweep run: a store that cannot be written fails here, before any
         # computation, and a sweep killed from now on leaves its run for the next start to mark KILLED.
         tracker.flush()

@@ -71,7 +71,7 @@ class _WriterProcess:
             try:
                 self.process.stdin.write(line)
                 self.process.stdin.flush()
-            except OSError:
+            except (OSError, ValueError):  # the writer gone, or its pipe closed by stop() at exit
                 self.broken = True
                 return
 
@@ -86,13 +86,13 @@ class _WriterProcess:
     def stop(self) -> None:
         """End the writer at this process's exit. A closed session's commands are all applied by then; one never
         closed belongs to a sweep that did not finish, whose writes stop here as if this process had died."""
+        self.process.kill()  # first: a sender thread blocked on a full pipe then fails at once, and never hangs here
+        self.process.wait()
         self.lines.put(None)
         try:
             self.process.stdin.close()
-        except OSError:
+        except (OSError, ValueError):
             pass
-        self.process.kill()
-        self.process.wait()
 
 
 _writer: Optional[_WriterProcess] = None
@@ -158,7 +158,7 @@ class QueuedTracker:
         # (by an earlier sweep of this process), and MLflow reads both (relative store paths, credentials).
         self._send("open", uri=tracking_uri, open_uri=_absolute_uri(tracking_uri),
                    artifact_root=str(Path(artifact_root).resolve()), experiment=experiment_name,
-                   owner_pid=os.getpid(), environ=dict(os.environ))
+                   owner_pid=os.getpid(), environ=dict(os.environ), staging=str(self._staging))
 
     # -- sending -------------------------------------------------------------------------------------------
     def _send(self, op: str, **fields: Any) -> None:

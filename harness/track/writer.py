@@ -87,12 +87,18 @@ class _Session:
         else:
             said = f"{type(err).__name__}: {lines[0]}" if lines else type(err).__name__
             self.error = f"tracking store {self.command['uri']}: {said}"
-        for run_id in self.open_runs.values():
-            if self.tracker is None:
-                break
+        if self.tracker is None:
+            return
+        try:
+            # Also a run whose creation went through and whose params then failed (not yet in open_runs).
+            found = {r.info.run_id for r in self.tracker._runs(
+                f"attributes.status = 'RUNNING' and tags.`{SESSION_TAG}` = '{self.command['session']}'")}
+        except Exception:  # the store itself may be what failed: the next sweep marks these orphans
+            found = set()
+        for run_id in set(self.open_runs.values()) | found:
             try:
                 self.tracker.end(run_id, "KILLED")
-            except Exception:  # the store itself may be what failed: the next sweep marks these orphans
+            except Exception:
                 pass
         self.open_runs.clear()
 
@@ -108,6 +114,9 @@ def serve(commands: "queue.Queue[Optional[bytes]]", gone: threading.Event, out: 
     while True:
         line = commands.get()
         if line is None or gone.is_set():
+            for session in sessions.values():  # the copies of artifacts it will never log
+                if session.command.get("staging"):
+                    shutil.rmtree(session.command["staging"], ignore_errors=True)
             return
         try:
             command = json.loads(line)
