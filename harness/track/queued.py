@@ -167,9 +167,11 @@ class QueuedTracker:
         try:
             self._writer.send({"session": self._session, "op": op, **fields})
         except OSError:
-            self._fail(f"tracking store {self.tracking_uri}: the writer process stopped "
-                       f"(exit status {self._writer.process.poll()})")
+            self._fail(self._writer_stopped())
         self._raise_reported()
+
+    def _writer_stopped(self) -> str:
+        return f"tracking store {self.tracking_uri}: the writer process stopped (exit status {self._writer.process.poll()})"
 
     def _fail(self, message: str) -> None:
         self._error = self._error or message
@@ -197,16 +199,14 @@ class QueuedTracker:
         try:
             self._writer.send({"session": self._session, "op": op, "token": token})
         except OSError:
-            self._error = self._error or (f"tracking store {self.tracking_uri}: the writer process stopped "
-                                          f"(exit status {self._writer.process.poll()})")
+            self._error = self._error or self._writer_stopped()
             return
         while True:
             try:
                 reply = self._replies.get(timeout=1.0)
             except queue.Empty:
                 if not self._writer.alive():
-                    self._error = self._error or (f"tracking store {self.tracking_uri}: the writer process stopped "
-                                                  f"(exit status {self._writer.process.poll()})")
+                    self._error = self._error or self._writer_stopped()
                     return
                 continue
             self._take(reply)
