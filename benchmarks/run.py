@@ -58,6 +58,19 @@ def median_seconds(action, repeats: int) -> float:
     return statistics.median(times)
 
 
+def interleaved_seconds(actions: dict[str, Callable[[], None]], repeats: int) -> dict[str, list[float]]:
+    """Each action's seconds in each of ``repeats`` rounds; round r runs the actions rotated by r places, so that
+    none always runs first (after the others' allocations) or always last."""
+    names = list(actions)
+    seconds: dict[str, list[float]] = {name: [] for name in names}
+    for r in range(repeats):
+        for name in names[r % len(names):] + names[:r % len(names)]:
+            started = time.perf_counter()
+            actions[name]()
+            seconds[name].append(time.perf_counter() - started)
+    return seconds
+
+
 def corpus_texts(n_texts: int) -> list[str]:
     from harness.datasets import SyntheticSource, loaded_corpus
 
@@ -115,9 +128,13 @@ def encode_figures(n_texts: int, repeats: int) -> dict:
                 encoder.transformer(**inputs)
 
     single_encode()  # warm-up: first-call allocations
-    t_tool = median_seconds(tool, repeats)
-    t_encode = median_seconds(single_encode, repeats)
-    t_bare = median_seconds(bare_forward, repeats)
+    # Side by side: each round times the three once, in an order that turns each round, and each ratio is the
+    # median of its rounds' ratios. Timing all of one, then all of the next, let a slower minute of this shared
+    # machine land on one side only (forward_efficiency read 0.91 and 0.77 in two runs 8 minutes apart).
+    rounds = interleaved_seconds({"tool": tool, "single": single_encode, "bare": bare_forward}, repeats)
+    t_tool, t_encode, t_bare = (statistics.median(rounds[name]) for name in ("tool", "single", "bare"))
+    over_single = statistics.median(t / e for t, e in zip(rounds["tool"], rounds["single"]))
+    efficiency = statistics.median(b / t for b, t in zip(rounds["bare"], rounds["tool"]))
     # The user's loop is 12 passes of two kinds, each kind's passes costing the same (the pooling is a negligible
     # share of a pass): one of each kind is timed and multiplied by its count, instead of timing all 12.
     t_last = median_seconds(lambda: user_loop_last_layer("mean"), repeats)
@@ -125,17 +142,19 @@ def encode_figures(n_texts: int, repeats: int) -> dict:
     n_last, n_other = len(POOLINGS), len(POOLINGS) * (len(LAYERS) - 1)
     t_loop = n_last * t_last + n_other * t_other
     return {
-        "variants_over_single_encode": {"value": t_tool / t_encode, "target": "<= 1.05", "met": t_tool / t_encode <= 1.05,
-                                        "seconds": {"tool_12_variants": t_tool, "single_encode": t_encode}},
+        "variants_over_single_encode": {"value": over_single, "target": "<= 1.05", "met": over_single <= 1.05,
+                                        "seconds": {"tool_12_variants": t_tool, "single_encode": t_encode},
+                                        "rounds": rounds, "note": "median over interleaved rounds of tool / single"},
         "loop_over_variants": {"value": t_loop / t_tool, "target": ">= 8", "met": t_loop / t_tool >= 8,
                                "seconds": {"user_loop_12_variants_estimated": t_loop, "tool_12_variants": t_tool,
                                            "one_last_layer_encode": t_last, "one_hidden_states_pass": t_other},
                                "note": f"user loop estimated as {n_last} x one last-layer encode + {n_other} x one "
                                        "hidden-states pass, each timed on the same texts"},
-        "forward_efficiency": {"value": t_bare / t_tool, "target": ">= 0.95", "met": t_bare / t_tool >= 0.95,
+        "forward_efficiency": {"value": efficiency, "target": ">= 0.95", "met": efficiency >= 0.95,
                                "seconds": {"bare_forward": t_bare, "tool_12_variants": t_tool},
-                               "note": "throughput ratio = bare seconds / tool seconds; the tool's time includes tokenising, "
-                                       "counting tokens, hidden states and pooling 12 variants"},
+                               "note": "throughput ratio = bare seconds / tool seconds, median over interleaved rounds; "
+                                       "the tool's time includes tokenising, counting tokens, hidden states and "
+                                       "pooling 12 variants"},
         "texts": n_texts,
     }
 
@@ -244,8 +263,10 @@ def onnx_figures(n_texts: int, repeats: int) -> dict:
         int8 = onnx_encoder(encoder, Path(folder), int8=True)
         variant = [("last", "mean")]
         pooled_variants(int8, texts[:64], variant, batch_size=64)  # warm-up
-        t_torch = median_seconds(lambda: pooled_variants(encoder, texts, variant, batch_size=64), repeats)
-        t_int8 = median_seconds(lambda: pooled_variants(int8, texts, variant, batch_size=64), repeats)
+        rounds = interleaved_seconds({"torch": lambda: pooled_variants(encoder, texts, variant, batch_size=64),
+                                      "int8": lambda: pooled_variants(int8, texts, variant, batch_size=64)}, repeats)
+        t_torch, t_int8 = statistics.median(rounds["torch"]), statistics.median(rounds["int8"])
+        speedup = statistics.median(t / i for t, i in zip(rounds["torch"], rounds["int8"]))
 
         demo = loaded_corpus(SyntheticSource(source="synthetic", n_texts=1200, topic_share=0.15, seed=0))
         scores = {}
@@ -253,11 +274,11 @@ def onnx_figures(n_texts: int, repeats: int) -> dict:
             vectors = pooled_variants(model, demo.texts, variant, batch_size=64)[variant[0]]
             reduced = umap_reduced(vectors, UmapSettings(method="umap", n_components=5, n_neighbors=15), 0)
             scores[name] = adjusted_rand(demo.labels, kmeans_labels(reduced, KmeansSettings(method="kmeans", k=6), 0, 6))
-    speedup = t_torch / t_int8
     delta = abs(scores["torch"] - scores["onnx_int8"])
     return {
         "onnx_int8_speedup": {"value": speedup, "target": ">= 1.5", "met": speedup >= 1.5,
-                              "seconds": {"torch_fp32": t_torch, "onnx_int8": t_int8}},
+                              "seconds": {"torch_fp32": t_torch, "onnx_int8": t_int8}, "rounds": rounds,
+                              "note": "median over interleaved rounds of torch / int8"},
         "onnx_int8_ari_delta": {"value": delta, "target": "<= 0.01", "met": delta <= 0.01, "ari": scores},
     }
 

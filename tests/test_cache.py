@@ -8,6 +8,7 @@ import sqlite3
 import subprocess
 import sys
 import time
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -48,6 +49,54 @@ def test_hit_returns_the_bytes_of_the_miss(tmp_path):
     hit, meta = cache.get("pool", "k1")
     assert hit.tobytes() == array.tobytes() and hit.dtype == array.dtype and hit.shape == array.shape
     assert meta["shape"] == [50, 7] and meta["dtype"] == "float32" and meta["kind"] == "pool"
+
+
+def _damaged(folder: Path, damage: str) -> None:
+    """One way an entry's files can differ from what was written (a process killed mid-write leaves none of
+    these: writes are renamed into place; a power loss without fsync can leave any of them)."""
+    data, meta = folder / "data.npy", folder / "meta.json"
+    if damage == "data empty":
+        data.write_bytes(b"")
+    elif damage == "data cut in half":
+        data.write_bytes(data.read_bytes()[: data.stat().st_size // 2])
+    elif damage == "data zeroed":
+        data.write_bytes(bytes(data.stat().st_size))
+    elif damage == "data last byte flipped":
+        raw = bytearray(data.read_bytes())
+        raw[-1] ^= 0x01
+        data.write_bytes(bytes(raw))
+    elif damage == "data missing":
+        data.unlink()
+    elif damage == "meta empty":
+        meta.write_bytes(b"")
+    elif damage == "meta cut in half":
+        meta.write_bytes(meta.read_bytes()[: meta.stat().st_size // 2])
+    elif damage == "meta zeroed":
+        meta.write_bytes(bytes(meta.stat().st_size))
+    elif damage == "meta missing":
+        meta.unlink()
+    else:
+        raise ValueError(damage)
+
+
+DAMAGES = ("data empty", "data cut in half", "data zeroed", "data last byte flipped", "data missing",
+           "meta empty", "meta cut in half", "meta zeroed", "meta missing")
+
+
+@pytest.mark.parametrize("damage", DAMAGES)
+def test_an_entry_whose_files_are_not_the_bytes_written_is_never_read(tmp_path, damage):
+    """The rule that lets writes skip fsync: whatever state a write's files are left in, get() returns the array
+    that was put or nothing, and the next put writes the entry again."""
+    cache = StageCache(tmp_path)
+    array = np.random.default_rng(1).normal(size=(40, 6)).astype(np.float32)
+    cache.put("reduce", "kd", array, {"seconds": 0.0})
+    _damaged(next((tmp_path / "reduce").glob("*/kd")), damage)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", CacheWarning)
+        assert cache.get("reduce", "kd") is None
+        cache.put("reduce", "kd", array, {"seconds": 0.0})
+        hit, _ = cache.get("reduce", "kd")
+    assert hit.tobytes() == array.tobytes()
 
 
 def test_a_corrupted_array_is_detected_and_rebuilt(tmp_path, tiny_model_dir):

@@ -30,8 +30,10 @@ def _core_distances(distances: np.ndarray, dimension: int) -> np.ndarray:
     inverse distances to the other points, each raised to the dimension, to the power -1/dimension. Zero
     distances are left out of the mean's sum (but not of its count), as the hdbscan package does."""
     inverse = np.zeros_like(distances)
-    nonzero = distances != 0
-    inverse[nonzero] = (1.0 / distances[nonzero]) ** dimension
+    # In place, element by element: the same divisions and powers as on the nonzero entries taken out, without
+    # copying them out and back (0 ** dimension stays 0 where nothing was divided).
+    np.divide(1.0, distances, out=inverse, where=distances != 0)
+    inverse **= dimension
     result = inverse.sum(axis=1)
     result /= distances.shape[0] - 1
     if result.sum() == 0:

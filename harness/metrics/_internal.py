@@ -73,7 +73,12 @@ def silhouette_cosine(vectors: np.ndarray, clusters: np.ndarray, *, max_points: 
     rows = _clustered_sample(clusters, max_points, seed)
     if np.unique(clusters[rows]).size < 2 or np.unique(clusters[rows]).size >= rows.size:
         return float("nan")
-    block = cosine_distances(vectors[rows]) if distances is None else distances[np.ix_(rows, rows)]
+    if distances is None:
+        block = cosine_distances(vectors[rows])
+    elif rows.size == distances.shape[0]:  # every point clustered: the block is the whole matrix, not a copy of it
+        block = distances
+    else:
+        block = distances[np.ix_(rows, rows)]
     return silhouette_from_distances(block, clusters[rows])
 
 
