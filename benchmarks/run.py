@@ -152,7 +152,7 @@ def encode_figures(n_texts: int, repeats: int) -> dict:
                                        "hidden-states pass, each timed on the same texts"},
         "forward_efficiency": {"value": efficiency, "target": ">= 0.95", "met": efficiency >= 0.95,
                                "seconds": {"bare_forward": t_bare, "tool_12_variants": t_tool},
-                               "note": "throughput ratio = bare seconds / tool seconds, median over interleaved rounds; "
+                               "note": "throughput ratio = median over interleaved rounds of bare / tool seconds; "
                                        "the tool's time includes tokenising, counting tokens, hidden states and "
                                        "pooling 12 variants"},
         "texts": n_texts,

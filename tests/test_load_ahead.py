@@ -2,6 +2,10 @@
 
 from __future__ import annotations
 
+import shutil
+from dataclasses import replace
+
+import numpy as np
 import pytest
 
 from harness.engine import stages as stages_module
@@ -25,24 +29,26 @@ grid:
   cluster:
     - {{method: kmeans, k: labels}}
 """
+CHAIN = ("encode", "pool", "transform", "reduce", "cluster")
 
 
-def _loader(pattern: str, real):
-    """loaded_encoder that fails on every call, on the first call only, or never."""
+def _loader(failing, real):
+    """loaded_encoder that fails on the calls ``failing(n)`` says (n counts from 1)."""
     calls = []
 
     def load(*args, **kwargs):
         calls.append(1)
-        if pattern == "always" or (pattern == "first call" and len(calls) == 1):
-            raise OSError(f"injected load failure {len(calls)}")
+        if failing(len(calls)):
+            raise OSError("injected load failure")
         return real(*args, **kwargs)
 
     return load, calls
 
 
-def _outcome(tmp_path, name, model, monkeypatch, pattern, ahead):
-    """Each trial's status and error tag, the sweep's status, and the model loads and forward passes."""
-    load, calls = _loader(pattern, stages_module.loaded_encoder)
+def _outcome(tmp_path, name, model, monkeypatch, failing, ahead):
+    """Every trial's status, error and traceback tags, the sweep's status, the load attempts, the loads and the
+    forward passes."""
+    load, calls = _loader(failing, stages_module.loaded_encoder)
     with monkeypatch.context() as patch:
         patch.setattr(stages_module, "loaded_encoder", load)
         if not ahead:
@@ -50,29 +56,40 @@ def _outcome(tmp_path, name, model, monkeypatch, pattern, ahead):
         results = tmp_path / name
         result = run_sweep_file(write_sweep(tmp_path, SWEEP.format(model=model), f"{name}.yaml"), results)
     _, parents, children = finished_runs(f"sqlite:///{results / 'mlflow.db'}", "ahead")
-    trials = sorted((c.data.tags["harness.trial_key"], c.info.status, c.data.tags.get("harness.error", ""))
-                    for c in children)
-    return trials, parents[0].info.status, len(calls), result.work.get("model_loads", 0), result.work.get("forward_passes", 0)
+    trials = sorted((c.data.tags["harness.trial_key"], c.info.status, c.data.tags.get("harness.error", ""),
+                     c.data.tags.get("harness.traceback", "")) for c in children)
+    return {"trials": trials, "sweep": parents[0].info.status, "attempts": len(calls),
+            "loads": result.work.get("model_loads", 0), "passes": result.work.get("forward_passes", 0)}
 
 
-@pytest.mark.parametrize("pattern", ["never", "first call", "always"])
-def test_a_sweep_ends_the_same_with_and_without_loading_ahead(tmp_path, tiny_model_dir, monkeypatch, pattern):
-    """For each way a model load can go (it works, it fails once, it always fails): every trial's status and error,
-    the sweep's status, the number of load attempts, loads and forward passes are those of the same sweep without
-    loading ahead."""
-    ahead = _outcome(tmp_path, "ahead", tiny_model_dir, monkeypatch, pattern, ahead=True)
-    behind = _outcome(tmp_path, "behind", tiny_model_dir, monkeypatch, pattern, ahead=False)
-    assert ahead == behind
-    trials, sweep_status, attempts, loads, passes = ahead
-    assert len(trials) == 4
-    if pattern == "never":
-        assert {t[1] for t in trials} == {"FINISHED"} and attempts == loads == passes == 1
-    elif pattern == "first call":  # the first trial fails with the first attempt's error, the next ones load
-        assert [t[2] for t in trials].count("OSError: injected load failure 1") == 1 and sweep_status == "FAILED"
-        assert attempts == 2 and loads == passes == 1
+TRIAL_LOADS = {"all work": lambda n: False, "the first fails": lambda n: n == 1, "all fail": lambda n: True}
+
+
+@pytest.mark.parametrize("ahead_load, trial_loads", [("works", "all work"), ("fails", "all work"),
+                                                     ("fails", "the first fails"), ("fails", "all fail")])
+def test_a_sweep_ends_as_if_only_its_trials_loads_had_happened(tmp_path, tiny_model_dir, monkeypatch, ahead_load,
+                                                               trial_loads):
+    """The rule: a load ahead that works is the first trial's own load, done earlier; one that fails is forgotten,
+    and the trials' own loads decide. So for each outcome of the load ahead and of the trials' loads after it,
+    every trial's status, error and traceback, the sweep's status, loads and forward passes are those of the same
+    sweep without loading ahead whose loads go as the trials' loads go (a failed load ahead is one attempt more)."""
+    trial_failing = TRIAL_LOADS[trial_loads]
+    if ahead_load == "works":
+        ahead = _outcome(tmp_path, "ahead", tiny_model_dir, monkeypatch, trial_failing, ahead=True)
+        behind = _outcome(tmp_path, "behind", tiny_model_dir, monkeypatch, trial_failing, ahead=False)
+        extra = 0
     else:
-        assert {t[1] for t in trials} == {"FAILED"} and loads == passes == 0
-        assert all(t[2].startswith("OSError: injected load failure") for t in trials)
+        ahead = _outcome(tmp_path, "ahead", tiny_model_dir, monkeypatch, lambda n: n == 1 or trial_failing(n - 1),
+                         ahead=True)
+        behind = _outcome(tmp_path, "behind", tiny_model_dir, monkeypatch, trial_failing, ahead=False)
+        extra = 1
+    assert ahead["attempts"] == behind["attempts"] + extra
+    del ahead["attempts"], behind["attempts"]
+    assert ahead == behind
+    statuses = [t[1] for t in ahead["trials"]]
+    assert len(statuses) == 4
+    assert statuses.count("FAILED") == {"all work": 0, "the first fails": 1, "all fail": 4}[trial_loads]
+    assert all("injected load failure" in t[3] for t in ahead["trials"] if t[1] == "FAILED")
 
 
 def _executor(tmp_path, model, cache):
@@ -80,44 +97,57 @@ def _executor(tmp_path, model, cache):
     return StageExecutor(loaded_corpora(prepared), prepared.trials, cache), prepared.trials
 
 
-def test_the_model_is_loaded_ahead_only_when_a_forward_pass_is_to_come(tmp_path, tiny_model_dir):
-    cache = StageCache(tmp_path / "cache")
-    executor, trials = _executor(tmp_path, tiny_model_dir, cache)
+def test_the_load_ahead_is_the_first_trials_first_load(tmp_path, tiny_model_dir, monkeypatch):
+    """With none of the first trial's stages held, its clusters and token counts need exactly the model loaded
+    ahead: no other load, one forward pass."""
+    load, calls = _loader(lambda n: False, stages_module.loaded_encoder)
+    monkeypatch.setattr(stages_module, "loaded_encoder", load)
+    executor, trials = _executor(tmp_path, tiny_model_dir, StageCache(tmp_path / "cache"))
     executor.load_ahead(trials)
-    assert executor.work["model_loads"] == 1
-    executor.pooled(trials[0])  # the forward pass uses the model loaded ahead
-    assert executor.work["model_loads"] == 1 and executor.work["forward_passes"] == 1
+    assert len(calls) == 1 and executor.work["model_loads"] == 1
+    executor.clustered(trials[0])
+    executor.token_counts(trials[0])
+    assert len(calls) == 1 and executor.work["model_loads"] == 1 and executor.work["forward_passes"] == 1
 
-    # Every variant of the first trial's encode in the cache: nothing loaded, nothing read.
-    cached, trials = _executor(tmp_path, tiny_model_dir, cache)
+
+@pytest.mark.parametrize("kind", CHAIN)
+def test_nothing_is_loaded_ahead_when_any_stage_of_the_first_trial_is_held(tmp_path, tiny_model_dir, kind):
+    """Any one of the first trial's encode, pool, transform, reduce and cluster stages held, alone, in memory or
+    in the cache: its clusters may then be computed without a forward pass first, so the load is not certain to
+    come first, and nothing is loaded (or read)."""
+    full = StageCache(tmp_path / "full")
+    filler, trials = _executor(tmp_path, tiny_model_dir, full)
+    filler.clustered(trials[0])
+    filler.token_counts(trials[0])
+    stage = trials[0].stages[kind]
+    # In the cache alone: a cache holding that one entry.
+    only = tmp_path / f"only-{kind}"
+    entry = next((tmp_path / "full" / kind).glob(f"*/{stage.key}"))
+    shutil.copytree(entry, only / kind / entry.parent.name / entry.name)
+    cached, trials = _executor(tmp_path, tiny_model_dir, StageCache(only))
     cached.load_ahead(trials)
     assert cached.work.get("model_loads", 0) == 0 and not cached._outputs
-
-    # One variant missing: loaded (its forward pass will run).
-    missing = next(p for p in (tmp_path / "cache" / "pool").glob("*/*"))
-    for file in missing.iterdir():
-        file.unlink()
-    partial, trials = _executor(tmp_path, tiny_model_dir, cache)
-    partial.load_ahead(trials)
-    assert partial.work["model_loads"] == 1
-
-    # No cache at all: loaded; no trials: nothing.
-    uncached, trials = _executor(tmp_path, tiny_model_dir, None)
-    uncached.load_ahead(trials)
-    assert uncached.work["model_loads"] == 1
-    empty, _ = _executor(tmp_path, tiny_model_dir, None)
-    empty.load_ahead([])
-    assert empty.work.get("model_loads", 0) == 0
+    # In memory alone.
+    held, trials = _executor(tmp_path, tiny_model_dir, None)
+    held._outputs[stage.key] = np.zeros(1)
+    held.load_ahead(trials)
+    assert held.work.get("model_loads", 0) == 0
+    # And the control: none held, loaded.
+    bare, trials = _executor(tmp_path, tiny_model_dir, StageCache(tmp_path / f"empty-{kind}"))
+    bare.load_ahead(trials)
+    assert bare.work["model_loads"] == 1
 
 
-def test_a_model_without_a_transformer_or_on_onnx_is_not_loaded_ahead(tmp_path, tiny_model_dir):
-    """Families without a transformer have nothing to load; an ONNX backend's load exports into the cache, which a
-    sweep must not write before its store is known to work."""
-    from dataclasses import replace
-
+def test_only_a_pytorch_transformer_without_remote_code_is_loaded_ahead(tmp_path, tiny_model_dir):
+    """Families without a transformer have nothing to load; an ONNX backend's load exports into the cache, and
+    remote code would run, before the sweep knows its store works; no trials, nothing to load."""
     executor, trials = _executor(tmp_path, tiny_model_dir, None)
     for change in ({"family": "static"}, {"family": "lexical"}, {"family": "precomputed"},
-                   {"backend": "onnx"}, {"backend": "onnx_int8"}):
+                   {"backend": "onnx"}, {"backend": "onnx_int8"}, {"trust_remote_code": True}):
         model = trials[0].model.model_copy(update=change)
         executor.load_ahead([replace(trials[0], model=model)])
         assert executor.work.get("model_loads", 0) == 0, change
+    executor.load_ahead([])
+    assert executor.work.get("model_loads", 0) == 0
+    executor.load_ahead(trials)
+    assert executor.work["model_loads"] == 1  # the control

@@ -47,7 +47,6 @@ class StageExecutor:
         self._outputs: dict[str, np.ndarray] = {}
         self._info: dict[str, dict[str, Any]] = {}
         self._encoders: dict[tuple, LoadedEncoder] = {}
-        self._encoder_errors: dict[tuple, Exception] = {}  # a load that failed ahead of its trials (load_ahead)
         self._variants: dict[str, set] = defaultdict(set)
         self._encode_progress = encode_progress
         self._derived: dict[tuple, Any] = {}
@@ -79,17 +78,10 @@ class StageExecutor:
         self.stage_log.append({"kind": kind, "seconds": seconds, "peak_rss_mb": peak_kib / 1024})
 
     # -- encode and pool -------------------------------------------------------------------------------------
-    @staticmethod
-    def _encoder_key(trial: Trial) -> tuple:
-        spec = trial.model
-        return (trial.resolved_model.folder, trial.resolved_model.family, spec.max_length, spec.trust_remote_code,
-                spec.backend, trial.resolved_model.device)
-
     def _encoder(self, trial: Trial) -> LoadedEncoder:
         spec = trial.model
-        cache_key = self._encoder_key(trial)
-        if cache_key in self._encoder_errors:  # once: a later trial tries again, as every trial did before
-            raise self._encoder_errors.pop(cache_key)
+        cache_key = (trial.resolved_model.folder, trial.resolved_model.family, spec.max_length, spec.trust_remote_code,
+                     spec.backend, trial.resolved_model.device)
         if cache_key not in self._encoders:
             encoder = loaded_encoder(trial.resolved_model, spec.max_length, spec.trust_remote_code)
             if spec.backend != "torch":
@@ -105,26 +97,29 @@ class StageExecutor:
         return self._encoders[cache_key]
 
     def load_ahead(self, trials: list[Trial]) -> None:
-        """Load the transformer of the first of ``trials`` when its forward pass is still to run, before the trial
-        loop: the caller does this while the MLflow writer starts in its own process, so that the two overlap.
+        """Load the transformer that the first of ``trials`` loads first, before the trial loop: the caller does
+        this while the MLflow writer starts in its own process, so that the two overlap.
 
-        Only a PyTorch model (an ONNX export would write to the cache) whose variants are not all in the cache,
-        checked by presence (nothing is read). A load that fails is kept and raised again where the trial loads
-        the model, so the trial fails with it exactly as it would have without loading ahead."""
+        Only where that load is certain to come first: none of the trial's encode, pool, transform, reduce and
+        cluster stages is held (in memory or, by presence, in the cache), so computing its clusters starts with the
+        forward pass and the forward pass with this load. A PyTorch model without remote code only (an ONNX
+        export writes to the cache; remote code waits until the store is known to work). A load that fails here
+        is forgotten: the trial then loads the model itself, as it would have, and fails or not by its own
+        attempt, with its own error and traceback."""
         if not trials:
             return
         trial = trials[0]
-        if trial.model.family not in TRANSFORMER_FAMILIES or trial.model.backend != "torch":
+        model = trial.model
+        if model.family not in TRANSFORMER_FAMILIES or model.backend != "torch" or model.trust_remote_code:
             return
-        encode = trial.stages["encode"]
-        dtype = trial.stages["pool"].settings["dtype"]
-        keys = [pool_stage(encode.key, *variant, dtype).key for variant in self._variants[encode.key]]
-        if all(key in self._outputs or (self.cache is not None and self.cache.has("pool", key)) for key in keys):
+        chain = [trial.stages[kind] for kind in ("encode", "pool", "transform", "reduce", "cluster")]
+        if any(stage.key in self._outputs or (self.cache is not None and self.cache.has(stage.kind, stage.key))
+               for stage in chain):
             return
         try:
             self._encoder(trial)
-        except Exception as err:  # noqa: BLE001 - raised again at the trial's own load
-            self._encoder_errors[self._encoder_key(trial)] = err
+        except Exception:  # noqa: BLE001 - see the docstring: the trial's own load decides
+            pass
 
     def _encode(self, trial: Trial) -> None:
         """Token counts, then one forward pass for every variant of this encode key not yet stored."""
