@@ -15,7 +15,7 @@ from typing import Callable, Optional
 
 VARIABLE = "HARNESS_CRASH_AT"
 ONCE_VARIABLE = "HARNESS_CRASH_ONCE"
-POINTS = ("encode_batch", "umap_fit", "between_trials", "mlflow_write", "archive_unpack", "encode_chunk")
+POINTS = ("model_load", "encode_batch", "umap_fit", "between_trials", "mlflow_write", "archive_unpack", "encode_chunk")
 _reached: Counter = Counter()
 
 

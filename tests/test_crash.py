@@ -28,9 +28,10 @@ grid:
     - {{method: hdbscan, min_cluster_size: 10}}
 evidence: {{resamples: 100, permutations: 99}}
 """
-# Killed in turn: in the middle of the forward pass, inside the first UMAP fit, right after the second trial
+# Killed in turn: while loading the model (a model too big for memory dies there: the sweep's record must be in
+# the store by then), in the middle of the forward pass, inside the first UMAP fit, right after the second trial
 # finished, and between the artifacts and the metrics of an MLflow write.
-KILL_POINTS = ("encode_batch:2", "umap_fit:1", "between_trials:2", "mlflow_write:1")
+KILL_POINTS = ("model_load:1", "encode_batch:2", "umap_fit:1", "between_trials:2", "mlflow_write:1")
 COMPARED = ("ari", "ami", "nmi", "v_measure", "length_confound_index", "coverage", "silhouette")
 
 

@@ -676,8 +676,6 @@ def execute_sweep(
         executor = StageExecutor(corpora, prepared.trials, StageCache(cache_dir) if cache_dir else None, encode_progress)
         params = aligned_params(prepared.trials)
         bar = progress(total=len(pending), desc="trials", unit="trial") if progress else None
-        if dask_client is None and not halving:  # while the writer process starts and creates the sweep run
-            executor.load_ahead([t for c in configurations(prepared.trials) for t in c if t.key not in done])
         # Wait until the store holds the sweep run: a store that cannot be written fails here, before any
         # computation, and a sweep killed from now on leaves its run for the next start to mark KILLED.
         tracker.flush()

@@ -18,6 +18,7 @@ from typing import Any, Callable, Optional
 
 import numpy as np
 
+from harness._crashpoints import crash_point
 from harness.datasets import Corpus
 from harness.embed.encode import counts_of, long_text_figures, long_text_info, pooled_variants, token_ids
 from harness.embed.models import LoadedEncoder, loaded_encoder
@@ -83,6 +84,7 @@ class StageExecutor:
         cache_key = (trial.resolved_model.folder, trial.resolved_model.family, spec.max_length, spec.trust_remote_code,
                      spec.backend, trial.resolved_model.device)
         if cache_key not in self._encoders:
+            crash_point("model_load")
             encoder = loaded_encoder(trial.resolved_model, spec.max_length, spec.trust_remote_code)
             if spec.backend != "torch":
                 from harness.embed.onnx_backend import onnx_encoder
@@ -95,31 +97,6 @@ class StageExecutor:
             self._encoders[cache_key] = encoder
             self.work["model_loads"] += 1
         return self._encoders[cache_key]
-
-    def load_ahead(self, trials: list[Trial]) -> None:
-        """Load the transformer that the first of ``trials`` loads first, before the trial loop: the caller does
-        this while the MLflow writer starts in its own process, so that the two overlap.
-
-        Only where that load is certain to come first: none of the trial's encode, pool, transform, reduce and
-        cluster stages is held (in memory or, by presence, in the cache), so computing its clusters starts with the
-        forward pass and the forward pass with this load. A PyTorch model without remote code only (an ONNX
-        export writes to the cache; remote code waits until the store is known to work). A load that fails here
-        is forgotten: the trial then loads the model itself, as it would have, and fails or not by its own
-        attempt, with its own error and traceback."""
-        if not trials:
-            return
-        trial = trials[0]
-        model = trial.model
-        if model.family not in TRANSFORMER_FAMILIES or model.backend != "torch" or model.trust_remote_code:
-            return
-        chain = [trial.stages[kind] for kind in ("encode", "pool", "transform", "reduce", "cluster")]
-        if any(stage.key in self._outputs or (self.cache is not None and self.cache.has(stage.kind, stage.key))
-               for stage in chain):
-            return
-        try:
-            self._encoder(trial)
-        except Exception:  # noqa: BLE001 - see the docstring: the trial's own load decides
-            pass
 
     def _encode(self, trial: Trial) -> None:
         """Token counts, then one forward pass for every variant of this encode key not yet stored."""
