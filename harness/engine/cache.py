@@ -11,8 +11,8 @@ reported as a warning and the entry is treated as missing, so it is rebuilt.
 A failed write warns and the computed result is still used.
 
 Writes are not fsynced: a cache needs no durability, only that a damaged entry is never read, and the checksum
-in ``meta.json`` sees to that (an entry cut short by a power loss is rebuilt). An fsync per file cost the demo
-sweep 0.6 s of 274 writes, and the journal work it forces slowed the clustering threads beside it.
+in ``meta.json`` sees to that (an entry cut short by a power loss is rebuilt). The demo sweep's 274 entries
+took 548 fsyncs, 0.6 s under a profiler, on the sweep's own thread.
 """
 
 from __future__ import annotations
