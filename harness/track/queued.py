@@ -33,7 +33,7 @@ from pathlib import Path
 from typing import Any, Iterable, Optional
 
 from harness.errors import HarnessError
-from harness.track.writer import REF_PREFIX, SESSION_TAG
+from harness.track.writer import REF_PREFIX, SESSION_TAG, running_in_session
 
 
 class _WriterProcess:
@@ -315,7 +315,7 @@ class QueuedTracker:
                 from harness.track.tracking import SweepTracker
 
                 reader = SweepTracker(self.tracking_uri, self._artifact_root, self._experiment_name)
-            for run in reader._runs(f"attributes.status = 'RUNNING' and tags.`{SESSION_TAG}` = '{self._session}'"):
+            for run in reader._runs(running_in_session(self._session)):
                 reader.client.set_terminated(run.info.run_id, status="KILLED")
         except Exception:  # the store itself may be what is broken: the error already says so
             pass

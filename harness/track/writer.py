@@ -24,6 +24,11 @@ REF_PREFIX = "pending-"  # a run reference, never an MLflow run id (32 hexadecim
 SESSION_TAG = "harness.log_session"  # on every run a writer session makes: how its runs are found if the writer dies
 
 
+def running_in_session(session: str) -> str:
+    """The MLflow search filter for a writer session's runs still RUNNING (tagged with SESSION_TAG)."""
+    return f"attributes.status = 'RUNNING' and tags.`{SESSION_TAG}` = '{session}'"
+
+
 class _Session:
     """One sweep's store, its runs by reference, and the first error, after which its commands are dropped."""
 
@@ -91,8 +96,7 @@ class _Session:
             return
         try:
             # Also a run whose creation went through and whose params then failed (not yet in open_runs).
-            found = {r.info.run_id for r in self.tracker._runs(
-                f"attributes.status = 'RUNNING' and tags.`{SESSION_TAG}` = '{self.command['session']}'")}
+            found = {r.info.run_id for r in self.tracker._runs(running_in_session(self.command["session"]))}
         except Exception:  # the store itself may be what failed: the next sweep marks these orphans
             found = set()
         for run_id in set(self.open_runs.values()) | found:
