@@ -1,0 +1,168 @@
+"""The benchmark's side-by-side timing (benchmarks/run.py): every side runs on every part of the work in every
+round, each order of the sides equally often; the parts keep the whole corpus's batches; stage seconds are summed
+by kind."""
+
+from __future__ import annotations
+
+import importlib.util
+import itertools
+import os
+import sys
+from collections import Counter
+
+import numpy as np
+import pytest
+
+from conftest import REPO
+from harness.embed.encode import length_sorted_batches
+
+
+@pytest.fixture(scope="module")
+def bench():
+    saved = dict(os.environ)  # the module sets defaults in the environment when imported
+    spec = importlib.util.spec_from_file_location("bench_run_for_tests", REPO / "benchmarks" / "run.py")
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[spec.name] = module  # its dataclasses look their module up there
+    spec.loader.exec_module(module)
+    os.environ.clear()
+    os.environ.update(saved)
+    yield module
+    sys.modules.pop(spec.name, None)
+
+
+COUNT_CASES = [
+    ("ties everywhere", np.full(200, 7)),
+    ("distinct, descending", np.arange(130, 0, -1)),
+    ("distinct, ascending", np.arange(1, 131)),
+    ("few lengths", np.random.default_rng(0).integers(3, 6, size=257)),
+    ("many lengths", np.random.default_rng(1).integers(1, 300, size=2000)),
+    ("one text", np.array([5])),
+    ("fewer texts than a batch", np.array([4, 9, 9, 2])),
+]
+
+
+def back_and_forth(n_batches: int, slices: int) -> list[int]:
+    """The part each batch goes to: 0, 1, ..., k-1, then k-1, ..., 0, and again."""
+    cycle = list(range(slices)) + list(reversed(range(slices)))
+    return [cycle[b % len(cycle)] for b in range(n_batches)]
+
+
+@pytest.mark.parametrize("name, counts", COUNT_CASES, ids=[c[0] for c in COUNT_CASES])
+@pytest.mark.parametrize("batch_size, slices", [(64, 6), (64, 4), (16, 6), (7, 2), (1, 3), (1, 1)])
+def test_each_part_sorted_again_gives_back_its_share_of_the_whole_corpus_batches(bench, name, counts, batch_size,
+                                                                                  slices):
+    whole = length_sorted_batches(counts, batch_size)
+    if len(whole) < slices:
+        with pytest.raises(ValueError, match=f"--texts {slices * batch_size} or more"):
+            bench.dealt_parts(counts, batch_size, slices)
+        return
+    parts = bench.dealt_parts(counts, batch_size, slices)
+    assert len(parts) == slices
+    assert sorted(np.concatenate(parts).tolist()) == list(range(counts.size))  # every text in exactly one part
+    owners = back_and_forth(len(whole), slices)
+    for number, part in enumerate(parts):
+        # What a side does with the part: sort its texts by length and batch them, as pooled_variants does.
+        own = [part[batch] for batch in length_sorted_batches(counts[part], batch_size)]
+        expected = [batch for batch, owner in zip(whole, owners) if owner == number]
+        assert len(own) == len(expected)
+        assert all(np.array_equal(a, b) for a, b in zip(own, expected))
+
+
+def test_the_bare_pass_gets_the_batches_the_tool_runs(bench, tiny_model_dir):
+    # The real pooled_variants and the real transformer: every input the tool hands the transformer is recorded
+    # and compared with the batches the benchmark's bare pass runs, for each part of a corpus with texts longer
+    # than the model's window (32 tokens), so that truncation is in the comparison.
+    from dataclasses import replace
+
+    from harness.embed.encode import pooled_variants, token_counts
+    from harness.embed.models import loaded_encoder, resolve_model
+
+    encoder = loaded_encoder(resolve_model(str(tiny_model_dir)), 32, False)
+    rng = np.random.default_rng(3)
+    words = ["permit", "pothole", "the", "council", "bins", "late", "street", "lamp", "a", "water"]
+    texts = [" ".join(rng.choice(words, size=int(rng.integers(1, 60)))) for _ in range(90)]
+    received = []
+
+    def recording(**inputs):
+        received.append({name: tensor.clone() for name, tensor in inputs.items() if name != "output_hidden_states"})
+        return encoder.transformer(**inputs)
+
+    tool = replace(encoder, transformer=recording)
+    parts = [[texts[i] for i in part] for part in bench.dealt_parts(token_counts(encoder, texts), 8, 3)]
+    for part in [texts, *parts]:  # the corpus in its own (unsorted) order too: a part is already sorted
+        received.clear()
+        pooled_variants(tool, part, [("last", "mean")], batch_size=8)
+        bare = bench.tokenised_batches(encoder, part, 8)
+        assert len(received) == len(bare) > 1
+        for ours, theirs in zip(received, bare):
+            assert set(ours) == set(theirs)
+            assert all(torch_equal(ours[name], theirs[name]) for name in theirs)
+    assert any(int(batch["attention_mask"].sum(dim=1).max()) == 32 for batch in received)  # a text was cut
+
+
+def torch_equal(left, right) -> bool:
+    return left.shape == right.shape and bool((left == right).all())
+
+
+@pytest.mark.parametrize("constant, sides", [("ENCODE_SLICES", 3), ("ONNX_SLICES", 2)])
+def test_each_group_turns_over_a_number_of_parts_that_runs_every_order_equally(bench, constant, sides):
+    # Checked here, not when the group runs: the ONNX group would otherwise fail after its model export.
+    slices = getattr(bench, constant)
+    assert slices % len(list(itertools.permutations(range(sides)))) == 0
+
+
+@pytest.mark.parametrize("value", [0.0, 0.049, 0.05, 0.0501, 0.2])
+@pytest.mark.parametrize("forward_passes", [None, 0, 1])
+@pytest.mark.parametrize("umap_fits", [None, 0, 2])
+@pytest.mark.parametrize("map_fits", [None, 0, 1])
+def test_the_rerun_target_counts_the_sweep_reductions_not_the_winner_map(bench, value, forward_passes, umap_fits,
+                                                                         map_fits):
+    work = {name: count for name, count in (("forward_passes", forward_passes), ("umap_fits", umap_fits),
+                                            ("map_fits", map_fits)) if count is not None}
+    expected = value <= 0.05 and not forward_passes and not umap_fits
+    assert bench.rerun_met(value, work) is expected
+
+
+@pytest.mark.parametrize("sides, repeats, slices",
+                         [(n, r, k * f) for n, f in ((1, 1), (2, 2), (3, 6)) for r in (1, 2, 3) for k in (1, 2)])
+def test_every_side_runs_on_every_part_in_every_order_equally(bench, sides, repeats, slices, monkeypatch):
+    names = [f"side{i}" for i in range(sides)]
+    calls: list[tuple[str, int]] = []
+    ticks = {"now": 0.0}
+
+    def action(name):
+        def run(part):
+            calls.append((name, part))
+            ticks["now"] += 1.0 + part  # a part's cost: 1 + its index, so that sums are checkable
+        return run
+
+    # A clock that moves only when an action runs: the sums per round must then be exact (a real clock's cannot).
+    monkeypatch.setattr(bench.time, "perf_counter", lambda: ticks["now"])
+    seconds = bench.interleaved_seconds({name: action(name) for name in names}, repeats, slices)
+
+    assert set(seconds) == set(names)
+    assert all(seconds[name] == [sum(1.0 + part for part in range(slices))] * repeats for name in names)
+    steps = [calls[i:i + sides] for i in range(0, len(calls), sides)]
+    assert len(steps) == repeats * slices
+    for number, step in enumerate(steps):
+        assert {part for _, part in step} == {number % slices}  # the step runs one part ...
+        assert sorted(name for name, _ in step) == names  # ... on every side once
+    for first in range(0, len(steps), slices):  # within each round, every order of the sides equally often
+        orders = Counter(tuple(name for name, _ in step) for step in steps[first:first + slices])
+        assert set(orders) == set(itertools.permutations(names))
+        assert len(set(orders.values())) == 1
+
+
+@pytest.mark.parametrize("sides, slices", [(2, 1), (2, 3), (3, 1), (3, 2), (3, 3), (3, 4), (3, 9)])
+def test_a_round_that_cannot_run_every_order_equally_is_refused(bench, sides, slices):
+    actions = {f"side{i}": (lambda part: None) for i in range(sides)}
+    with pytest.raises(ValueError, match="orders"):
+        bench.interleaved_seconds(actions, 1, slices)
+
+
+def test_stage_seconds_sum_each_kind(bench):
+    log = [{"kind": "cluster", "seconds": 0.5, "peak_rss_mb": 1.0}, {"kind": "score", "seconds": 0.25},
+           {"kind": "cluster", "seconds": 1.25}, {"kind": "map", "seconds": 2.0}, {"kind": "cluster", "seconds": 0.0},
+           {"kind": "map", "seconds": 0.125}]
+    assert bench.stage_seconds(log) == {"cluster": 1.75, "score": 0.25, "map": 2.125}
+    assert bench.stage_seconds([]) == {}
