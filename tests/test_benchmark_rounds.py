@@ -53,7 +53,7 @@ def test_each_part_sorted_again_gives_back_its_share_of_the_whole_corpus_batches
                                                                                   slices):
     whole = length_sorted_batches(counts, batch_size)
     if len(whole) < slices:
-        with pytest.raises(ValueError, match=f"--texts {slices * batch_size} or more"):
+        with pytest.raises(ValueError, match=f"--texts {(slices - 1) * batch_size + 1} or more"):
             bench.dealt_parts(counts, batch_size, slices)
         return
     parts = bench.dealt_parts(counts, batch_size, slices)
@@ -98,6 +98,63 @@ def test_the_bare_pass_gets_the_batches_the_tool_runs(bench, tiny_model_dir):
             assert set(ours) == set(theirs)
             assert all(torch_equal(ours[name], theirs[name]) for name in theirs)
     assert any(int(batch["attention_mask"].sum(dim=1).max()) == 32 for batch in received)  # a text was cut
+
+
+@pytest.mark.parametrize("slices", [1, 2, 4, 6])
+def test_the_fewest_texts_the_benchmark_asks_for_make_enough_batches(bench, slices):
+    fewest = bench.minimum_texts(slices)
+    assert len(bench.dealt_parts(np.ones(fewest), bench.BATCH, slices)) == slices
+    if fewest > 1:
+        with pytest.raises(ValueError):
+            bench.dealt_parts(np.ones(fewest - 1), bench.BATCH, slices)
+
+
+def test_too_few_texts_for_a_group_stop_before_it_runs(bench, monkeypatch, capsys):
+    monkeypatch.setattr(sys, "argv", ["run.py", "--only", "encode", "--texts", str(bench.minimum_texts(6) - 1)])
+    with pytest.raises(SystemExit) as stopped:
+        bench.main()
+    assert stopped.value.code == 2
+    assert f"--texts {bench.minimum_texts(6) - 1}: the encode group needs at least 321 texts" in capsys.readouterr().err
+
+
+def padded_characters(texts: list[str], batch_size: int) -> int:
+    """Characters a batch-by-batch encode pads to, sorting by characters as SentenceTransformer.encode does
+    (``np.argsort`` of minus each text's length; the total does not depend on how ties are ordered)."""
+    lengths = np.sort(np.array([len(t) for t in texts]))[::-1]
+    return int(sum(len(lengths[s:s + batch_size]) * lengths[s] for s in range(0, len(lengths), batch_size)))
+
+
+def test_each_side_of_the_encode_group_runs_the_batches_it_would_run_over_the_whole_corpus(bench, tiny_model_dir):
+    from harness.embed.models import loaded_encoder, resolve_model
+
+    encoder = loaded_encoder(resolve_model(str(tiny_model_dir)), 32, False)
+    rng = np.random.default_rng(5)
+    words = ["bins", "collection", "missed", "on", "elm", "road", "again", "permit", "for", "a", "skip", "lorry"]
+    texts = [" ".join(rng.choice(words, size=int(rng.integers(1, 40)))) for _ in range(400)]
+    sides = bench.encode_inputs(encoder, texts, 6)
+    # SentenceTransformer.encode's parts pad as its own whole-corpus sort does (parts dealt from that sort).
+    assert sum(padded_characters(part, bench.BATCH) for part in sides.encode_parts) == padded_characters(texts, bench.BATCH)
+    assert sorted(sum(sides.encode_parts, [])) == sorted(texts)
+    # The bare pass runs, per part, the tool's batches of that part; the user's loop runs the whole corpus's.
+    for part, batches in zip(sides.parts, sides.batches):
+        assert [b["input_ids"].tolist() for b in batches] == [b["input_ids"].tolist()
+                                                               for b in bench.tokenised_batches(encoder, part, bench.BATCH)]
+    whole = bench.tokenised_batches(encoder, texts, bench.BATCH)
+    assert sorted(b["input_ids"].tolist() for b in sides.all_batches) == sorted(b["input_ids"].tolist() for b in whole)
+
+
+def test_the_rerun_stage_fraction_is_over_the_first_run(bench):
+    stages = bench.stage_seconds([{"kind": "cluster", "seconds": 1.5}, {"kind": "map", "seconds": 2.5},
+                                  {"kind": "score", "seconds": 1.0}])
+    assert bench.stages_over(stages, 50.0) == pytest.approx(0.1)
+
+
+def test_the_summary_says_when_each_figure_was_measured(bench):
+    lines = bench.summary_lines({"b_figure": {"value": 0.5, "target": "<= 1", "met": True, "date": "2026-12-03 16:27:04"},
+                                 "a_figure": {"value": 2.0, "target": ">= 3", "met": False}})
+    assert lines[0].split() == ["figure", "value", "target", "met", "measured"]
+    assert lines[1].split() == ["a_figure", "2.000", ">=", "3", "NO", "unknown"]
+    assert lines[2].split() == ["b_figure", "0.500", "<=", "1", "yes", "2026-12-03", "16:27:04"]
 
 
 def torch_equal(left, right) -> bool:
