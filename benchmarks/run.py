@@ -25,7 +25,6 @@ RESULTS = REPO / "results" / "benchmarks.json"
 MINILM = "sentence-transformers/all-MiniLM-L6-v2"
 POOLINGS = ("cls", "mean", "max", "mean_sqrt_len")
 LAYERS = ("last", "second_last", "mean_last_4")
-ST_MODES = {"cls": "cls", "mean": "mean", "max": "max", "mean_sqrt_len": "mean_sqrt_len_tokens"}
 BATCH = 64
 ENCODE_SLICES = 6  # parts of the texts a round of the encode group turns over: each order of its 3 sides once
 ONNX_SLICES = 4  # ... of the ONNX group: each order of its 2 sides twice
@@ -173,7 +172,6 @@ def encode_figures(n_texts: int, repeats: int) -> dict:
     """variants_over_single_encode, loop_over_variants and forward_efficiency, measured in one go."""
     import torch
     from sentence_transformers import SentenceTransformer
-    from sentence_transformers.sentence_transformer.modules import Pooling
 
     from harness.embed.encode import pooled_variants
     from harness.embed.layers import selected_hidden
@@ -195,13 +193,6 @@ def encode_figures(n_texts: int, repeats: int) -> dict:
 
     def single_encode(part: int) -> None:
         plain.encode(encode_parts[part], batch_size=BATCH)
-
-    transformer = plain[0]
-
-    def user_loop_last_layer(pooling: str) -> None:
-        # What a user writes without the tool, for the last layer: one encode per pooling (a Pooling module each).
-        SentenceTransformer(modules=[transformer, Pooling(transformer.get_embedding_dimension(), pooling_mode=ST_MODES[pooling])],
-                            device="cpu").encode(texts, batch_size=64)
 
     def user_loop_other_layer(layers: str, pooling: str) -> None:
         # ... and for another layer choice, a forward pass with hidden states per (layer, pooling), over the
@@ -231,9 +222,12 @@ def encode_figures(n_texts: int, repeats: int) -> dict:
     efficiency_rounds = [b / t for b, t in zip(rounds["bare"], rounds["tool"])]
     over_single, efficiency = statistics.median(over_single_rounds), statistics.median(efficiency_rounds)
     # The user's loop is 12 passes of two kinds, each kind's passes costing the same (the pooling is a negligible
-    # share of a pass): one of each kind is timed and multiplied by its count, instead of timing all 12.
-    t_last = median_seconds(lambda: user_loop_last_layer("mean"), repeats)
-    t_other = median_seconds(lambda: user_loop_other_layer("mean_last_4", "mean"), repeats)
+    # share of a pass): one of each kind is timed and multiplied by its count, instead of timing all 12. A
+    # last-layer pass is a SentenceTransformer encode with its own Pooling module: the single encode of the rounds
+    # (MiniLM's own modules are that, mean pooling, and a normalisation), whose median is taken. The hidden-states
+    # pass is timed once, after the rounds (its figure clears the target by half; a default run keeps to 15 minutes).
+    t_last = t_encode
+    t_other = median_seconds(lambda: user_loop_other_layer("mean_last_4", "mean"), 1)
     n_last, n_other = len(POOLINGS), len(POOLINGS) * (len(LAYERS) - 1)
     t_loop = n_last * t_last + n_other * t_other
     return {
@@ -245,9 +239,10 @@ def encode_figures(n_texts: int, repeats: int) -> dict:
                                "seconds": {"user_loop_12_variants_estimated": t_loop, "tool_12_variants": t_tool,
                                            "one_last_layer_encode": t_last, "one_hidden_states_pass": t_other},
                                "slices": ENCODE_SLICES,
-                               "note": f"user loop estimated as {n_last} x one last-layer encode + {n_other} x one "
-                                       "hidden-states pass (over the tool's batches), each timed on all the texts in "
-                                       "one call; the tool's seconds are its rounds' median, a sum over the parts"},
+                               "note": f"user loop estimated as {n_last} x one last-layer encode (the rounds' median "
+                                       f"single encode) + {n_other} x one hidden-states pass (over the tool's "
+                                       "batches, timed once on all the texts); the tool's seconds are its rounds' "
+                                       "median, a sum over the parts"},
         "forward_efficiency": {"value": efficiency, "target": ">= 0.95", "met": efficiency >= 0.95,
                                "seconds": {"bare_forward": t_bare, "tool_12_variants": t_tool}, "slices": ENCODE_SLICES,
                                "rounds": rounds, "round_ratios": efficiency_rounds,
