@@ -109,12 +109,77 @@ def test_the_fewest_texts_the_benchmark_asks_for_make_enough_batches(bench, slic
             bench.dealt_parts(np.ones(fewest - 1), bench.BATCH, slices)
 
 
-def test_too_few_texts_for_a_group_stop_before_it_runs(bench, monkeypatch, capsys):
-    monkeypatch.setattr(sys, "argv", ["run.py", "--only", "encode", "--texts", str(bench.minimum_texts(6) - 1)])
+@pytest.mark.parametrize("chosen, texts, stopped_by", [
+    (["encode"], 320, "encode"), (["onnx"], 192, "onnx"), (["halving"], 50, "halving"),
+    (["bootstrap_speedup", "encode"], 320, "encode"), (["encode", "onnx"], 250, "encode"),
+    (["onnx", "encode"], 250, "encode"), (["onnx", "encode"], 150, "onnx"),
+])
+def test_too_few_texts_for_a_group_stop_before_anything_runs_or_is_written(bench, monkeypatch, capsys, tmp_path,
+                                                                           chosen, texts, stopped_by):
+    monkeypatch.setattr(bench, "REPO", tmp_path)
+    monkeypatch.setattr(bench, "RESULTS", tmp_path / "results" / "benchmarks.json")
+    ran = []
+    monkeypatch.setattr(bench, "GROUPS", {name: bench.Group(name, lambda n, r, name=name: ran.append(name) or {}, True)
+                                          for name in bench.GROUPS})
+    arguments = [word for name in chosen for word in ("--only", name)]
+    monkeypatch.setattr(sys, "argv", ["run.py", *arguments, "--texts", str(texts)])
     with pytest.raises(SystemExit) as stopped:
         bench.main()
     assert stopped.value.code == 2
-    assert f"--texts {bench.minimum_texts(6) - 1}: the encode group needs at least 321 texts" in capsys.readouterr().err
+    error = capsys.readouterr().err.strip().splitlines()[-1]
+    assert error.endswith(f"--texts {texts}: the {stopped_by} group needs at least {bench.MINIMUM_TEXTS[stopped_by]} texts")
+    assert ran == [] and list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("name", ["encode", "onnx", "halving"])
+def test_the_fewest_texts_a_group_accepts_pass_the_check(bench, monkeypatch, tmp_path, name):
+    monkeypatch.setattr(bench, "REPO", tmp_path)
+    monkeypatch.setattr(bench, "RESULTS", tmp_path / "results" / "benchmarks.json")
+    ran = []
+    monkeypatch.setattr(bench, "GROUPS", {name: bench.Group(name, lambda n, r: ran.append(n) or {}, True)})
+    monkeypatch.setattr(sys, "argv", ["run.py", "--only", name, "--texts", str(bench.MINIMUM_TEXTS[name])])
+    assert bench.main() == 0
+    assert ran == [bench.MINIMUM_TEXTS[name]]
+
+
+@pytest.mark.parametrize("texts", ["0", "-5"])
+def test_a_count_of_texts_below_one_is_refused(bench, monkeypatch, capsys, texts):
+    monkeypatch.setattr(sys, "argv", ["run.py", "--only", "bootstrap_speedup", "--texts", texts])
+    with pytest.raises(SystemExit) as stopped:
+        bench.main()
+    assert stopped.value.code == 2
+    assert "expected a whole number of texts, 1 or more" in capsys.readouterr().err
+
+
+def test_the_round_figures_of_the_encode_group(bench):
+    # Hand-made rounds: the tool 10, 12, 11 s; the single encode 8, 12, 10 s; the bare pass 9, 12, 11.5 s.
+    rounds = {"tool": [10.0, 12.0, 11.0], "single": [8.0, 12.0, 10.0], "bare": [9.0, 12.0, 11.5]}
+    ratios = bench.encode_round_ratios(rounds, t_other=5.0, n_last=4, n_other=8)
+    assert ratios["over_single"] == pytest.approx([1.25, 1.0, 1.1])
+    assert ratios["efficiency"] == pytest.approx([0.9, 1.0, 11.5 / 11.0])
+    assert ratios["loop"] == pytest.approx([(32 + 40) / 10, (48 + 40) / 12, (40 + 40) / 11])
+
+
+def test_the_single_encode_stands_for_a_last_layer_encode_only_for_a_mean_pooled_model(bench, tiny_model_dir):
+    from sentence_transformers import SentenceTransformer
+    from sentence_transformers.sentence_transformer.modules import Normalize, Pooling, Transformer
+
+    transformer = Transformer(str(tiny_model_dir))
+    width = transformer.get_embedding_dimension()
+    for modules, accepted in [
+        ([transformer, Pooling(width, pooling_mode="mean")], True),
+        ([transformer, Pooling(width, pooling_mode="mean"), Normalize()], True),
+        ([transformer, Pooling(width, pooling_mode="cls"), Normalize()], False),
+        ([transformer, Pooling(width, pooling_mode="max")], False),
+        ([transformer], False),
+        ([transformer, Pooling(width, pooling_mode="mean"), Normalize(), Normalize()], False),
+    ]:
+        model = SentenceTransformer(modules=modules, device="cpu")
+        if accepted:
+            bench.check_last_layer_stand_in(model)
+        else:
+            with pytest.raises(SystemExit, match="no longer stands for a last-layer encode"):
+                bench.check_last_layer_stand_in(model)
 
 
 def padded_characters(texts: list[str], batch_size: int) -> int:
