@@ -166,16 +166,51 @@ def encode_round_ratios(rounds: dict[str, list[float]], t_other: float, n_last: 
             "loop": [(n_last * e + n_other * t_other) / t for t, e in zip(tool, single)]}
 
 
-def check_last_layer_stand_in(model) -> None:
+def encode_entries(rounds: dict[str, list[float]], t_other: float, n_last: int, n_other: int) -> dict[str, dict]:
+    """The encode group's three figures from its rounds and the one hidden-states timing: each value is the median
+    of its own rounds' ratios (``encode_round_ratios``); ``seconds`` are each side's median, from different rounds."""
+    ratios = encode_round_ratios(rounds, t_other, n_last, n_other)
+    over_single, efficiency, loop = (statistics.median(ratios[name]) for name in ("over_single", "efficiency", "loop"))
+    t_tool, t_encode, t_bare = (statistics.median(rounds[name]) for name in ("tool", "single", "bare"))
+    return {
+        "variants_over_single_encode": {"value": over_single, "target": "<= 1.05", "met": over_single <= 1.05,
+                                        "seconds": {"tool_12_variants": t_tool, "single_encode": t_encode},
+                                        "rounds": rounds, "round_ratios": ratios["over_single"], "slices": ENCODE_SLICES,
+                                        "note": "median over interleaved rounds of tool / single; seconds are each "
+                                                "side's median, from different rounds"},
+        "loop_over_variants": {"value": loop, "target": ">= 8", "met": loop >= 8,
+                               "seconds": {"user_loop_12_variants_estimated": n_last * t_encode + n_other * t_other,
+                                           "tool_12_variants": t_tool, "one_last_layer_encode": t_encode,
+                                           "one_hidden_states_pass": t_other},
+                               "rounds": rounds, "round_ratios": ratios["loop"], "slices": ENCODE_SLICES,
+                               "hidden_states_pass_timings": 1,
+                               "note": f"per round, ({n_last} x that round's single encode, standing for a last-layer "
+                                       f"encode with its own Pooling module + {n_other} x one hidden-states pass over "
+                                       "the tool's batches, timed once on all the texts) / that round's tool seconds; "
+                                       "the median of the rounds. The one hidden-states timing (two thirds of the "
+                                       "loop) enters every round, so the rounds' spread understates the figure's; "
+                                       "seconds are each side's median, from different rounds"},
+        "forward_efficiency": {"value": efficiency, "target": ">= 0.95", "met": efficiency >= 0.95,
+                               "seconds": {"bare_forward": t_bare, "tool_12_variants": t_tool}, "slices": ENCODE_SLICES,
+                               "rounds": rounds, "round_ratios": ratios["efficiency"],
+                               "note": "throughput ratio = median over interleaved rounds of bare / tool seconds; "
+                                       "the tool's time includes tokenising, counting tokens, hidden states and "
+                                       "pooling 12 variants; seconds are each side's median, from different rounds"},
+    }
+
+
+def check_last_layer_stand_in(model, max_length: int) -> None:
     """The single encode stands for a user's last-layer encode with a mean Pooling module only where the model is
-    a transformer, mean pooling and at most a normalisation (whose cost is negligible)."""
+    a transformer, mean pooling and at most a normalisation (whose cost is negligible), cutting texts where the
+    tool does (``max_length``)."""
     kinds = [type(module).__name__ for module in model]
     pooling = model[1] if len(kinds) > 1 else None
     if kinds not in (["Transformer", "Pooling"], ["Transformer", "Pooling", "Normalize"]) or \
-            getattr(pooling, "pooling_mode", None) != "mean":
+            getattr(pooling, "pooling_mode", None) != "mean" or model.max_seq_length != max_length:
         raise SystemExit(f"benchmarks/run.py: {MINILM} has modules {kinds} (pooling "
-                         f"{getattr(pooling, 'pooling_mode', None)!r}); its encode no longer stands for a last-layer "
-                         "encode with mean pooling, so loop_over_variants would mean something else")
+                         f"{getattr(pooling, 'pooling_mode', None)!r}, max_seq_length {model.max_seq_length} against "
+                         f"the tool's {max_length}); its encode no longer stands for a last-layer encode with mean "
+                         "pooling, so loop_over_variants would mean something else")
 
 
 def minimum_texts(slices: int) -> int:
@@ -207,7 +242,7 @@ def encode_figures(n_texts: int, repeats: int) -> dict:
     plain = SentenceTransformer(str(model.folder), device="cpu")
     variants = [(layers, pooling) for layers in LAYERS for pooling in POOLINGS]
 
-    check_last_layer_stand_in(plain)
+    check_last_layer_stand_in(plain, encoder.max_length)
     inputs_of_sides = encode_inputs(encoder, texts, ENCODE_SLICES)
     parts, encode_parts, batches = inputs_of_sides.parts, inputs_of_sides.encode_parts, inputs_of_sides.batches
 
@@ -239,7 +274,6 @@ def encode_figures(n_texts: int, repeats: int) -> dict:
     # its rounds' ratios. Timing all of one, then all of the next, let a slower minute of this shared machine land
     # on one side only (forward_efficiency read 0.91 and 0.77 in two runs 8 minutes apart).
     rounds = interleaved_seconds({"tool": tool, "single": single_encode, "bare": bare_forward}, repeats, ENCODE_SLICES)
-    t_tool, t_encode, t_bare = (statistics.median(rounds[name]) for name in ("tool", "single", "bare"))
     # The user's loop is 12 passes of two kinds, each kind's passes costing the same (the pooling is a negligible
     # share of a pass): one of each kind is timed and multiplied by its count, instead of timing all 12. A
     # last-layer pass is a SentenceTransformer encode with its own Pooling module; the model's own encode, timed
@@ -250,30 +284,7 @@ def encode_figures(n_texts: int, repeats: int) -> dict:
     user_loop_other_layer("mean_last_4", "mean")
     t_other = time.perf_counter() - started
     n_last, n_other = len(POOLINGS), len(POOLINGS) * (len(LAYERS) - 1)
-    ratios = encode_round_ratios(rounds, t_other, n_last, n_other)
-    over_single, efficiency, loop = (statistics.median(ratios[name]) for name in ("over_single", "efficiency", "loop"))
-    t_loop = n_last * t_encode + n_other * t_other
-    return {
-        "variants_over_single_encode": {"value": over_single, "target": "<= 1.05", "met": over_single <= 1.05,
-                                        "seconds": {"tool_12_variants": t_tool, "single_encode": t_encode},
-                                        "rounds": rounds, "round_ratios": ratios["over_single"], "slices": ENCODE_SLICES,
-                                        "note": "median over interleaved rounds of tool / single"},
-        "loop_over_variants": {"value": loop, "target": ">= 8", "met": loop >= 8,
-                               "seconds": {"user_loop_12_variants_estimated": t_loop, "tool_12_variants": t_tool,
-                                           "one_last_layer_encode": t_encode, "one_hidden_states_pass": t_other},
-                               "round_ratios": ratios["loop"], "slices": ENCODE_SLICES, "hidden_states_pass_timings": 1,
-                               "note": f"per round, ({n_last} x that round's single encode, standing for a last-layer "
-                                       f"encode with its own Pooling module + {n_other} x one hidden-states pass over "
-                                       "the tool's batches, timed once on all the texts) / that round's tool seconds; "
-                                       "the median of the rounds"},
-        "forward_efficiency": {"value": efficiency, "target": ">= 0.95", "met": efficiency >= 0.95,
-                               "seconds": {"bare_forward": t_bare, "tool_12_variants": t_tool}, "slices": ENCODE_SLICES,
-                               "rounds": rounds, "round_ratios": ratios["efficiency"],
-                               "note": "throughput ratio = median over interleaved rounds of bare / tool seconds; "
-                                       "the tool's time includes tokenising, counting tokens, hidden states and "
-                                       "pooling 12 variants; seconds are each side's median, from different rounds"},
-        "texts": n_texts,
-    }
+    return {**encode_entries(rounds, t_other, n_last, n_other), "texts": n_texts}
 
 
 RERUN_SWEEP = """
@@ -294,6 +305,12 @@ CLUSTER_FIRST = "    - {method: hdbscan, min_cluster_size: 15}\n    - {method: h
 CLUSTER_SECOND = "    - {method: hdbscan, min_cluster_size: 20}\n    - {method: hdbscan, min_cluster_size: 40, cluster_selection_method: leaf}\n    - {method: kmeans, k: 8}"
 
 
+def rerun_sweeps(n_texts: int) -> tuple[str, str]:
+    """The rerun group's two sweeps: the same but for their clustering settings."""
+    return (RERUN_SWEEP.format(n_texts=n_texts, model=MINILM, cluster=CLUSTER_FIRST),
+            RERUN_SWEEP.format(n_texts=n_texts, model=MINILM, cluster=CLUSTER_SECOND))
+
+
 @group("rerun_fraction")
 def rerun_figures(n_texts: int, repeats: int) -> dict:
     """rerun_fraction: a 24-trial sweep, then the same sweep with only clustering settings changed."""
@@ -310,8 +327,9 @@ def rerun_figures(n_texts: int, repeats: int) -> dict:
         folder = Path(folder)
         first_sweep = folder / "first.yaml"
         second_sweep = folder / "second.yaml"
-        first_sweep.write_text(RERUN_SWEEP.format(n_texts=n_texts, model=MINILM, cluster=CLUSTER_FIRST))
-        second_sweep.write_text(RERUN_SWEEP.format(n_texts=n_texts, model=MINILM, cluster=CLUSTER_SECOND))
+        first_text, second_text = rerun_sweeps(n_texts)
+        first_sweep.write_text(first_text)
+        second_sweep.write_text(second_text)
         # The MLflow store's creation (schema migrations) is paid once per store, not timed.
         SweepTracker(default_tracking_uri(folder), folder / "artifacts", "bench_rerun")
         started = time.perf_counter()
@@ -525,7 +543,12 @@ def halving_group(n_texts: int, repeats: int) -> dict:
     sys.path.insert(0, str(Path(__file__).resolve().parent))
     from halving import halving_figures
 
-    return halving_figures(n_texts, max(n_texts // 9, 50), 3, small=False)
+    return halving_figures(n_texts, halving_start(n_texts), 3, small=False)
+
+
+def halving_start(n_texts: int) -> int:
+    """The halving group's first round: a ninth of the texts (factor 3, two rounds before the last), at least 50."""
+    return max(n_texts // 9, 50)
 
 
 def environment() -> dict:
@@ -542,7 +565,7 @@ def environment() -> dict:
 def positive_int(text: str) -> int:
     value = int(text)
     if value < 1:
-        raise argparse.ArgumentTypeError(f"{text}: expected a whole number of texts, 1 or more")
+        raise argparse.ArgumentTypeError(f"{text}: expected a whole number, 1 or more")
     return value
 
 
@@ -557,14 +580,19 @@ def summary_lines(figures: dict[str, dict]) -> list[str]:
 
 
 GROUP_SLICES = {"encode": ENCODE_SLICES, "onnx": ONNX_SLICES}
-# halving starts from max(texts // 9, 50) texts, fewer than the whole corpus.
-MINIMUM_TEXTS = {**{name: minimum_texts(slices) for name, slices in GROUP_SLICES.items()}, "halving": 51}
+# The fewest texts each group that reads --texts can run on: a batch per part; the rerun sweeps' largest
+# min_cluster_size (40); halving's first round (halving_start) fewer than the texts. Tests check the last two
+# against the runner's own checks, at the minimum and one below.
+MINIMUM_TEXTS = {**{name: minimum_texts(slices) for name, slices in GROUP_SLICES.items()},
+                 "rerun_fraction": 40, "halving": 51}
+# Groups whose figures do not depend on --texts (fixed corpora or point counts of their own).
+FIXED_SIZE_GROUPS = ("umap_shared_graph", "sweep_overhead", "dask")
 
 
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--texts", type=positive_int, default=2000)
-    parser.add_argument("--repeats", type=int, default=3)
+    parser.add_argument("--repeats", type=positive_int, default=3)
     parser.add_argument("--only", choices=list(GROUPS), action="append", help="run only these groups")
     parser.add_argument("--with", dest="extra", choices=list(GROUPS), action="append", default=[],
                         help="add an on-request group to the default ones")
@@ -584,9 +612,13 @@ def main() -> int:
     for name in chosen:
         print(f"running {name} ...", file=sys.stderr, flush=True)
         figures = GROUPS[name].measure(args.texts, args.repeats)
-        figures.pop("texts", None)
+        shared_texts = figures.pop("texts", None)
+        if shared_texts is not None:  # a group's texts said once for all its figures
+            figures = {figure: {"texts": shared_texts, **data} for figure, data in figures.items()}
         for figure, data in figures.items():
-            report["figures"][figure] = {**data, "texts": args.texts, "repeats": args.repeats, **environment()}
+            # The run's arguments, kept apart from what a figure says of its own texts and repeats.
+            report["figures"][figure] = {**data, "run_arguments": {"texts": args.texts, "repeats": args.repeats},
+                                         **environment()}
         # Written after every group, so a run cut short keeps every figure measured before the cut.
         RESULTS.write_text(json.dumps(report, indent=2, default=str))
     print("\n" + "\n".join(summary_lines(report["figures"])))

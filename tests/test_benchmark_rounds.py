@@ -111,6 +111,7 @@ def test_the_fewest_texts_the_benchmark_asks_for_make_enough_batches(bench, slic
 
 @pytest.mark.parametrize("chosen, texts, stopped_by", [
     (["encode"], 320, "encode"), (["onnx"], 192, "onnx"), (["halving"], 50, "halving"),
+    (["rerun_fraction"], 39, "rerun_fraction"),
     (["bootstrap_speedup", "encode"], 320, "encode"), (["encode", "onnx"], 250, "encode"),
     (["onnx", "encode"], 250, "encode"), (["onnx", "encode"], 150, "onnx"),
 ])
@@ -131,7 +132,7 @@ def test_too_few_texts_for_a_group_stop_before_anything_runs_or_is_written(bench
     assert ran == [] and list(tmp_path.iterdir()) == []
 
 
-@pytest.mark.parametrize("name", ["encode", "onnx", "halving"])
+@pytest.mark.parametrize("name", ["encode", "onnx", "halving", "rerun_fraction"])
 def test_the_fewest_texts_a_group_accepts_pass_the_check(bench, monkeypatch, tmp_path, name):
     monkeypatch.setattr(bench, "REPO", tmp_path)
     monkeypatch.setattr(bench, "RESULTS", tmp_path / "results" / "benchmarks.json")
@@ -142,15 +143,6 @@ def test_the_fewest_texts_a_group_accepts_pass_the_check(bench, monkeypatch, tmp
     assert ran == [bench.MINIMUM_TEXTS[name]]
 
 
-@pytest.mark.parametrize("texts", ["0", "-5"])
-def test_a_count_of_texts_below_one_is_refused(bench, monkeypatch, capsys, texts):
-    monkeypatch.setattr(sys, "argv", ["run.py", "--only", "bootstrap_speedup", "--texts", texts])
-    with pytest.raises(SystemExit) as stopped:
-        bench.main()
-    assert stopped.value.code == 2
-    assert "expected a whole number of texts, 1 or more" in capsys.readouterr().err
-
-
 def test_the_round_figures_of_the_encode_group(bench):
     # Hand-made rounds: the tool 10, 12, 11 s; the single encode 8, 12, 10 s; the bare pass 9, 12, 11.5 s.
     rounds = {"tool": [10.0, 12.0, 11.0], "single": [8.0, 12.0, 10.0], "bare": [9.0, 12.0, 11.5]}
@@ -158,6 +150,76 @@ def test_the_round_figures_of_the_encode_group(bench):
     assert ratios["over_single"] == pytest.approx([1.25, 1.0, 1.1])
     assert ratios["efficiency"] == pytest.approx([0.9, 1.0, 11.5 / 11.0])
     assert ratios["loop"] == pytest.approx([(32 + 40) / 10, (48 + 40) / 12, (40 + 40) / 11])
+
+
+def test_each_encode_figure_is_the_median_of_its_own_rounds(bench):
+    rounds = {"tool": [10.0, 12.0, 11.0, 9.0, 13.0], "single": [8.0, 12.0, 10.0, 9.5, 12.0],
+              "bare": [9.0, 12.0, 11.5, 8.0, 12.5]}
+    entries = bench.encode_entries(rounds, t_other=5.0, n_last=4, n_other=8)
+    expected = bench.encode_round_ratios(rounds, 5.0, 4, 8)
+    for figure, name in (("variants_over_single_encode", "over_single"), ("forward_efficiency", "efficiency"),
+                         ("loop_over_variants", "loop")):
+        entry = entries[figure]
+        assert entry["round_ratios"] == expected[name]
+        assert entry["value"] == sorted(expected[name])[2]  # the median of five
+        assert entry["rounds"] == rounds
+    assert entries["forward_efficiency"]["met"] is (sorted(expected["efficiency"])[2] >= 0.95)
+    assert entries["loop_over_variants"]["seconds"]["user_loop_12_variants_estimated"] == 4 * 10.0 + 8 * 5.0
+
+
+@pytest.mark.parametrize("kind", ["rerun_fraction", "halving"])
+def test_the_fewest_texts_of_a_sweep_group_are_what_the_runner_accepts(bench, tmp_path, kind):
+    # The runner's own checks (prepared_sweep, check_against_data) at the minimum and one below it.
+    from harness.engine.runner import check_against_data, loaded_corpora, prepared_sweep
+    from harness.errors import HarnessError
+
+    def sweeps(n_texts: int) -> list[str]:
+        if kind == "rerun_fraction":
+            return list(bench.rerun_sweeps(n_texts))
+        sys.path.insert(0, str(REPO / "benchmarks"))
+        try:
+            import halving
+        finally:
+            sys.path.remove(str(REPO / "benchmarks"))
+        start = bench.halving_start(n_texts)
+        return [halving.SWEEP.format(name=f"bench_{name}", n_texts=n_texts, models=halving.MINILM[0],
+                                     normalize=halving.MINILM[1], search=search)
+                for name, search in (("grid", ""), ("halving", f"search: {{strategy: halving, start_texts: {start}, "
+                                                                "factor: 3}"))]
+
+    def refusals(n_texts: int) -> list[str]:
+        found = []
+        for number, text in enumerate(sweeps(n_texts)):
+            path = tmp_path / f"{kind}_{n_texts}_{number}.yaml"
+            path.write_text(text)
+            try:
+                prepared = prepared_sweep(path)
+                check_against_data(prepared, loaded_corpora(prepared))
+            except HarnessError as refused:
+                found.append(str(refused))
+        return found
+
+    fewest = bench.MINIMUM_TEXTS[kind]
+    assert refusals(fewest) == []
+    assert refusals(fewest - 1)  # one text fewer is refused by a sweep check
+    assert all(str(tmp_path) in refusal for refusal in refusals(fewest - 1))
+
+
+def test_the_guide_names_each_group_minimum(bench):
+    guide = (REPO / "benchmarks" / "README.md").read_text()
+    for name, fewest in bench.MINIMUM_TEXTS.items():
+        assert f"`{name}` {fewest}" in guide, name
+    for name in bench.FIXED_SIZE_GROUPS:
+        assert f"`{name}`" in guide.split("`--texts N`", 1)[1].split("\n\n", 1)[0], name
+
+
+@pytest.mark.parametrize("option", ["--texts", "--repeats"])
+def test_a_count_below_one_is_refused(bench, monkeypatch, capsys, option):
+    monkeypatch.setattr(sys, "argv", ["run.py", "--only", "bootstrap_speedup", option, "0"])
+    with pytest.raises(SystemExit) as stopped:
+        bench.main()
+    assert stopped.value.code == 2
+    assert "expected a whole number, 1 or more" in capsys.readouterr().err
 
 
 def test_the_single_encode_stands_for_a_last_layer_encode_only_for_a_mean_pooled_model(bench, tiny_model_dir):
@@ -175,11 +237,12 @@ def test_the_single_encode_stands_for_a_last_layer_encode_only_for_a_mean_pooled
         ([transformer, Pooling(width, pooling_mode="mean"), Normalize(), Normalize()], False),
     ]:
         model = SentenceTransformer(modules=modules, device="cpu")
-        if accepted:
-            bench.check_last_layer_stand_in(model)
-        else:
-            with pytest.raises(SystemExit, match="no longer stands for a last-layer encode"):
-                bench.check_last_layer_stand_in(model)
+        for max_length in (model.max_seq_length, model.max_seq_length - 1):
+            if accepted and max_length == model.max_seq_length:
+                bench.check_last_layer_stand_in(model, max_length)
+            else:
+                with pytest.raises(SystemExit, match="no longer stands for a last-layer encode"):
+                    bench.check_last_layer_stand_in(model, max_length)
 
 
 def padded_characters(texts: list[str], batch_size: int) -> int:
