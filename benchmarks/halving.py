@@ -62,6 +62,14 @@ def _winner(result) -> tuple[str, object]:
     return configuration_identity(ranking.rows[0].configuration.trials[0].config_params), ranking
 
 
+def halving_sweeps(n_texts: int, start_texts: int, factor: int, small: bool) -> dict[str, str]:
+    """The full grid's sweep and the halving search's, over the same configurations and corpus."""
+    models, normalize = LEXICAL if small else MINILM
+    searches = {"grid": "", "halving": f"search: {{strategy: halving, start_texts: {start_texts}, factor: {factor}}}"}
+    return {name: SWEEP.format(name=f"bench_{name}", n_texts=n_texts, models=models, normalize=normalize, search=search)
+            for name, search in searches.items()}
+
+
 def halving_figures(n_texts: int, start_texts: int, factor: int, small: bool) -> dict:
     import numpy as np
 
@@ -71,15 +79,13 @@ def halving_figures(n_texts: int, start_texts: int, factor: int, small: bool) ->
 
     # UMAP compiles once per process (numba); pay it before timing either search.
     umap_reduced(np.random.default_rng(0).normal(size=(300, 20)).astype(np.float32), UmapSettings(method="umap"), 0)
-    models, normalize = LEXICAL if small else MINILM
     seconds, results = {}, {}
     (REPO / "results").mkdir(exist_ok=True)
     with tempfile.TemporaryDirectory(dir=REPO / "results") as folder:
         folder = Path(folder)
-        for name, search in (("grid", ""), ("halving", f"search: {{strategy: halving, start_texts: {start_texts}, factor: {factor}}}")):
+        for name, text in halving_sweeps(n_texts, start_texts, factor, small).items():
             path = folder / f"{name}.yaml"
-            path.write_text(SWEEP.format(name=f"bench_{name}", n_texts=n_texts, models=models, normalize=normalize,
-                                        search=search))
+            path.write_text(text)
             started = time.perf_counter()
             results[name] = run_sweep_file(path, folder / name, None)
             seconds[name] = time.perf_counter() - started

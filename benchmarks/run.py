@@ -28,6 +28,7 @@ LAYERS = ("last", "second_last", "mean_last_4")
 BATCH = 64
 ENCODE_SLICES = 6  # parts of the texts a round of the encode group turns over: each order of its 3 sides once
 ONNX_SLICES = 4  # ... of the ONNX group: each order of its 2 sides twice
+ONNX_ARI_TEXTS = 1200  # the demo corpus of onnx_int8_ari_delta, whatever --texts says
 LIBRARIES = ("torch", "transformers", "sentence-transformers", "umap-learn", "hdbscan", "scikit-learn", "mlflow", "numpy")
 
 
@@ -411,7 +412,7 @@ def onnx_figures(n_texts: int, repeats: int) -> dict:
         t_torch, t_int8 = statistics.median(rounds["torch"]), statistics.median(rounds["int8"])
         speedup = statistics.median(t / i for t, i in zip(rounds["torch"], rounds["int8"]))
 
-        demo = loaded_corpus(SyntheticSource(source="synthetic", n_texts=1200, topic_share=0.15, seed=0))
+        demo = loaded_corpus(SyntheticSource(source="synthetic", n_texts=ONNX_ARI_TEXTS, topic_share=0.15, seed=0))
         scores = {}
         for name, model in (("torch", encoder), ("onnx_int8", int8)):
             vectors = pooled_variants(model, demo.texts, variant, batch_size=64)[variant[0]]
@@ -419,11 +420,12 @@ def onnx_figures(n_texts: int, repeats: int) -> dict:
             scores[name] = adjusted_rand(demo.labels, kmeans_labels(reduced, KmeansSettings(method="kmeans", k=6), 0, 6))
     delta = abs(scores["torch"] - scores["onnx_int8"])
     return {
-        "onnx_int8_speedup": {"value": speedup, "target": ">= 1.5", "met": speedup >= 1.5,
+        "onnx_int8_speedup": {"value": speedup, "target": ">= 1.5", "met": speedup >= 1.5, "texts": n_texts,
                               "seconds": {"torch_fp32": t_torch, "onnx_int8": t_int8}, "rounds": rounds,
                               "slices": ONNX_SLICES,
                               "note": "median over interleaved rounds of torch / int8"},
-        "onnx_int8_ari_delta": {"value": delta, "target": "<= 0.01", "met": delta <= 0.01, "ari": scores},
+        "onnx_int8_ari_delta": {"value": delta, "target": "<= 0.01", "met": delta <= 0.01, "ari": scores,
+                                "texts": ONNX_ARI_TEXTS},
     }
 
 
@@ -457,7 +459,7 @@ def bootstrap_figures(n_texts: int, repeats: int) -> dict:
     t_new = median_seconds(batched, repeats)
     t_old = median_seconds(per_resample, repeats)
     value = t_old / t_new
-    return {"bootstrap_speedup": {
+    return {"bootstrap_speedup": {"texts": n_texts,
         "value": value, "target": ">= 10", "met": value >= 10,
         "seconds": {"per_resample": t_old, "batched": t_new, "batched_first_call_in_process": first_call},
         "max_abs_difference": difference, "resamples": resamples, "seeds": 3, "classes": 6,
@@ -543,7 +545,18 @@ def halving_group(n_texts: int, repeats: int) -> dict:
     sys.path.insert(0, str(Path(__file__).resolve().parent))
     from halving import halving_figures
 
-    return halving_figures(n_texts, halving_start(n_texts), 3, small=False)
+    return halving_figures(n_texts, halving_start(n_texts), HALVING_FACTOR, small=False)
+
+
+HALVING_FACTOR = 3
+
+
+def halving_sweeps(n_texts: int) -> dict[str, str]:
+    """The halving group's two sweeps (the full grid and the halving search) for ``n_texts``."""
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from halving import halving_sweeps as sweeps
+
+    return sweeps(n_texts, halving_start(n_texts), HALVING_FACTOR, small=False)
 
 
 def halving_start(n_texts: int) -> int:

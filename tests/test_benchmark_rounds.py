@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import importlib.util
 import itertools
+import json
 import os
 import sys
 from collections import Counter
@@ -152,19 +153,33 @@ def test_the_round_figures_of_the_encode_group(bench):
     assert ratios["loop"] == pytest.approx([(32 + 40) / 10, (48 + 40) / 12, (40 + 40) / 11])
 
 
-def test_each_encode_figure_is_the_median_of_its_own_rounds(bench):
-    rounds = {"tool": [10.0, 12.0, 11.0, 9.0, 13.0], "single": [8.0, 12.0, 10.0, 9.5, 12.0],
-              "bare": [9.0, 12.0, 11.5, 8.0, 12.5]}
-    entries = bench.encode_entries(rounds, t_other=5.0, n_last=4, n_other=8)
-    expected = bench.encode_round_ratios(rounds, 5.0, 4, 8)
-    for figure, name in (("variants_over_single_encode", "over_single"), ("forward_efficiency", "efficiency"),
-                         ("loop_over_variants", "loop")):
+@pytest.mark.parametrize("tool_last, t_other, met", [
+    # Worked by hand, medians of five: (tool / single, bare / tool, loop / tool)
+    (9.0, 5.0, (True, True, False)),  # 1.0 <= 1.05; 1.0 >= 0.95; loop 7.33 < 8
+    (11.6, 5.0, (False, False, False)),  # 1.0545 > 1.05; 0.948 < 0.95; loop 7.27 < 8
+    (9.0, 10.0, (True, True, True)),  # as the first; loop 11.2 >= 8
+])
+def test_each_encode_figure_is_the_median_of_its_own_rounds(bench, tool_last, t_other, met):
+    rounds = {"tool": [10.0, 12.0, 11.0, 9.0, tool_last], "single": [8.0, 12.0, 10.0, 9.5, 11.0],
+              "bare": [9.0, 12.0, 11.5, 8.0, 11.0]}
+    entries = bench.encode_entries(rounds, t_other=t_other, n_last=4, n_other=8)
+    tool, single, bare = rounds["tool"], rounds["single"], rounds["bare"]
+    expected = {"variants_over_single_encode": [tool[i] / single[i] for i in range(5)],
+                "forward_efficiency": [bare[i] / tool[i] for i in range(5)],
+                "loop_over_variants": [(4 * single[i] + 8 * t_other) / tool[i] for i in range(5)]}
+    for figure, ratios in expected.items():
         entry = entries[figure]
-        assert entry["round_ratios"] == expected[name]
-        assert entry["value"] == sorted(expected[name])[2]  # the median of five
+        assert entry["round_ratios"] == pytest.approx(ratios)
+        assert entry["value"] == pytest.approx(sorted(ratios)[2])  # the median of five
         assert entry["rounds"] == rounds
-    assert entries["forward_efficiency"]["met"] is (sorted(expected["efficiency"])[2] >= 0.95)
-    assert entries["loop_over_variants"]["seconds"]["user_loop_12_variants_estimated"] == 4 * 10.0 + 8 * 5.0
+    assert tuple(entries[figure]["met"] for figure in expected) == met
+    tool_median, single_median, bare_median = (sorted(rounds[side])[2] for side in ("tool", "single", "bare"))
+    assert entries["variants_over_single_encode"]["seconds"] == {"tool_12_variants": tool_median,
+                                                                 "single_encode": single_median}
+    assert entries["forward_efficiency"]["seconds"] == {"bare_forward": bare_median, "tool_12_variants": tool_median}
+    assert entries["loop_over_variants"]["seconds"] == {
+        "user_loop_12_variants_estimated": 4 * single_median + 8 * t_other, "tool_12_variants": tool_median,
+        "one_last_layer_encode": single_median, "one_hidden_states_pass": t_other}
 
 
 @pytest.mark.parametrize("kind", ["rerun_fraction", "halving"])
@@ -174,18 +189,8 @@ def test_the_fewest_texts_of_a_sweep_group_are_what_the_runner_accepts(bench, tm
     from harness.errors import HarnessError
 
     def sweeps(n_texts: int) -> list[str]:
-        if kind == "rerun_fraction":
-            return list(bench.rerun_sweeps(n_texts))
-        sys.path.insert(0, str(REPO / "benchmarks"))
-        try:
-            import halving
-        finally:
-            sys.path.remove(str(REPO / "benchmarks"))
-        start = bench.halving_start(n_texts)
-        return [halving.SWEEP.format(name=f"bench_{name}", n_texts=n_texts, models=halving.MINILM[0],
-                                     normalize=halving.MINILM[1], search=search)
-                for name, search in (("grid", ""), ("halving", f"search: {{strategy: halving, start_texts: {start}, "
-                                                                "factor: 3}"))]
+        # The texts the groups run: rerun_figures and halving_group build their sweeps with these functions.
+        return list(bench.rerun_sweeps(n_texts) if kind == "rerun_fraction" else bench.halving_sweeps(n_texts).values())
 
     def refusals(n_texts: int) -> list[str]:
         found = []
@@ -202,7 +207,8 @@ def test_the_fewest_texts_of_a_sweep_group_are_what_the_runner_accepts(bench, tm
     fewest = bench.MINIMUM_TEXTS[kind]
     assert refusals(fewest) == []
     assert refusals(fewest - 1)  # one text fewer is refused by a sweep check
-    assert all(str(tmp_path) in refusal for refusal in refusals(fewest - 1))
+    key = "grid.cluster[1]" if kind == "rerun_fraction" else "search.start_texts"
+    assert all(str(tmp_path) in refusal and key in refusal for refusal in refusals(fewest - 1))
 
 
 def test_the_guide_names_each_group_minimum(bench):
@@ -211,6 +217,26 @@ def test_the_guide_names_each_group_minimum(bench):
         assert f"`{name}` {fewest}" in guide, name
     for name in bench.FIXED_SIZE_GROUPS:
         assert f"`{name}`" in guide.split("`--texts N`", 1)[1].split("\n\n", 1)[0], name
+
+
+def test_the_results_file_keeps_each_figure_size_and_the_run_arguments_apart(bench, monkeypatch, tmp_path):
+    monkeypatch.setattr(bench, "REPO", tmp_path)
+    monkeypatch.setattr(bench, "RESULTS", tmp_path / "results" / "benchmarks.json")
+    (tmp_path / "results").mkdir()
+    bench.RESULTS.write_text(json.dumps({"figures": {"kept": {"value": 3.0, "target": "t", "met": True}}}))
+    figure = {"value": 1.0, "target": ">= 0", "met": True}
+    monkeypatch.setattr(bench, "GROUPS", {"g": bench.Group("g", lambda n, r: {
+        "texts": 77, "shared": dict(figure), "own": {**figure, "texts": 5}}, True)})
+    monkeypatch.setattr(sys, "argv", ["run.py", "--only", "g", "--texts", "300", "--repeats", "2"])
+    assert bench.main() == 0
+    written = json.loads(bench.RESULTS.read_text())["figures"]
+    assert written["shared"]["texts"] == 77  # the group's size, said once for its figures
+    assert written["own"]["texts"] == 5  # a figure's own size wins
+    for name in ("shared", "own"):
+        assert written[name]["run_arguments"] == {"texts": 300, "repeats": 2}
+        assert "repeats" not in written[name]
+        assert written[name]["value"] == 1.0 and "date" in written[name]
+    assert written["kept"] == {"value": 3.0, "target": "t", "met": True}  # a figure of an earlier run stays
 
 
 @pytest.mark.parametrize("option", ["--texts", "--repeats"])
@@ -237,7 +263,7 @@ def test_the_single_encode_stands_for_a_last_layer_encode_only_for_a_mean_pooled
         ([transformer, Pooling(width, pooling_mode="mean"), Normalize(), Normalize()], False),
     ]:
         model = SentenceTransformer(modules=modules, device="cpu")
-        for max_length in (model.max_seq_length, model.max_seq_length - 1):
+        for max_length in (model.max_seq_length, model.max_seq_length - 1, model.max_seq_length + 1):
             if accepted and max_length == model.max_seq_length:
                 bench.check_last_layer_stand_in(model, max_length)
             else:
