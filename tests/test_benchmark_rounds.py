@@ -219,6 +219,30 @@ def test_the_guide_names_each_group_minimum(bench):
         assert f"`{name}`" in guide.split("`--texts N`", 1)[1].split("\n\n", 1)[0], name
 
 
+@pytest.mark.parametrize("rounds, t_other, figure, target", [
+    ({"tool": [1.05] * 3, "single": [1.0] * 3, "bare": [1.0] * 3}, 0.0, "variants_over_single_encode", 1.05),
+    ({"tool": [1.0] * 3, "single": [1.0] * 3, "bare": [0.95] * 3}, 0.0, "forward_efficiency", 0.95),
+    ({"tool": [2.0] * 3, "single": [2.0] * 3, "bare": [2.0] * 3}, 1.0, "loop_over_variants", 8.0),  # (4x2 + 8x1) / 2
+])
+def test_a_figure_exactly_at_its_target_meets_it(bench, rounds, t_other, figure, target):
+    entry = bench.encode_entries(rounds, t_other=t_other, n_last=4, n_other=8)[figure]
+    assert entry["value"] == target
+    assert entry["met"] is True
+
+
+@pytest.mark.parametrize("numerators, denominators, expected", [
+    ([21.89, 21.77, 20.56], [14.13, 13.71, 12.5], [21.89 / 14.13, 21.77 / 13.71, 20.56 / 12.5]),
+    ([1.0], [4.0], [0.25]), ([], [], []),
+])
+def test_round_ratios_pair_rounds(bench, numerators, expected, denominators):
+    assert bench.round_ratios(numerators, denominators) == expected
+
+
+def test_rounds_that_do_not_pair_up_are_refused(bench):
+    with pytest.raises(ValueError, match="3 rounds against 2"):
+        bench.round_ratios([1.0, 2.0, 3.0], [1.0, 2.0])
+
+
 def test_the_results_file_keeps_each_figure_size_and_the_run_arguments_apart(bench, monkeypatch, tmp_path):
     monkeypatch.setattr(bench, "REPO", tmp_path)
     monkeypatch.setattr(bench, "RESULTS", tmp_path / "results" / "benchmarks.json")
